@@ -1,0 +1,427 @@
+"""The greedy ball cover that cuts a point set into spatially compact, renumbered balls.
+
+`build_cover` picks centres greedily (an uncovered point owns every still-uncovered point
+within R of it), numbers the balls so that consecutive balls are neighbours, rewrites the
+rows ball by ball, and lists for every ball the balls that can hold an eps-neighbour of its
+points. Every membership decision goes through the one distance rule of
+:mod:`chitally.metric`; the spatial index only proposes candidates. This module also holds
+the small compiled KD-tree that the planner reuses. It performs no I/O and knows nothing of
+Dask, Zarr or the run store.
+"""
+
+from __future__ import annotations
+
+import numba as nb
+import numpy as np
+
+from chitally.metric import query_radius, squared_distance, within
+from chitally.plan import Cover
+
+__all__ = ["build_cover"]
+
+# Points per KD-tree leaf. Small leaves prune better in the radius queries and give a
+# finer spatial order; 16 keeps the node arrays (two boxes per node) well under the size
+# of the coordinates themselves.
+LEAF_SIZE = 16
+
+# Leaf size of the tree over ball centres used for the neighbour lists. Those queries are
+# batched per leaf, so bigger leaves amortise the walk; 32 measured fastest on 10^6 balls.
+CENTRE_LEAF_SIZE = 32
+
+# Deepest tree we can traverse with the fixed stack below: 2**60 leaves is far beyond any
+# point count a process can hold.
+_STACK_DEPTH = 128
+
+
+# --------------------------------------------------------------------------------------
+# A compiled, implicit KD-tree.
+#
+# scipy's cKDTree answers batched radius queries as Python lists, which at 10^7 queries
+# costs gigabytes of objects, and the greedy cover is sequential by nature (each query
+# depends on what the previous ones covered). So the cover keeps its own tree inside
+# numba: median splits on the dimension of widest spread, all leaves at one depth, nodes
+# in heap order (children of k are 2k+1 and 2k+2), no pointers. The build reorders a
+# copy of the coordinates physically, so queries and the final leaf order read memory
+# sequentially. The tree proposes candidates only: membership is always decided by
+# `metric.within` on `metric.squared_distance`.
+# --------------------------------------------------------------------------------------
+
+
+@nb.njit(nogil=True, cache=True)
+def _swap_rows(xs, perm, i, j):
+    t = perm[i]
+    perm[i] = perm[j]
+    perm[j] = t
+    for k in range(xs.shape[1]):
+        v = xs[i, k]
+        xs[i, k] = xs[j, k]
+        xs[j, k] = v
+
+
+@nb.njit(nogil=True, cache=True)
+def _nth_element(xs, perm, lo, hi, nth, dim):
+    """Reorder rows lo..hi-1 so that row `nth` holds the value it would hold if sorted by
+    coordinate `dim`, with no larger value before it and no smaller one after it
+    (Hoare's selection; equal keys split evenly, so duplicate points stay cheap)."""
+    left = lo
+    right = hi - 1
+    while right > left:
+        a = xs[left, dim]
+        b = xs[(left + right) // 2, dim]
+        c = xs[right, dim]
+        # median of three: robust on rows that are already sorted
+        pivot = max(min(a, b), min(max(a, b), c))
+        i = left
+        j = right
+        while i <= j:
+            while xs[i, dim] < pivot:
+                i += 1
+            while xs[j, dim] > pivot:
+                j -= 1
+            if i <= j:
+                _swap_rows(xs, perm, i, j)
+                i += 1
+                j -= 1
+        if nth <= j:
+            right = j
+        elif nth >= i:
+            left = i
+        else:
+            return
+
+
+@nb.njit(nogil=True, cache=True)
+def _tree_depth(n, leaf_size):
+    depth = 0
+    while (n + (1 << depth) - 1) >> depth > leaf_size:
+        depth += 1
+    return depth
+
+
+@nb.njit(parallel=True, cache=True)
+def _build_tree(x, leaf_size):
+    """Return (xs, perm, start, stop, box_lo, box_hi): xs = x[perm] in leaf order and,
+    per heap node, its row range in xs and its exact bounding box.
+
+    Built level by level: the nodes of one level own disjoint row ranges, so they are
+    split in parallel.
+    """
+    n, m = x.shape
+    depth = _tree_depth(n, leaf_size)
+    n_nodes = (1 << (depth + 1)) - 1
+    first_leaf = (1 << depth) - 1
+    xs = x.copy()
+    perm = np.arange(n, dtype=np.int64)
+    start = np.empty(n_nodes, dtype=np.int64)
+    stop = np.empty(n_nodes, dtype=np.int64)
+    box_lo = np.empty((n_nodes, m), dtype=np.float64)
+    box_hi = np.empty((n_nodes, m), dtype=np.float64)
+    start[0] = 0
+    stop[0] = n
+    for level in range(depth + 1):
+        first = (1 << level) - 1
+        for t in nb.prange(1 << level):
+            node = first + t
+            s = start[node]
+            e = stop[node]
+            lo = np.full(m, np.inf)
+            hi = np.full(m, -np.inf)
+            for i in range(s, e):
+                for k in range(m):
+                    v = xs[i, k]
+                    lo[k] = min(lo[k], v)
+                    hi[k] = max(hi[k], v)
+            box_lo[node] = lo
+            box_hi[node] = hi
+            if node < first_leaf:
+                dim = 0
+                spread = -1.0
+                for k in range(m):
+                    w = hi[k] - lo[k]
+                    if w > spread:
+                        spread = w
+                        dim = k
+                mid = (s + e) // 2
+                if e - s > 1:
+                    _nth_element(xs, perm, s, e, mid, dim)
+                start[2 * node + 1] = s
+                stop[2 * node + 1] = mid
+                start[2 * node + 2] = mid
+                stop[2 * node + 2] = e
+    return xs, perm, start, stop, box_lo, box_hi
+
+
+def _prune_bound(radius: float) -> float:
+    """Squared distance beyond which a tree box cannot hold a row within `radius`.
+
+    Box bounds are compared in their own arithmetic, so the bound is the widened radius
+    of `metric.query_radius`; only `metric.within` decides membership.
+    """
+    reach = query_radius(radius)
+    return reach * reach
+
+
+@nb.njit(inline="always", nogil=True, cache=True)
+def _box_squared_distance(box_lo, box_hi, node, q, qi):
+    """A lower bound on d2 from row qi of q to any point of the node's box."""
+    s = 0.0
+    for k in range(q.shape[1]):
+        v = q[qi, k]
+        t = 0.0
+        if v < box_lo[node, k]:
+            t = box_lo[node, k] - v
+        elif v > box_hi[node, k]:
+            t = v - box_hi[node, k]
+        s += t * t
+    return s
+
+
+@nb.njit(nogil=True, cache=True)
+def _greedy_cover(xs, start, stop, box_lo, box_hi, radius, prune2):
+    """The greedy cover over rows in leaf order.
+
+    Returns (owner, centre_rows, n_balls): owner[i] is the ball of leaf row i and ball b is
+    centred on leaf row centre_rows[b]. Rows are visited in leaf order, so ball numbers
+    grow along the leaf order and each centre precedes the rest of its ball.
+    """
+    n = xs.shape[0]
+    n_nodes = start.shape[0]
+    first_leaf = (n_nodes - 1) // 2
+    owner = np.full(n, -1, dtype=np.int64)
+    centre_rows = np.empty(n, dtype=np.int64)
+    # Uncovered rows per node: whole subtrees behind the sweep are skipped without
+    # looking at their boxes.
+    uncovered = stop - start
+    stack = np.empty(_STACK_DEPTH, dtype=np.int64)
+    n_balls = 0
+    for p in range(n):
+        if owner[p] >= 0:
+            continue
+        b = n_balls
+        n_balls += 1
+        centre_rows[b] = p
+        top = 1
+        stack[0] = 0
+        while top > 0:
+            top -= 1
+            node = stack[top]
+            if uncovered[node] == 0:
+                continue
+            if _box_squared_distance(box_lo, box_hi, node, xs, p) > prune2:
+                continue
+            if node >= first_leaf:
+                claimed = 0
+                for i in range(start[node], stop[node]):
+                    if owner[i] < 0 and within(squared_distance(xs, i, xs, p), radius):
+                        owner[i] = b
+                        claimed += 1
+                if claimed > 0:
+                    a = node
+                    while True:
+                        uncovered[a] -= claimed
+                        if a == 0:
+                            break
+                        a = (a - 1) // 2
+            else:
+                stack[top] = 2 * node + 2
+                stack[top + 1] = 2 * node + 1
+                top += 2
+    return owner, centre_rows[:n_balls].copy(), n_balls
+
+
+@nb.njit(inline="always", nogil=True, cache=True)
+def _box_box_squared_distance(box_lo, box_hi, a, b):
+    """A lower bound on d2 between any point of box a and any point of box b."""
+    s = 0.0
+    for k in range(box_lo.shape[1]):
+        t = 0.0
+        if box_hi[a, k] < box_lo[b, k]:
+            t = box_lo[b, k] - box_hi[a, k]
+        elif box_hi[b, k] < box_lo[a, k]:
+            t = box_lo[a, k] - box_hi[b, k]
+        s += t * t
+    return s
+
+
+@nb.njit(nogil=True, cache=True)
+def _near_leaves(start, stop, box_lo, box_hi, a, prune2, out):
+    """Leaves whose boxes come within sqrt(prune2) of node a's box, written into `out`
+    while it has room; returns how many there are."""
+    n_nodes = start.shape[0]
+    first_leaf = (n_nodes - 1) // 2
+    stack = np.empty(_STACK_DEPTH, dtype=np.int64)
+    top = 1
+    stack[0] = 0
+    count = 0
+    while top > 0:
+        top -= 1
+        node = stack[top]
+        if stop[node] == start[node]:
+            continue
+        if _box_box_squared_distance(box_lo, box_hi, a, node) > prune2:
+            continue
+        if node >= first_leaf:
+            if count < out.shape[0]:
+                out[count] = node
+            count += 1
+        else:
+            stack[top] = 2 * node + 2
+            stack[top + 1] = 2 * node + 1
+            top += 2
+    return count
+
+
+@nb.njit(nogil=True, cache=True)
+def _join_leaf(xs, perm, start, stop, box_lo, box_hi, leaf, reach, prune2, offsets, out, fill):
+    """For every row of one leaf, the tree rows within `reach` of it (exact rule).
+
+    Queries are batched per leaf so that the tree is walked once per leaf, not once per row. With
+    ``fill`` false, writes the counts into ``out[perm[i]]``; with ``fill`` true, writes the
+    original ids of the matches into ``out[offsets[perm[i]]:...]``.
+    """
+    near = np.empty(64, dtype=np.int64)
+    n_near = _near_leaves(start, stop, box_lo, box_hi, leaf, prune2, near)
+    if n_near > near.shape[0]:
+        near = np.empty(n_near, dtype=np.int64)
+        _near_leaves(start, stop, box_lo, box_hi, leaf, prune2, near)
+    for i in range(start[leaf], stop[leaf]):
+        count = 0
+        base = offsets[perm[i]] if fill else 0
+        for t in range(n_near):
+            other = near[t]
+            if _box_squared_distance(box_lo, box_hi, other, xs, i) > prune2:
+                continue
+            for j in range(start[other], stop[other]):
+                if within(squared_distance(xs, j, xs, i), reach):
+                    if fill:
+                        out[base + count] = perm[j]
+                    count += 1
+        if not fill:
+            out[perm[i]] = count
+
+
+@nb.njit(parallel=True, cache=True)
+def _neighbour_balls(centre_xyz, reach, prune2, leaf_size):
+    """CSR lists of the balls whose centres are within `reach` (exact rule) of each
+    ball's centre, the ball itself included, each list sorted."""
+    n_balls = centre_xyz.shape[0]
+    cs, cperm, start, stop, box_lo, box_hi = _build_tree(centre_xyz, leaf_size)
+    n_nodes = start.shape[0]
+    first_leaf = (n_nodes - 1) // 2
+    n_leaves = n_nodes - first_leaf
+    counts = np.zeros(n_balls, dtype=np.int64)
+    offsets = np.zeros(n_balls + 1, dtype=np.int64)
+    for t in nb.prange(n_leaves):
+        _join_leaf(cs, cperm, start, stop, box_lo, box_hi, first_leaf + t, reach, prune2, offsets, counts, False)
+    for b in range(n_balls):
+        offsets[b + 1] = offsets[b] + counts[b]
+    balls = np.empty(offsets[n_balls], dtype=np.int64)
+    for t in nb.prange(n_leaves):
+        _join_leaf(cs, cperm, start, stop, box_lo, box_hi, first_leaf + t, reach, prune2, offsets, balls, True)
+    for b in nb.prange(n_balls):
+        balls[offsets[b] : offsets[b + 1]].sort()
+    return offsets, balls
+
+
+@nb.njit(nogil=True, cache=True)
+def _renumber(perm, owner, n_balls):
+    """Stable counting sort of the leaf rows by ball: returns (order, ball_offsets)."""
+    n = owner.shape[0]
+    ball_offsets = np.zeros(n_balls + 1, dtype=np.int64)
+    for i in range(n):
+        ball_offsets[owner[i] + 1] += 1
+    for b in range(n_balls):
+        ball_offsets[b + 1] += ball_offsets[b]
+    fill = ball_offsets[:n_balls].copy()
+    order = np.empty(n, dtype=np.int64)
+    for i in range(n):
+        b = owner[i]
+        order[fill[b]] = perm[i]
+        fill[b] += 1
+    return order, ball_offsets
+
+
+def build_cover(points: np.ndarray, eps: float, radius: float | None = None) -> Cover:
+    """Cover the points with greedy balls of radius R and renumber them ball by ball.
+
+    Rows are visited in the leaf order of a median-split KD-tree; each row still uncovered
+    when it is reached becomes a centre and owns every uncovered row within R of it, by
+    the exact rule ``metric.within(d2, R)``. Because centres are picked along the leaf
+    order, ball numbers follow it too: consecutive balls are spatial neighbours, and a
+    contiguous range of balls is a compact region (a union of a few KD subtrees). The new
+    row order is ball by ball, and leaf order inside each ball, which is the order the
+    kernel runs fastest in.
+
+    Parameters
+    ----------
+    points : ndarray of float64, shape (N, m)
+        The point cloud, N >= 1, finite coordinates.
+    eps : float
+        The Vietoris-Rips scale, > 0. It only sets the neighbour-ball reach ``2R + eps``.
+    radius : float, optional
+        Ball radius R > 0; ``eps`` by default.
+
+    Returns
+    -------
+    Cover
+        ``order`` (new row -> original row), ``ball_offsets``, ``centres`` (new row ids;
+        the centre is always the first row of its ball), and the neighbour-ball lists
+        (sorted, self included): every ball whose centre is within ``2R + eps`` of the
+        ball's centre, decided with the widened radius ``metric.query_radius(2R + eps)``
+        so rounding can only add a ball, never drop one.
+
+    Notes
+    -----
+    Invariants (the tests check them by brute force): every row belongs to exactly one
+    ball; it lies within R of its centre; its ball is the *first* ball (in ball order)
+    whose centre is within R of it; hence no centre lies within R of another centre.
+    Time is O(N log N) in compiled code, memory about three times the coordinates plus
+    the neighbour lists.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from chitally.cover import build_cover
+    >>> cover = build_cover(np.random.default_rng(0).random((1000, 2)), eps=0.05)
+    >>> int(cover.ball_offsets[-1])
+    1000
+    """
+    x = np.ascontiguousarray(points, dtype=np.float64)
+    if x.ndim != 2 or x.shape[0] < 1 or x.shape[1] < 1:
+        raise ValueError(f"points must be a non-empty (N, m) array, got shape {x.shape}")
+    if not np.isfinite(x).all():
+        raise ValueError("points must have finite coordinates")
+    eps = float(eps)
+    radius = eps if radius is None else float(radius)
+    if not (np.isfinite(eps) and eps > 0):
+        raise ValueError(f"eps must be finite and > 0, got {eps!r}")
+    if not (np.isfinite(radius) and radius > 0):
+        raise ValueError(f"radius must be finite and > 0, got {radius!r}")
+
+    xs, perm, start, stop, box_lo, box_hi = _build_tree(x, LEAF_SIZE)
+    owner, centre_leaf_rows, n_balls = _greedy_cover(
+        xs, start, stop, box_lo, box_hi, radius, _prune_bound(radius)
+    )
+    del start, stop, box_lo, box_hi
+    order, ball_offsets = _renumber(perm, owner, n_balls)
+    del owner, perm
+    # Each centre is the first leaf row of its ball (rows before it were covered
+    # earlier), and the counting sort keeps leaf order inside a ball.
+    centres = ball_offsets[:-1].copy()
+    centre_xyz = np.ascontiguousarray(xs[centre_leaf_rows])
+    del xs
+    # Widened reach: a ball that rounding puts just past 2R + eps is kept, because
+    # including an extra ball is harmless and missing one would lose edges.
+    reach = query_radius(2.0 * radius + eps)
+    neighbour_offsets, neighbour_balls = _neighbour_balls(
+        centre_xyz, reach, _prune_bound(reach), CENTRE_LEAF_SIZE
+    )
+    return Cover(
+        radius=radius,
+        order=order,
+        ball_offsets=ball_offsets,
+        centres=centres,
+        neighbour_offsets=neighbour_offsets,
+        neighbour_balls=neighbour_balls,
+    )
+
