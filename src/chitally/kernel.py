@@ -284,6 +284,35 @@ def _reduced_euler(adj, L, W, stack, signs, degs, verts, stats):
 
 
 @nb.njit(nogil=True, cache=True)
+def _build_frame(p, n_act, offsets, nbrs, nd2, sorted_loc, sorted_d2, rank_of, adj,
+                 pend_d2, pend_lo, pend_hi, pend_i, pend_j):
+    """Insert the frame edges that are never the longest of their triangle with p.
+
+    Returns how many longest-edge pairs were left in the pending arrays.
+    """
+    npend = 0
+    for i in range(n_act):
+        w = sorted_loc[i]
+        for k in range(offsets[w], offsets[w + 1]):
+            x = nbrs[k]
+            j = rank_of[x]
+            if j > i:
+                f_d2 = nd2[k]
+                f_lo = min(w, x)
+                f_hi = max(w, x)
+                if _key_less(f_d2, f_lo, f_hi, sorted_d2[j], min(p, x), max(p, x)):
+                    _set_edge(adj, i, j)
+                else:
+                    pend_d2[npend] = f_d2
+                    pend_lo[npend] = f_lo
+                    pend_hi[npend] = f_hi
+                    pend_i[npend] = i
+                    pend_j[npend] = j
+                    npend += 1
+    return npend
+
+
+@nb.njit(nogil=True, cache=True)
 def _owned_edge_offsets(offsets, nbrs, own_lo, own_hi):
     out = np.zeros(own_hi - own_lo + 1, dtype=np.int64)
     for p in range(own_lo, own_hi):
@@ -326,8 +355,8 @@ def count_range(offsets, nbrs, nd2, own_lo, own_hi, max_dim, edge_offsets, out_d
     pend_d2 = np.empty(cap, dtype=np.float64)
     pend_lo = np.empty(cap, dtype=np.int64)
     pend_hi = np.empty(cap, dtype=np.int64)
-    pend_i = np.empty(cap, dtype=np.int32)
-    pend_j = np.empty(cap, dtype=np.int32)
+    pend_i = np.empty(cap, dtype=np.int64)
+    pend_j = np.empty(cap, dtype=np.int64)
     pend_order = np.empty(cap, dtype=np.int64)
     depth_max = max_dim - 1 if max_dim >= 0 else 0
     rem = np.empty((max(depth_max, 1) + 1, Wmax), dtype=np.uint64)
@@ -379,33 +408,20 @@ def count_range(offsets, nbrs, nd2, own_lo, own_hi, max_dim, edge_offsets, out_d
         # the frame: edges among N(p). A pair that is not the longest edge of its
         # triangle with p is shorter than (p, w_j) for the later neighbour j, so it can
         # be inserted at once; only the longest ones wait for their turn in edge order.
-        npend = 0
+        bound = 0
         for i in range(n_act):
             w = sorted_loc[i]
-            for k in range(offsets[w], offsets[w + 1]):
-                j = rank_of[nbrs[k]]
-                if j > i:
-                    x = nbrs[k]
-                    f_d2 = nd2[k]
-                    f_lo = min(w, x)
-                    f_hi = max(w, x)
-                    if _key_less(f_d2, f_lo, f_hi, sorted_d2[j], min(p, x), max(p, x)):
-                        _set_edge(adj, i, j)
-                    else:
-                        if npend == cap:
-                            cap *= 2
-                            pend_d2 = _grow_f(pend_d2, cap)
-                            pend_lo = _grow_i(pend_lo, cap)
-                            pend_hi = _grow_i(pend_hi, cap)
-                            pend_i = _grow_i32(pend_i, cap)
-                            pend_j = _grow_i32(pend_j, cap)
-                            pend_order = _grow_i(pend_order, cap)
-                        pend_d2[npend] = f_d2
-                        pend_lo[npend] = f_lo
-                        pend_hi[npend] = f_hi
-                        pend_i[npend] = i
-                        pend_j[npend] = j
-                        npend += 1
+            bound += offsets[w + 1] - offsets[w]
+        if bound > pend_d2.shape[0]:
+            cap = max(bound, 2 * pend_d2.shape[0])
+            pend_d2 = np.empty(cap, dtype=np.float64)
+            pend_lo = np.empty(cap, dtype=np.int64)
+            pend_hi = np.empty(cap, dtype=np.int64)
+            pend_i = np.empty(cap, dtype=np.int64)
+            pend_j = np.empty(cap, dtype=np.int64)
+            pend_order = np.empty(cap, dtype=np.int64)
+        npend = _build_frame(p, n_act, offsets, nbrs, nd2, sorted_loc, sorted_d2, rank_of, adj,
+                             pend_d2, pend_lo, pend_hi, pend_i, pend_j)
         stats[4] += npend
         if npend > 0:
             _sort_by_key(pend_d2, pend_lo, pend_hi, npend, pend_order)
@@ -445,27 +461,6 @@ def count_range(offsets, nbrs, nd2, own_lo, own_hi, max_dim, edge_offsets, out_d
             slot += 1
         for r in range(n_act):
             rank_of[sorted_loc[r]] = -1
-
-
-@nb.njit(nogil=True, cache=True)
-def _grow_f(a, cap):
-    b = np.empty(cap, dtype=a.dtype)
-    b[: a.shape[0]] = a
-    return b
-
-
-@nb.njit(nogil=True, cache=True)
-def _grow_i(a, cap):
-    b = np.empty(cap, dtype=a.dtype)
-    b[: a.shape[0]] = a
-    return b
-
-
-@nb.njit(nogil=True, cache=True)
-def _grow_i32(a, cap):
-    b = np.empty(cap, dtype=a.dtype)
-    b[: a.shape[0]] = a
-    return b
 
 
 @dataclass
