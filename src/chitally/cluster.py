@@ -1,0 +1,122 @@
+"""Where the work runs: an embedded LocalCluster or an existing Dask scheduler.
+
+Connects, checks that the workers run the same chitally and numba and can open the run
+store, and refuses to dispatch a task whose estimated memory exceeds what a worker
+thread may use. Nothing here computes or writes.
+"""
+
+from __future__ import annotations
+
+import getpass
+import os
+import socket
+from dataclasses import dataclass
+from typing import Any
+
+import numba
+
+from . import __version__
+
+
+class ClusterError(RuntimeError):
+    """The cluster cannot run this job (versions, store access, memory)."""
+
+
+@dataclass
+class Connection:
+    client: Any
+    cluster: Any | None  # the LocalCluster we started, if any
+    dashboard: str | None
+
+    def close(self) -> None:
+        self.client.close()
+        if self.cluster is not None:
+            self.cluster.close()
+
+    def ssh_hint(self) -> str | None:
+        """A ready `ssh -L` line for reaching the dashboard from another machine."""
+        if not self.dashboard:
+            return None
+        from urllib.parse import urlparse
+
+        port = urlparse(self.dashboard).port or 8787
+        return f"ssh -N -L {port}:127.0.0.1:{port} {getpass.getuser()}@{socket.getfqdn()}"
+
+
+def connect(
+    scheduler: str | None = None,
+    scheduler_file: str | None = None,
+    workers: int | None = None,
+    threads: int | None = None,
+    memory_limit: str | None = None,
+    dashboard_address: str = "127.0.0.1:0",
+) -> Connection:
+    """A Dask client: to `scheduler` / `scheduler_file` / DASK_SCHEDULER_ADDRESS if given,
+    else to a new LocalCluster sized to this machine (one single-threaded worker process
+    per core by default: the kernel holds no GIL, but the store I/O around it does)."""
+    from distributed import Client, LocalCluster
+
+    scheduler = scheduler or os.environ.get("DASK_SCHEDULER_ADDRESS") or None
+    if scheduler_file:
+        client = Client(scheduler_file=scheduler_file)
+        return Connection(client, None, client.dashboard_link)
+    if scheduler:
+        client = Client(scheduler)
+        return Connection(client, None, client.dashboard_link)
+    cores = os.cpu_count() or 1
+    n_workers = workers or cores
+    threads = threads or max(1, cores // n_workers)
+    cluster = LocalCluster(
+        n_workers=n_workers,
+        threads_per_worker=threads,
+        processes=True,
+        host="127.0.0.1",
+        dashboard_address=dashboard_address,
+        memory_limit=memory_limit or "auto",
+    )
+    client = Client(cluster)
+    return Connection(client, cluster, client.dashboard_link)
+
+
+def _worker_facts(url: str) -> dict[str, Any]:
+    import chitally
+    from chitally.store import RunStore
+
+    try:
+        RunStore.open(url)
+        reach = None
+    except Exception as exc:  # reported to the driver, which names the worker
+        reach = f"{type(exc).__name__}: {exc}"
+    return {"chitally": chitally.__version__, "numba": numba.__version__, "store_error": reach}
+
+
+def check_workers(client: Any, url: str) -> int:
+    """Every worker runs our chitally and numba versions and can open the store.
+
+    Returns the number of worker threads.
+    """
+    facts = client.run(_worker_facts, url)
+    if not facts:
+        raise ClusterError("the cluster has no workers")
+    for worker, f in facts.items():
+        if f["chitally"] != __version__ or f["numba"] != numba.__version__:
+            raise ClusterError(
+                f"worker {worker} runs chitally {f['chitally']} / numba {f['numba']}, "
+                f"this driver runs chitally {__version__} / numba {numba.__version__}"
+            )
+        if f["store_error"]:
+            raise ClusterError(f"worker {worker} cannot open the run store {url}: {f['store_error']}")
+    return sum(w.get("nthreads", 1) for w in client.scheduler_info()["workers"].values())
+
+
+def preflight_memory(client: Any, heaviest_bytes: int) -> None:
+    """Refuse when the heaviest task's estimate exceeds a worker's memory per thread."""
+    for address, w in client.scheduler_info()["workers"].items():
+        limit = w.get("memory_limit") or 0
+        per_thread = limit / max(1, w.get("nthreads", 1))
+        if limit and heaviest_bytes > per_thread:
+            raise ClusterError(
+                f"the heaviest task needs about {heaviest_bytes / 2**20:.0f} MiB but worker {address} "
+                f"allows {per_thread / 2**20:.0f} MiB per thread; use smaller tasks (--task-cost) "
+                "or workers with more memory per thread"
+            )
