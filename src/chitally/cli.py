@@ -87,6 +87,11 @@ def main(verbose: int) -> None:
     """Exact Euler characteristic curves of Vietoris-Rips filtrations of large point sets."""
     level = logging.WARNING - 10 * min(verbose, 2)
     logging.basicConfig(level=level, format="%(levelname)s %(name)s: %(message)s")
+    # distributed configures its own INFO handlers; keep the terminal for our progress
+    if not verbose:
+        import dask
+
+        dask.config.set({"logging.distributed": "warning", "logging.bokeh": "error", "logging.tornado": "error"})
 
 
 input_arg = click.argument("input", metavar="INPUT")

@@ -8,6 +8,7 @@ thread may use. Nothing here computes or writes.
 from __future__ import annotations
 
 import getpass
+import logging
 import os
 import socket
 from dataclasses import dataclass
@@ -49,7 +50,7 @@ def connect(
     workers: int | None = None,
     threads: int | None = None,
     memory_limit: str | None = None,
-    dashboard_address: str = "127.0.0.1:0",
+    dashboard_address: str = "127.0.0.1:8787",
 ) -> Connection:
     """A Dask client: to `scheduler` / `scheduler_file` / DASK_SCHEDULER_ADDRESS if given,
     else to a new LocalCluster sized to this machine (one single-threaded worker process
@@ -73,6 +74,7 @@ def connect(
         host="127.0.0.1",
         dashboard_address=dashboard_address,
         memory_limit=memory_limit or "auto",
+        silence_logs=logging.WARNING,
     )
     client = Client(cluster)
     return Connection(client, cluster, client.dashboard_link)
