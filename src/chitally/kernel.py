@@ -11,6 +11,11 @@ edge e (edges ordered by (d2, lower id, higher id)); see DESIGN.md for the ident
 and, without a cap, c(e) = reduced Euler characteristic of the clique complex of G_e,
 computed by strong collapses and the split rule chi~(G) = chi~(G - v) - chi~(G[N(v)]).
 
+The halo's edges are sorted once by the edge order, and every edge is known by its rank
+in that order: comparing two edges is comparing two integers, each CSR row comes out
+already in edge order, and the jumps come out in increasing scale, so that grouping them
+is one linear pass.
+
 This module knows nothing of files, Zarr or Dask: arrays in, arrays out. The compiled
 functions release the GIL so that callers may run several owned ranges in threads.
 """
@@ -18,13 +23,16 @@ functions release the GIL so that callers may run several owned ranges in thread
 from __future__ import annotations
 
 import math
+import time
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
+import llvmlite.binding as llvm
 import numba as nb
 import numpy as np
 from llvmlite import ir
 from numba import types
+from numba.core import cgutils
 from numba.extending import intrinsic
 from scipy.spatial import cKDTree
 
@@ -34,6 +42,10 @@ UNCAPPED = -1  # the compiled code's spelling of max_dim=None
 
 # counters reported by the kernel, in this order
 STAT_NAMES = ("edges", "cones", "collapsed", "splits", "frame_pairs")
+
+# edge ranks and neighbour ids are stored as int32 to halve the memory traffic of the
+# hot scans; a halo needing more is far beyond what one task is planned to hold
+_MAX_EDGES = 2**31 - 2
 
 
 @intrinsic
@@ -56,80 +68,191 @@ def _trailing_zeros(typingctx, x):
     return sig, codegen
 
 
+@intrinsic
+def _pext_hw(typingctx, x, m):
+    sig = types.uint64(types.uint64, types.uint64)
+
+    def codegen(context, builder, signature, args):
+        fnty = ir.FunctionType(ir.IntType(64), [ir.IntType(64), ir.IntType(64)])
+        fn = cgutils.get_or_insert_function(builder.module, fnty, "llvm.x86.bmi.pext.64")
+        return builder.call(fn, args)
+
+    return sig, codegen
+
+
 ONE = np.uint64(1)
+ZERO = np.uint64(0)
 
 
 @nb.njit(inline="always", nogil=True, cache=True)
-def _key_less(d2a, loa, hia, d2b, lob, hib):
-    """The total edge order (d2, lower id, higher id)."""
-    if d2a != d2b:
-        return d2a < d2b
-    if loa != lob:
-        return loa < lob
-    return hia < hib
+def _pext_sw(x, m):
+    r = ZERO
+    k = ZERO
+    while m != 0:
+        low = m & (~m + ONE)
+        if x & low:
+            r |= ONE << k
+        k += ONE
+        m &= m - ONE
+    return r
+
+
+def _has_bmi2() -> bool:
+    # the hardware instruction is used only when numba compiles for this very CPU
+    if nb.config.CPU_NAME not in (None, "host") or nb.config.CPU_FEATURES:
+        return False
+    try:
+        return "+bmi2" in llvm.get_host_cpu_features().flatten().split(",")
+    except Exception:
+        return False
+
+
+_pext = _pext_hw if _has_bmi2() else _pext_sw
+
+
+# ---------------------------------------------------------------------------------------
+# the neighbour graph
+# ---------------------------------------------------------------------------------------
+
+
+@nb.njit(nogil=True, cache=True)
+def _filter_pairs(coords, pairs, eps):
+    """Keep the candidate pairs that pass the one distance rule, as (lo, hi, d2)."""
+    k = pairs.shape[0]
+    lo = np.empty(k, dtype=np.int32)
+    hi = np.empty(k, dtype=np.int32)
+    d2 = np.empty(k, dtype=np.float64)
+    m = 0
+    for t in range(k):
+        i = pairs[t, 0]
+        j = pairs[t, 1]
+        s = squared_distance(coords, i, coords, j)
+        if math.sqrt(s) <= eps:
+            if i > j:
+                i, j = j, i
+            lo[m] = i
+            hi[m] = j
+            d2[m] = s
+            m += 1
+    return lo, hi, d2, m
+
+
+@nb.njit(nogil=True, cache=True)
+def _radix_order(d2, m):
+    """Positions of d2[:m] in increasing order (stable), by LSD radix on the bits.
+
+    Non-negative doubles order like their bit patterns; digits equal in every key are
+    skipped, which drops the sign and most exponent bits of a bounded range.
+    """
+    bits = 11
+    nbuck = 1 << bits
+    npass = (64 + bits - 1) // bits
+    keys = d2[:m].view(np.uint64)
+    hist = np.zeros((npass, nbuck), dtype=np.int64)
+    mask = np.uint64(nbuck - 1)
+    for t in range(m):
+        x = keys[t]
+        for d in range(npass):
+            hist[d, (x >> np.uint64(d * bits)) & mask] += 1
+    order = np.arange(m).astype(np.int32)
+    tmp = np.empty(m, dtype=np.int32)
+    for d in range(npass):
+        single = False
+        for b in range(nbuck):
+            if hist[d, b] == m:
+                single = True
+                break
+            if hist[d, b] != 0:
+                break
+        if single or m == 0:
+            continue
+        pos = np.empty(nbuck, dtype=np.int64)
+        acc = 0
+        for b in range(nbuck):
+            pos[b] = acc
+            acc += hist[d, b]
+        shift = np.uint64(d * bits)
+        for t in range(m):
+            o = order[t]
+            b = (keys[o] >> shift) & mask
+            tmp[pos[b]] = o
+            pos[b] += 1
+        order, tmp = tmp, order
+    return order
+
+
+@nb.njit(nogil=True, cache=True)
+def _edge_graph(coords, pairs, eps):
+    """The eps-graph of the halo with its edges sorted by (d2, lo, hi).
+
+    Returns (offsets int64[h+1], nbrs int32[2m], erank int32[2m], elo int32[m],
+    ehi int32[m], ed2 float64[m]): edge g is (elo[g], ehi[g]) of squared length ed2[g];
+    CSR entry k is neighbour nbrs[k] through edge erank[k], rows in increasing rank.
+    """
+    h = coords.shape[0]
+    lo0, hi0, d20, m = _filter_pairs(coords, pairs, eps)
+    order = _radix_order(d20, m)
+    elo = np.empty(m, dtype=np.int32)
+    ehi = np.empty(m, dtype=np.int32)
+    ed2 = np.empty(m, dtype=np.float64)
+    for g in range(m):
+        o = order[g]
+        elo[g] = lo0[o]
+        ehi[g] = hi0[o]
+        ed2[g] = d20[o]
+    # ties in d2 (lattices, duplicate points) are ordered by (lo, hi)
+    t = 0
+    while t < m:
+        u = t + 1
+        while u < m and ed2[u] == ed2[t]:
+            u += 1
+        if u - t > 1:
+            key = np.empty(u - t, dtype=np.int64)
+            for a in range(t, u):
+                key[a - t] = np.int64(elo[a]) * h + ehi[a]
+            srt = np.sort(key)
+            for a in range(t, u):
+                elo[a] = srt[a - t] // h
+                ehi[a] = srt[a - t] % h
+        t = u
+    offsets = np.zeros(h + 1, dtype=np.int64)
+    for g in range(m):
+        offsets[elo[g] + 1] += 1
+        offsets[ehi[g] + 1] += 1
+    for i in range(h):
+        offsets[i + 1] += offsets[i]
+    fill = offsets[:-1].copy()
+    nbrs = np.empty(2 * m, dtype=np.int32)
+    erank = np.empty(2 * m, dtype=np.int32)
+    for g in range(m):
+        a = elo[g]
+        b = ehi[g]
+        nbrs[fill[a]] = b
+        erank[fill[a]] = g
+        fill[a] += 1
+        nbrs[fill[b]] = a
+        erank[fill[b]] = g
+        fill[b] += 1
+    return offsets, nbrs, erank, elo, ehi, ed2
 
 
 @nb.njit(nogil=True, cache=True)
 def build_graph(coords, pairs, eps):
     """CSR eps-graph of the halo from candidate pairs, filtered by the one distance rule.
 
-    Returns (offsets int64[h+1], neighbours int32[2k], d2 float64[2k]).
+    Returns (offsets int64[h+1], neighbours int32[2k], d2 float64[2k]); every row lists
+    its neighbours in the edge order (d2, lower id, higher id).
     """
-    h = coords.shape[0]
-    k = pairs.shape[0]
-    keep = np.empty(k, dtype=np.bool_)
-    d2 = np.empty(k, dtype=np.float64)
-    deg = np.zeros(h + 1, dtype=np.int64)
-    for t in range(k):
-        i = pairs[t, 0]
-        j = pairs[t, 1]
-        s = squared_distance(coords, i, coords, j)
-        d2[t] = s
-        ok = math.sqrt(s) <= eps
-        keep[t] = ok
-        if ok:
-            deg[i + 1] += 1
-            deg[j + 1] += 1
-    for i in range(h):
-        deg[i + 1] += deg[i]
-    offsets = deg
-    fill = offsets[:-1].copy()
-    nbrs = np.empty(offsets[h], dtype=np.int32)
-    nd2 = np.empty(offsets[h], dtype=np.float64)
-    for t in range(k):
-        if keep[t]:
-            i = pairs[t, 0]
-            j = pairs[t, 1]
-            nbrs[fill[i]] = j
-            nd2[fill[i]] = d2[t]
-            fill[i] += 1
-            nbrs[fill[j]] = i
-            nd2[fill[j]] = d2[t]
-            fill[j] += 1
+    offsets, nbrs, erank, elo, ehi, ed2 = _edge_graph(coords, pairs, eps)
+    nd2 = np.empty(nbrs.shape[0], dtype=np.float64)
+    for k in range(nbrs.shape[0]):
+        nd2[k] = ed2[erank[k]]
     return offsets, nbrs, nd2
 
 
-@nb.njit(nogil=True, cache=True)
-def _sort_by_key(d2, lo, hi, n, order):
-    """Fill order[:n] with the positions of entries sorted by (d2, lo, hi)."""
-    base = np.argsort(d2[:n])
-    for t in range(n):
-        order[t] = base[t]
-    # ties in d2 are rare (lattices, duplicates): insertion sort inside each run
-    t = 0
-    while t < n:
-        u = t + 1
-        while u < n and d2[order[u]] == d2[order[t]]:
-            u += 1
-        if u - t > 1:
-            for a in range(t + 1, u):
-                x = order[a]
-                b = a - 1
-                while b >= t and (lo[order[b]] > lo[x] or (lo[order[b]] == lo[x] and hi[order[b]] > hi[x])):
-                    order[b + 1] = order[b]
-                    b -= 1
-                order[b + 1] = x
-        t = u
+# ---------------------------------------------------------------------------------------
+# counting on G_e
+# ---------------------------------------------------------------------------------------
 
 
 @nb.njit(inline="always", nogil=True, cache=True)
@@ -143,6 +266,7 @@ def _count_capped(adj, L, W, depth_max, rem, wstart, counts):
     """Signed clique count of G_e (vertex set L) for cliques of size <= depth_max.
 
     Cliques are extended in increasing vertex order; the deepest level is a popcount.
+    Multi-word version, for the rare G_e with more than 64 vertices.
     """
     for k in range(depth_max + 1):
         counts[k] = 0
@@ -157,7 +281,6 @@ def _count_capped(adj, L, W, depth_max, rem, wstart, counts):
         wstart[0] = 0
         level = 0
         while level >= 0:
-            # next candidate at this level: lowest remaining bit
             w = wstart[level]
             while w < W and rem[level, w] == 0:
                 w += 1
@@ -189,10 +312,122 @@ def _count_capped(adj, L, W, depth_max, rem, wstart, counts):
 
 
 @nb.njit(nogil=True, cache=True)
-def _reduced_euler(adj, L, W, stack, signs, degs, verts, stats):
-    """chi~ of the clique complex of G_e by strong collapses and the split rule."""
+def _count_capped1(cadj, n, depth_max, rem, counts):
+    """_count_capped on a compacted G_e of at most 64 vertices (one word per row)."""
+    for k in range(depth_max + 1):
+        counts[k] = 0
+    counts[0] = 1
+    counts[1] = n
+    if depth_max >= 2 and n >= 2:
+        rem[0] = (ONE << np.uint64(n)) - ONE if n < 64 else ~ZERO
+        level = 0
+        while level >= 0:
+            word = rem[level]
+            if word == 0:
+                level -= 1
+                continue
+            b = _trailing_zeros(word)
+            word &= word - ONE
+            rem[level] = word
+            y = word & cadj[b]
+            cnt = _popcount(y)
+            counts[level + 2] += cnt
+            if level + 3 <= depth_max and cnt >= 2:
+                rem[level + 1] = y
+                level += 1
     total = 0
-    top = 0
+    sign = -1
+    for k in range(depth_max + 1):
+        total += sign * counts[k]
+        sign = -sign
+    return total
+
+
+@nb.njit(nogil=True, cache=True)
+def _reduced_euler1(cadj, n, stack, signs, stats):
+    """chi~ of the clique complex of a compacted G_e of at most 64 vertices.
+
+    Almost every G_e of a geometric cloud is a cone, so the cone test runs first and
+    costs one popcount per vertex.
+    """
+    total = 0
+    stack[0] = (ONE << np.uint64(n)) - ONE if n < 64 else ~ZERO
+    signs[0] = 1
+    top = 1
+    while top > 0:
+        top -= 1
+        s = signs[top]
+        V = stack[top]
+        while True:
+            if V == 0:
+                total -= s
+                break
+            nv1 = _popcount(V) - 1
+            cone = False
+            word = V
+            while word != 0:
+                b = _trailing_zeros(word)
+                word &= word - ONE
+                if _popcount(cadj[b] & V) == nv1:
+                    cone = True
+                    break
+            if cone:
+                stats[1] += 1
+                break
+            # strong collapse: drop every vertex whose closed neighbourhood sits inside
+            # another's; isolated vertices peel off as +1 each (a disjoint point)
+            removed = False
+            word = V
+            while word != 0:
+                b = _trailing_zeros(word)
+                word &= word - ONE
+                bit = ONE << np.uint64(b)
+                nbv = cadj[b] & V
+                if nbv == 0:
+                    V &= ~bit
+                    total += s
+                    removed = True
+                    continue
+                cand = nbv
+                while cand != 0:
+                    u = _trailing_zeros(cand)
+                    cand &= cand - ONE
+                    if (nbv & ~cadj[u] & ~(ONE << np.uint64(u))) == 0:
+                        V &= ~bit
+                        stats[2] += 1
+                        removed = True
+                        break
+            if removed:
+                continue
+            # no collapse left: split on a vertex of least degree
+            best = -1
+            bestd = 65
+            word = V
+            while word != 0:
+                b = _trailing_zeros(word)
+                word &= word - ONE
+                d = _popcount(cadj[b] & V)
+                if d < bestd:
+                    bestd = d
+                    best = b
+            stats[3] += 1
+            V &= ~(ONE << np.uint64(best))
+            stack[top] = V
+            signs[top] = s
+            stack[top + 1] = cadj[best] & V
+            signs[top + 1] = -s
+            top += 2
+            break
+    return total
+
+
+@nb.njit(nogil=True, cache=True)
+def _reduced_euler(adj, L, W, stack, signs, degs, verts, stats):
+    """chi~ of the clique complex of G_e by strong collapses and the split rule.
+
+    Multi-word version, for the rare G_e with more than 64 vertices.
+    """
+    total = 0
     for w in range(W):
         stack[0, w] = L[w]
     signs[0] = 1
@@ -202,7 +437,6 @@ def _reduced_euler(adj, L, W, stack, signs, degs, verts, stats):
         s = signs[top]
         V = stack[top]
         while True:
-            # list the vertices of V with their degrees inside V
             n = 0
             for w in range(W):
                 word = V[w]
@@ -227,8 +461,6 @@ def _reduced_euler(adj, L, W, stack, signs, degs, verts, stats):
             if cone:
                 stats[1] += 1
                 break
-            # strong collapse: drop every vertex whose closed neighbourhood sits inside
-            # another's; isolated vertices peel off as +1 each (a disjoint point)
             removed = False
             for a in range(n):
                 v = verts[a]
@@ -265,7 +497,6 @@ def _reduced_euler(adj, L, W, stack, signs, degs, verts, stats):
                     removed = True
             if removed:
                 continue
-            # no collapse left: split on a vertex of least degree
             best = 0
             for a in range(1, n):
                 if degs[a] < degs[best]:
@@ -273,7 +504,6 @@ def _reduced_euler(adj, L, W, stack, signs, degs, verts, stats):
             v = verts[best]
             stats[3] += 1
             V[v >> 6] &= ~(ONE << np.uint64(v & 63))
-            # V (now G - v) stays in slot `top` with sign s; push G[N(v)] with -s
             for w in range(W):
                 stack[top + 1, w] = adj[v, w] & V[w]
             signs[top] = s
@@ -283,184 +513,271 @@ def _reduced_euler(adj, L, W, stack, signs, degs, verts, stats):
     return total
 
 
-@nb.njit(nogil=True, cache=True)
-def _build_frame(p, n_act, offsets, nbrs, nd2, sorted_loc, sorted_d2, rank_of, adj,
-                 pend_d2, pend_lo, pend_hi, pend_i, pend_j):
-    """Insert the frame edges that are never the longest of their triangle with p.
+# ---------------------------------------------------------------------------------------
+# per-vertex loops
+# ---------------------------------------------------------------------------------------
 
-    Returns how many longest-edge pairs were left in the pending arrays.
+
+@nb.njit(nogil=True, cache=True)
+def _count_cap2(offsets, nbrs, erank, own_lo, own_hi, out_jump, mark):
+    """Cap 2: c(e) = -1 + |L(e)|, the triangles whose longest edge is e.
+
+    For p, the neighbours met so far in its row (edges shorter than e) are marked; the
+    row of q is scanned up to the edge itself, counting the marked ones.
     """
+    for p in range(own_lo, own_hi):
+        s = offsets[p]
+        t = offsets[p + 1]
+        last = t - 1
+        while last >= s and nbrs[last] < p:
+            last -= 1
+        for k in range(s, last + 1):
+            q = nbrs[k]
+            if q > p:
+                g = erank[k]
+                cnt = 0
+                for kk in range(offsets[q], offsets[q + 1]):
+                    if erank[kk] >= g:
+                        break
+                    cnt += mark[nbrs[kk]]
+                out_jump[g] = cnt - 1
+            mark[q] = 1
+        for k in range(s, last + 1):
+            mark[nbrs[k]] = 0
+
+
+@nb.njit(nogil=True, cache=True)
+def _pending_bound(offsets, nbrs, own_lo, own_hi):
+    """The most frame pairs any owned vertex can leave pending, and its largest degree."""
+    best = 0
+    maxdeg = 0
+    for p in range(own_lo, own_hi):
+        s = offsets[p]
+        t = offsets[p + 1]
+        if t - s > maxdeg:
+            maxdeg = t - s
+        b = 0
+        for k in range(s, t):
+            w = nbrs[k]
+            b += offsets[w + 1] - offsets[w]
+        if b > best:
+            best = b
+    return best, maxdeg
+
+
+@nb.njit(nogil=True, cache=True)
+def _vertex(p, offsets, nbrs, erank, max_dim, out_jump, stats, rank_of, prow, adj,
+            pend_g, pend_i, pend_j, srt_i, srt_j, bstart, L, cadj, rem1, rem, wstart, counts,
+            stack1, signs, stack, degs, verts):
+    """The jumps of every edge (p, q), q > p."""
+    s = offsets[p]
+    t = offsets[p + 1]
+    last = t - 1
+    while last >= s and nbrs[last] < p:
+        last -= 1
+    if last < s:
+        return
+    n_act = last - s + 1  # ranks beyond the last owned edge never matter
+    W = (n_act + 63) >> 6
+    for a in range(n_act):
+        rank_of[nbrs[s + a]] = a
+        prow[a] = erank[s + a]
+        for w in range(W):
+            adj[a, w] = 0
+    gmax = prow[n_act - 1]
+    depth_max = max_dim - 1
+    # the frame: edges among N(p). A pair that is not the longest edge of its triangle
+    # with p is shorter than (p, w_j) for the later neighbour j, so it goes in at once;
+    # the others wait in a bucket for the first edge of p that is longer.
     npend = 0
     for i in range(n_act):
-        w = sorted_loc[i]
+        w = nbrs[s + i]
         for k in range(offsets[w], offsets[w + 1]):
-            x = nbrs[k]
-            j = rank_of[x]
+            g = erank[k]
+            if g > gmax:
+                break  # rows are in edge order: the rest is never used
+            j = rank_of[nbrs[k]]
             if j > i:
-                f_d2 = nd2[k]
-                f_lo = min(w, x)
-                f_hi = max(w, x)
-                if _key_less(f_d2, f_lo, f_hi, sorted_d2[j], min(p, x), max(p, x)):
+                if g < prow[j]:
                     _set_edge(adj, i, j)
                 else:
-                    pend_d2[npend] = f_d2
-                    pend_lo[npend] = f_lo
-                    pend_hi[npend] = f_hi
+                    pend_g[npend] = g
                     pend_i[npend] = i
                     pend_j[npend] = j
                     npend += 1
-    return npend
+    stats[4] += npend
+    for r in range(n_act + 1):
+        bstart[r] = 0
+    for x in range(npend):
+        g = pend_g[x]
+        a = pend_j[x] + 1
+        b = n_act - 1
+        while a < b:
+            mid = (a + b) >> 1
+            if prow[mid] > g:
+                b = mid
+            else:
+                a = mid + 1
+        pend_g[x] = a
+        bstart[a + 1] += 1
+    for r in range(n_act):
+        bstart[r + 1] += bstart[r]
+    for x in range(npend):
+        a = pend_g[x]
+        y = bstart[a]
+        srt_i[y] = pend_i[x]
+        srt_j[y] = pend_j[x]
+        bstart[a] = y + 1
+    # bstart[r] is now the end of bucket r, and the end of bucket r - 1 its start
+    y = 0
+    for r in range(n_act):
+        while y < bstart[r]:
+            _set_edge(adj, srt_i[y], srt_j[y])
+            y += 1
+        q = nbrs[s + r]
+        if q <= p:
+            continue
+        # L(e): neighbours of p before rank r joined to q by an earlier edge
+        Wr = (r + 63) >> 6
+        size = 0
+        for w in range(Wr):
+            word = adj[r, w]
+            if w == Wr - 1 and (r & 63) != 0:
+                word &= (ONE << np.uint64(r & 63)) - ONE
+            L[w] = word
+            size += _popcount(word)
+        if size == 0:
+            c = -1
+        elif max_dim == 3:
+            # -1 + |L| - |edges of G_e|
+            ne = 0
+            for w in range(Wr):
+                word = L[w]
+                while word != 0:
+                    b = _trailing_zeros(word)
+                    word &= word - ONE
+                    v = w * 64 + b
+                    for x in range(Wr):
+                        ne += _popcount(adj[v, x] & L[x])
+            c = size - 1 - (ne >> 1)
+        elif size <= 64:
+            # compact G_e to one word per vertex
+            n = 0
+            for w in range(Wr):
+                word = L[w]
+                while word != 0:
+                    b = _trailing_zeros(word)
+                    word &= word - ONE
+                    v = w * 64 + b
+                    row = ZERO
+                    off = 0
+                    for x in range(Wr):
+                        lx = L[x]
+                        if lx != 0:
+                            row |= _pext(adj[v, x], lx) << np.uint64(off)
+                            off += _popcount(lx)
+                    cadj[n] = row
+                    n += 1
+            if max_dim >= 0:
+                c = _count_capped1(cadj, n, depth_max, rem1, counts)
+            else:
+                c = _reduced_euler1(cadj, n, stack1, signs, stats)
+        elif max_dim >= 0:
+            c = _count_capped(adj, L, Wr, depth_max, rem, wstart, counts)
+        else:
+            c = _reduced_euler(adj, L, Wr, stack, signs, degs, verts, stats)
+        out_jump[prow[r]] = c
+    for a in range(n_act):
+        rank_of[nbrs[s + a]] = -1
 
 
 @nb.njit(nogil=True, cache=True)
-def _owned_edge_offsets(offsets, nbrs, own_lo, own_hi):
-    out = np.zeros(own_hi - own_lo + 1, dtype=np.int64)
-    for p in range(own_lo, own_hi):
-        c = 0
-        for k in range(offsets[p], offsets[p + 1]):
-            if nbrs[k] > p:
-                c += 1
-        out[p - own_lo + 1] = out[p - own_lo] + c
-    return out
-
-
-@nb.njit(nogil=True, cache=True)
-def count_range(offsets, nbrs, nd2, own_lo, own_hi, max_dim, edge_offsets, out_d2, out_jump, stats):
+def count_range(offsets, nbrs, erank, own_lo, own_hi, max_dim, out_jump, stats):
     """Per-edge jumps for every edge whose lower endpoint p is in [own_lo, own_hi).
 
-    edge_offsets gives, relative to the first owned row of the whole block, where each
-    vertex's edges go in out_d2/out_jump; ranges never overlap between vertices, so
-    several calls on disjoint vertex ranges may run in parallel threads.
+    out_jump is indexed by edge rank; each edge is written by its lower endpoint only,
+    so several calls on disjoint vertex ranges may run in parallel threads.
     """
     h = offsets.shape[0] - 1
-    maxdeg = 0
-    for p in range(own_lo, own_hi):
-        d = offsets[p + 1] - offsets[p]
-        if d > maxdeg:
-            maxdeg = d
+    if max_dim == 2:
+        mark = np.zeros(h, dtype=np.int64)
+        _count_cap2(offsets, nbrs, erank, own_lo, own_hi, out_jump, mark)
+        return
+    bound, maxdeg = _pending_bound(offsets, nbrs, own_lo, own_hi)
     if maxdeg == 0:
         return
     Wmax = (maxdeg + 63) // 64
-    rank_of = np.full(h, -1, dtype=np.int64)
-    nb_loc = np.empty(maxdeg, dtype=np.int64)
-    nb_d2 = np.empty(maxdeg, dtype=np.float64)
-    nb_lo = np.empty(maxdeg, dtype=np.int64)
-    nb_hi = np.empty(maxdeg, dtype=np.int64)
-    nb_order = np.empty(maxdeg, dtype=np.int64)
-    sorted_loc = np.empty(maxdeg, dtype=np.int64)
-    sorted_d2 = np.empty(maxdeg, dtype=np.float64)
+    rank_of = np.full(h, -1, dtype=np.int32)
+    prow = np.empty(maxdeg, dtype=np.int64)
     adj = np.zeros((maxdeg, Wmax), dtype=np.uint64)
+    pend_g = np.empty(bound, dtype=np.int64)
+    pend_i = np.empty(bound, dtype=np.int32)
+    pend_j = np.empty(bound, dtype=np.int32)
+    srt_i = np.empty(bound, dtype=np.int32)
+    srt_j = np.empty(bound, dtype=np.int32)
+    bstart = np.empty(maxdeg + 2, dtype=np.int64)
     L = np.empty(Wmax, dtype=np.uint64)
-    cap = 1024
-    pend_d2 = np.empty(cap, dtype=np.float64)
-    pend_lo = np.empty(cap, dtype=np.int64)
-    pend_hi = np.empty(cap, dtype=np.int64)
-    pend_i = np.empty(cap, dtype=np.int64)
-    pend_j = np.empty(cap, dtype=np.int64)
-    pend_order = np.empty(cap, dtype=np.int64)
-    depth_max = max_dim - 1 if max_dim >= 0 else 0
-    rem = np.empty((max(depth_max, 1) + 1, Wmax), dtype=np.uint64)
-    wstart = np.empty(max(depth_max, 1) + 1, dtype=np.int64)
-    counts = np.empty(max(depth_max, 1) + 1, dtype=np.int64)
-    stack = np.empty((maxdeg + 2, Wmax), dtype=np.uint64)
-    signs = np.empty(maxdeg + 2, dtype=np.int64)
+    cadj = np.empty(64, dtype=np.uint64)
+    depth = max(max_dim - 1, 1) + 1
+    rem1 = np.empty(depth, dtype=np.uint64)
+    rem = np.empty((depth, Wmax), dtype=np.uint64)
+    wstart = np.empty(depth, dtype=np.int64)
+    counts = np.empty(depth, dtype=np.int64)
+    stack1 = np.empty(2 * 64 + 2, dtype=np.uint64)
+    signs = np.empty(2 * maxdeg + 130, dtype=np.int64)
+    stack = np.empty((2 * maxdeg + 2, Wmax), dtype=np.uint64)
     degs = np.empty(maxdeg, dtype=np.int64)
     verts = np.empty(maxdeg, dtype=np.int64)
-    base_slot = edge_offsets[0]
-
     for p in range(own_lo, own_hi):
-        start = offsets[p]
-        deg = offsets[p + 1] - start
-        if deg == 0:
-            continue
-        slot = edge_offsets[p - own_lo] - base_slot + 0
-        # sort N(p) by the edge order of (p, w)
-        for a in range(deg):
-            w = nbrs[start + a]
-            nb_loc[a] = w
-            nb_d2[a] = nd2[start + a]
-            nb_lo[a] = min(p, w)
-            nb_hi[a] = max(p, w)
-        _sort_by_key(nb_d2, nb_lo, nb_hi, deg, nb_order)
-        last = -1
-        for r in range(deg):
-            a = nb_order[r]
-            sorted_loc[r] = nb_loc[a]
-            sorted_d2[r] = nb_d2[a]
-            if nb_loc[a] > p:
-                last = r
-        if last < 0:
-            continue
-        stats[0] += edge_offsets[p - own_lo + 1] - edge_offsets[p - own_lo]
-        if max_dim == 1:
-            for r in range(last + 1):
-                if sorted_loc[r] > p:
-                    out_d2[slot] = sorted_d2[r]
-                    out_jump[slot] = -1
-                    slot += 1
-            continue
-        n_act = last + 1  # ranks beyond the last owned edge never matter
-        W = (n_act + 63) // 64
-        for r in range(n_act):
-            rank_of[sorted_loc[r]] = r
-            for w in range(W):
-                adj[r, w] = 0
-        # the frame: edges among N(p). A pair that is not the longest edge of its
-        # triangle with p is shorter than (p, w_j) for the later neighbour j, so it can
-        # be inserted at once; only the longest ones wait for their turn in edge order.
-        bound = 0
-        for i in range(n_act):
-            w = sorted_loc[i]
-            bound += offsets[w + 1] - offsets[w]
-        if bound > pend_d2.shape[0]:
-            cap = max(bound, 2 * pend_d2.shape[0])
-            pend_d2 = np.empty(cap, dtype=np.float64)
-            pend_lo = np.empty(cap, dtype=np.int64)
-            pend_hi = np.empty(cap, dtype=np.int64)
-            pend_i = np.empty(cap, dtype=np.int64)
-            pend_j = np.empty(cap, dtype=np.int64)
-            pend_order = np.empty(cap, dtype=np.int64)
-        npend = _build_frame(p, n_act, offsets, nbrs, nd2, sorted_loc, sorted_d2, rank_of, adj,
-                             pend_d2, pend_lo, pend_hi, pend_i, pend_j)
-        stats[4] += npend
-        if npend > 0:
-            _sort_by_key(pend_d2, pend_lo, pend_hi, npend, pend_order)
-        ptr = 0
-        for r in range(n_act):
-            q = sorted_loc[r]
-            e_d2 = sorted_d2[r]
-            e_lo = min(p, q)
-            e_hi = max(p, q)
-            while ptr < npend:
-                t = pend_order[ptr]
-                if not _key_less(pend_d2[t], pend_lo[t], pend_hi[t], e_d2, e_lo, e_hi):
-                    break
-                _set_edge(adj, pend_i[t], pend_j[t])
-                ptr += 1
-            if q <= p:
-                continue
-            # L(e): neighbours of p before rank r that are joined to q by an earlier edge
-            Wr = (r + 63) // 64
-            size = 0
-            for w in range(Wr):
-                word = adj[r, w]
-                if w == Wr - 1 and (r & 63) != 0:
-                    word &= (ONE << np.uint64(r & 63)) - ONE
-                L[w] = word
-                size += _popcount(word)
-            if max_dim == 2:
-                c = size - 1
-            elif size == 0:
-                c = -1
-            elif max_dim >= 3:
-                c = _count_capped(adj, L, Wr, depth_max, rem, wstart, counts)
-            else:
-                c = _reduced_euler(adj, L, Wr, stack, signs, degs, verts, stats)
-            out_d2[slot] = e_d2
-            out_jump[slot] = c
-            slot += 1
-        for r in range(n_act):
-            rank_of[sorted_loc[r]] = -1
+        _vertex(p, offsets, nbrs, erank, max_dim, out_jump, stats, rank_of, prow, adj,
+                pend_g, pend_i, pend_j, srt_i, srt_j, bstart, L, cadj, rem1, rem, wstart, counts,
+                stack1, signs, stack, degs, verts)
+
+
+@nb.njit(nogil=True, cache=True)
+def _owned_edges(elo, own_lo, own_hi, out_jump, unit):
+    """Set every owned edge's jump to -1 (unit) and count the owned edges."""
+    c = 0
+    for g in range(elo.shape[0]):
+        if own_lo <= elo[g] < own_hi:
+            c += 1
+            if unit:
+                out_jump[g] = -1
+    return c
+
+
+@nb.njit(nogil=True, cache=True)
+def _collect(ed2, elo, own_lo, own_hi, out_jump, n_vertices):
+    """Group the owned edges' jumps by length (edges are in increasing d2) and drop zeros."""
+    m = ed2.shape[0]
+    values = np.empty(m + 1, dtype=np.float64)
+    jumps = np.empty(m + 1, dtype=np.int64)
+    values[0] = 0.0
+    jumps[0] = n_vertices
+    n = 1
+    for g in range(m):
+        if own_lo <= elo[g] < own_hi:
+            j = out_jump[g]
+            if j != 0:
+                v = math.sqrt(ed2[g])
+                if v == values[n - 1]:
+                    jumps[n - 1] += j
+                else:
+                    values[n] = v
+                    jumps[n] = j
+                    n += 1
+    k = 0
+    for a in range(n):
+        if jumps[a] != 0:
+            values[k] = values[a]
+            jumps[k] = jumps[a]
+            k += 1
+    return values[:k].copy(), jumps[:k].copy()
+
+
+# ---------------------------------------------------------------------------------------
+# the public entry point
+# ---------------------------------------------------------------------------------------
 
 
 @dataclass
@@ -496,9 +813,14 @@ class JumpTable:
 
 
 def _halo_graph(coords: np.ndarray, eps: float):
+    """(offsets, nbrs, erank, elo, ehi, ed2) of the halo; see _edge_graph."""
     tree = cKDTree(coords)
     pairs = tree.query_pairs(query_radius(eps), output_type="ndarray")
-    return build_graph(coords, np.ascontiguousarray(pairs, dtype=np.int64), float(eps))
+    if pairs.shape[0] > _MAX_EDGES:
+        raise ValueError(f"a halo of {pairs.shape[0]} candidate pairs is too large for one task")
+    if pairs.dtype != np.int64 and pairs.dtype != np.int32:
+        pairs = pairs.astype(np.int64)
+    return _edge_graph(coords, pairs, float(eps))
 
 
 def _split_evenly(offsets: np.ndarray, lo: int, hi: int, pieces: int) -> list[tuple[int, int]]:
@@ -547,8 +869,6 @@ def count_jumps(
     >>> t.values.tolist(), t.jumps.tolist()
     ([0.0, 1.0], [3, -2])
     """
-    import time
-
     coords = np.ascontiguousarray(coords, dtype=np.float64)
     h = coords.shape[0]
     lo, hi = (0, h) if owned is None else (int(owned[0]), int(owned[1]))
@@ -561,36 +881,29 @@ def count_jumps(
         values = np.zeros(1 if hi > lo else 0, dtype=np.float64)
         jumps = np.full(values.shape, hi - lo, dtype=np.int64)
         return JumpTable(values, jumps, stats)
-    offsets, nbrs, nd2 = _halo_graph(coords, eps)
+    offsets, nbrs, erank, elo, ehi, ed2 = _halo_graph(coords, eps)
     t1 = time.perf_counter()
-    edge_offsets = _owned_edge_offsets(offsets, nbrs, lo, hi)
-    n_edges = int(edge_offsets[-1])
-    out_d2 = np.empty(n_edges, dtype=np.float64)
-    out_jump = np.empty(n_edges, dtype=np.int64)
-    ranges = _split_evenly(offsets, lo, hi, max(1, threads) * 8 if threads > 1 else 1)
-    raw = np.zeros((len(ranges), len(STAT_NAMES)), dtype=np.int64)
+    out_jump = np.empty(ed2.shape[0], dtype=np.int64)
+    stats.edges = int(_owned_edges(elo, lo, hi, out_jump, cap == 1))
+    raw = np.zeros((1, len(STAT_NAMES)), dtype=np.int64)
+    if cap != 1:
+        ranges = _split_evenly(offsets, lo, hi, max(1, threads) * 8 if threads > 1 else 1)
+        raw = np.zeros((len(ranges), len(STAT_NAMES)), dtype=np.int64)
 
-    def work(k: int) -> None:
-        a, b = ranges[k]
-        count_range(offsets, nbrs, nd2, a, b, cap, edge_offsets[a - lo : b - lo + 1],
-                    out_d2[edge_offsets[a - lo] :], out_jump[edge_offsets[a - lo] :], raw[k])
+        def work(k: int) -> None:
+            a, b = ranges[k]
+            count_range(offsets, nbrs, erank, a, b, cap, out_jump, raw[k])
 
-    if len(ranges) == 1:
-        work(0)
-    else:
-        with ThreadPoolExecutor(max_workers=threads) as pool:
-            list(pool.map(work, range(len(ranges))))
+        if len(ranges) == 1:
+            work(0)
+        else:
+            with ThreadPoolExecutor(max_workers=threads) as pool:
+                list(pool.map(work, range(len(ranges))))
+    values, jumps = _collect(ed2, elo, lo, hi, out_jump, hi - lo)
     t2 = time.perf_counter()
     counted = raw.sum(axis=0)
-    for name, value in zip(STAT_NAMES, counted):
+    for name, value in zip(STAT_NAMES[1:], counted[1:]):
         setattr(stats, name, int(value))
     stats.seconds_graph = t1 - t0
     stats.seconds_count = t2 - t1
-    nz = out_jump != 0
-    values = np.concatenate([[0.0], np.sqrt(out_d2[nz])])
-    jumps = np.concatenate([[hi - lo], out_jump[nz]])
-    uniq, inverse = np.unique(values, return_inverse=True)
-    summed = np.zeros(uniq.shape[0], dtype=np.int64)
-    np.add.at(summed, inverse, jumps)
-    keep = summed != 0
-    return JumpTable(uniq[keep], summed[keep], stats)
+    return JumpTable(values, jumps, stats)
