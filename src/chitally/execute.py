@@ -10,6 +10,7 @@ tasks. Executors never print; progress, logging and checkpointing hang off `Even
 
 from __future__ import annotations
 
+import hashlib
 import logging
 import socket
 import traceback
@@ -83,7 +84,8 @@ class SerialExecutor:
                 attempt = attempt_name(task, number)
                 events.task_started(task, attempt)
                 try:
-                    result = run_task(url, task, attempt, threads=self.threads)
+                    result = run_task(url, task, attempt, threads=self.threads,
+                                      plan_digest=plan_digest or None)
                 except NOT_RETRIED as exc:
                     outcome.failed[task] = _message(exc)
                     events.task_failed(task, outcome.failed[task], number + 1)
@@ -105,7 +107,7 @@ class SerialExecutor:
 class DaskExecutor:
     """Runs tasks on a Dask cluster through `client`, at most `window` in flight.
 
-    Keys are ``chitally-task-<plan digest>-<task>[-r<retry>]`` so the dashboard groups
+    Keys are ``chitally-task-<plan digest>-<store hash>-<task>[-r<retry>]`` so the dashboard groups
     them by run. Higher-cost tasks get higher priority (tasks arrive heaviest first).
     """
 
@@ -122,6 +124,8 @@ class DaskExecutor:
         from distributed import as_completed
 
         outcome = Outcome()
+        # two stores of one plan may run at once on one cluster: keys must differ
+        key_prefix = f"chitally-task-{plan_digest}-{hashlib.sha256(url.encode()).hexdigest()[:6]}"
         queue = iter(list(tasks))
         attempts: dict[int, int] = {}
         in_flight: dict[Any, int] = {}
@@ -131,9 +135,10 @@ class DaskExecutor:
         def submit(task: int) -> None:
             number = attempts.get(task, 0)
             attempt = attempt_name(task, number)
-            key = f"chitally-task-{plan_digest}-{task}" + (f"-r{number}" if number else "")
+            key = f"{key_prefix}-{task}" + (f"-r{number}" if number else "")
             fut = self.client.submit(
-                run_task, url, task, attempt, threads=self.threads, key=key, pure=False,
+                run_task, url, task, attempt, threads=self.threads, plan_digest=plan_digest or None,
+                key=key, pure=False,
                 priority=-submitted[0],  # tasks arrive heaviest first: keep that order
             )
             submitted[0] += 1

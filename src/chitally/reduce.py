@@ -46,9 +46,12 @@ class Reducer:
         self._pending_tasks: list[int] = []
         self._last_checkpoint = time.monotonic()
         self.skipped_generations: tuple[int, ...] = ()
+        self._highest_seen = 0
         checkpoint = store.latest_checkpoint()
         if checkpoint is not None:
             self.generation = checkpoint.generation
+            # damaged newer generations keep their numbers: the next one goes above them all
+            self._highest_seen = max((checkpoint.generation, *checkpoint.skipped))
             self.covered[np.asarray(checkpoint.task_ids, dtype=np.int64)] = True
             self.values = np.asarray(checkpoint.values, dtype=np.float64)
             self.jumps = np.asarray(checkpoint.jumps, dtype=np.int64)
@@ -96,7 +99,7 @@ class Reducer:
         self._pending_values.clear()
         self._pending_jumps.clear()
         self._pending_tasks.clear()
-        self.generation += 1
+        self.generation = max(self.generation, self._highest_seen) + 1
         self.store.write_checkpoint(self.generation, np.flatnonzero(self.covered), self.values, self.jumps)
         self._last_checkpoint = time.monotonic()
 
