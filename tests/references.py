@@ -30,6 +30,7 @@ from chitally import Curve
 
 __all__ = [
     "brute_force_curve",
+    "count_edges",
     "diameter",
     "gudhi_curve",
     "pair_lengths",
@@ -61,7 +62,7 @@ def pair_lengths(points: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray
     return np.sqrt(d2)
 
 
-def _count_edges(points: np.ndarray, eps: float, block: int = 512) -> int:
+def count_edges(points: np.ndarray, eps: float, block: int = 512) -> int:
     """Number of pairs i < j with length <= eps, by the rule, in row blocks (bounded memory)."""
     p = np.asarray(points, dtype=np.float64)
     n = p.shape[0]
@@ -205,7 +206,7 @@ def gudhi_curve(points: np.ndarray, eps: float, max_dim: int | None) -> Curve:
             f"gudhi's length of edge ({edge_a[k]}, {edge_b[k]}) is {theirs[k]!r}, "
             f"our rule gives {ours[k]!r} ({differ.size} edges differ)"
         )
-    expected_edges = _count_edges(p, eps)
+    expected_edges = count_edges(p, eps)
     if expected_edges != len(edge_f):
         raise AssertionError(
             f"gudhi has {len(edge_f)} edges at max_edge_length={eps!r}, "

@@ -199,8 +199,8 @@ def validate_points(points: Any, *, where: str = "points") -> np.ndarray:
     InputError
         If the array is not 2-D, has no rows or no columns, has a dtype that is not a
         real number type (bool, complex, strings, objects, and floats wider than
-        float64 are refused), holds an integer beyond 2**53 in magnitude, or holds NaN
-        or an infinity. Row and column indices in the message are 0-based.
+        float64 are refused), holds an integer beyond 2**53 in magnitude, holds NaN
+        or an infinity, or a coordinate beyond +-1e150 (squared distances would overflow). Row and column indices in the message are 0-based.
 
     Examples
     --------
@@ -227,7 +227,23 @@ def validate_points(points: Any, *, where: str = "points") -> np.ndarray:
             f"{where}: row {row}, column {col} is {float(out[row, col])!r}; "
             f"every coordinate must be finite"
         )
+    _check_magnitude(out, where)
     return out
+
+
+# Squared differences of coordinates beyond this overflow float64 (and the KD-tree's
+# arithmetic): such input cannot follow the distance rule, so it is refused up front.
+MAX_COORDINATE = 1e150
+
+
+def _check_magnitude(out: np.ndarray, where: str) -> None:
+    hit = _first_bad(out, lambda b: np.abs(b) > MAX_COORDINATE)
+    if hit is not None:
+        row, col = hit
+        raise InputError(
+            f"{where}: row {row}, column {col} is {float(out[row, col])!r}; coordinates must lie "
+            f"within +-{MAX_COORDINATE:g} so that squared distances do not overflow (rescale the input)"
+        )
 
 
 def validate_eps(eps: Any) -> float:
