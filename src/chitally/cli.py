@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import logging
+import os
 import sys
 from pathlib import Path
 from typing import Any, NoReturn
@@ -41,6 +42,12 @@ def _fail(message: str, code: int) -> NoReturn:
     sys.exit(code)
 
 
+def _store_url(text: str) -> str:
+    # Workers resolve a relative path against their own working directory, which need not
+    # be ours: hand them the absolute path of the store we mean.
+    return text if "://" in text else os.path.abspath(text)
+
+
 def _grid(text: str | None) -> np.ndarray | None:
     if text is None:
         return None
@@ -65,7 +72,8 @@ def _guarded(fn):  # one place that turns our exceptions into one line and an ex
         except StoreMismatch as exc:
             _fail(str(exc), EXIT_USAGE)
         except LeaseHeld as exc:
-            _fail(str(exc), EXIT_BUSY)
+            # the store words its hint for the Python API; here the switch is a flag
+            _fail(str(exc).replace("pass takeover=True", "rerun with --takeover"), EXIT_BUSY)
         except (StoreError, ClusterError) as exc:
             _fail(str(exc), EXIT_FAILURE)
         except ValueError as exc:
@@ -255,6 +263,9 @@ def _report(report: RunReport, grid: np.ndarray | None) -> None:
         f"{len(report.failed)} failed, {report.seconds:.1f} s",
         err=True,
     )
+    if report.set_aside:
+        click.echo(f"  damaged outputs set aside and computed again: tasks {sorted(set(report.set_aside))}",
+                   err=True)
     for task, message in sorted(report.failed.items()):
         click.echo(f"  task {task} failed: {message}", err=True)
     if report.curve is None:
@@ -283,7 +294,7 @@ def run_cmd(input: str, eps: float, max_dim: int | None, key: str | None, out: s
     params = Params.checked(eps, max_dim, cover_radius, task_cost)
     grid_values = _grid(grid)
     points = read_points(input, key=key)  # validated before any store exists
-    store = create_or_open(out, points, params)
+    store = create_or_open(_store_url(out), points, params)
     _report(_execute(store, **how), grid_values)
 
 
@@ -301,7 +312,7 @@ def resume_cmd(run: str, input_: str | None, key: str | None, eps: float | None,
     from .store import fingerprint
 
     grid_values = _grid(grid)
-    store = open_run(run)
+    store = open_run(_store_url(run))
     stored = store.params
     if eps is not None or max_dim is not None or input_ is not None:
         wanted = dict(stored)

@@ -157,16 +157,19 @@ def execute(
     events: Events | None = None,
     takeover: bool = False,
     on_pending: Callable[[RunStore, list[int]], None] | None = None,
+    checkpoint_every: int = 256,
 ) -> RunReport:
     """Compute every task not yet committed, reduce, and write the curve if complete.
 
     Holds the store's writer lease throughout (a second run is refused with `LeaseHeld`).
+    The reducer writes a checkpoint after every `checkpoint_every` newly reduced tasks
+    (and every 30 s, and at the end).
     """
     t0 = time.perf_counter()
     lease = store.acquire_lease(f"chitally pid {os.getpid()} on {socket.gethostname()}", takeover=takeover)
     with lease:
         store.clean_partials()
-        reducer = Reducer(store)
+        reducer = Reducer(store, every_tasks=checkpoint_every)
         driver = _Driver(store, reducer, events)
         driver.set_aside.extend(reducer.add_committed())
         plan = store.read_plan()
@@ -179,10 +182,12 @@ def execute(
                 break
             if on_pending is not None:
                 on_pending(store, pending)
-            driver.set_aside.clear()
+            # the report lists every task set aside, at start-up too; another round
+            # only if this one set aside more
+            seen = len(driver.set_aside)
             outcome = executor.run(store.url, pending, driver, plan.digest())
             computed += len(outcome.done)
-            if outcome.failed or not driver.set_aside:
+            if outcome.failed or len(driver.set_aside) == seen:
                 break
         # tasks committed by an earlier, interrupted driver after our first listing
         reducer.add_committed()

@@ -23,7 +23,7 @@ from pathlib import Path
 from typing import Any
 
 from .kernel import count_jumps
-from .store import RunStore, table_digest
+from .store import RunStore, StoreMismatch, table_digest
 
 FAULTS_ENV = "CHITALLY_FAULTS"
 
@@ -49,16 +49,35 @@ def _open_store(url: str) -> RunStore:
     return RunStore.open(url)
 
 
-def run_task(url: str, task: int, attempt: str, *, threads: int = 1) -> TaskResult:
+def _store_for(url: str, plan_digest: str | None) -> RunStore:
+    """The cached store at `url`, reopened if the driver expects another plan there.
+
+    A long-lived worker outlives run stores: one deleted and created again at the same
+    URL must not be read through the metadata (eps, number of tasks, array shapes) this
+    process cached for its predecessor.
+    """
+    store = _open_store(url)
+    if plan_digest and store.plan_digest != plan_digest:
+        _open_store.cache_clear()
+        store = _open_store(url)
+        if store.plan_digest != plan_digest:
+            raise StoreMismatch(
+                f"run store {url} holds plan {store.plan_digest}, the driver runs plan {plan_digest}"
+            )
+    return store
+
+
+def run_task(url: str, task: int, attempt: str, *, threads: int = 1, plan_digest: str | None = None) -> TaskResult:
     """Compute task `task` of the run store at `url` and commit its jump table.
 
     Idempotent: a task already committed with the same digest is harmless; outputs are
-    deterministic, so a duplicate attempt writes the same bytes.
+    deterministic, so a duplicate attempt writes the same bytes. `plan_digest`, when
+    given, is the plan the caller expects at `url` (checked before anything is read).
     """
     faults = _FaultPlan.from_env()
     if faults is not None:
         faults.before(task, attempt)
-    store = _open_store(url)
+    store = _store_for(url, plan_digest)
     params = store.params
     t0 = time.perf_counter()
     coords, _halo, owned_start, owned_stop = store.read_task_input(task)
@@ -88,9 +107,10 @@ class _FaultPlan:
     Keys: ``log`` (a directory: one line per attempt is appended to ``task-<i>``),
     ``fail`` ({task: number of first attempts that raise}), ``poison`` ([tasks that
     always raise]), ``exit_between`` ([tasks whose first attempt ends its process after
-    writing data but before the commit record]), ``exit_after_commits`` (end the
-    *driver*-side counted process: handled by the caller), ``delay`` (seconds to sleep
-    in every task, to let a test act while a run is under way).
+    writing data but before the commit record]), ``delay`` (seconds to sleep in every task, to let a test act while a run is under way), ``delay_first``
+    ({task: seconds} slept by that task's first attempt only: a stalled attempt that a
+    test can kill, knowing the next attempt will go through), ``gate`` ({task: path}: that
+    task waits until the file exists, so a test acts while a run is surely under way).
     """
 
     spec: dict[str, Any]
@@ -120,8 +140,16 @@ class _FaultPlan:
         if n <= int(self.spec.get("fail", {}).get(str(task), 0)):
             raise RuntimeError(f"injected failure in task {task}, attempt {n}")
         delay = float(self.spec.get("delay", 0))
+        if n <= 1:
+            delay += float(self.spec.get("delay_first", {}).get(str(task), 0))
         if delay:
             time.sleep(delay)
+        gate = self.spec.get("gate", {}).get(str(task))
+        deadline = time.monotonic() + 600
+        while gate and not Path(gate).exists():
+            if time.monotonic() > deadline:
+                raise RuntimeError(f"task {task}: gate {gate} never opened")
+            time.sleep(0.02)
 
     def between(self, task: int, attempt: str, store: RunStore, table: Any) -> None:
         if task in self.spec.get("exit_between", []) and self._attempts(task) <= 1:

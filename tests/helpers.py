@@ -1,0 +1,350 @@
+"""Shared helpers of the process tests (test_faults, test_cluster, test_cli).
+
+What they give: deterministic point clouds written to files; an outside reference curve
+(networkx ``enumerate_all_cliques``, brute force); the `chitally` command as a subprocess;
+processes started in their own process group and killed group-wise at teardown; a real
+Dask cluster (``dask scheduler`` and ``dask worker`` on 127.0.0.1); the fault-injection
+file of `chitally.tasks`; and polling of a run store by its files (commit records) with a
+timeout, so that no test sleeps to synchronise.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, TypeVar
+
+import networkx as nx
+import numpy as np
+import pytest
+
+from chitally import Curve
+
+BIN = Path(sys.executable).parent
+CHITALLY = str(BIN / "chitally")
+DASK = str(BIN / "dask")
+HOST = "127.0.0.1"
+
+T = TypeVar("T")
+
+
+# --------------------------------------------------------------------------- clouds
+
+
+def cloud(n: int, seed: int = 1, dim: int = 2, duplicates: int = 3) -> np.ndarray:
+    """`n` points uniform in the unit cube, the last `duplicates` of them copies of
+    earlier rows (coincident points are distinct vertices joined by a 0-length edge)."""
+    rng = np.random.default_rng(seed)
+    pts = rng.uniform(0.0, 1.0, (n, dim))
+    if duplicates:
+        pts[n - duplicates:] = pts[rng.choice(n - duplicates, duplicates, replace=False)]
+    return pts
+
+
+def write_points(path: Path, points: np.ndarray) -> Path:
+    np.save(path, np.asarray(points, dtype=np.float64))
+    return path
+
+
+def brute_force_curve(points: np.ndarray, eps: float, max_dim: int | None = None) -> Curve:
+    """The outside reference: every simplex listed by networkx ``enumerate_all_cliques``.
+
+    Source of the method: networkx's clique enumeration (``networkx.enumerate_all_cliques``,
+    cliques in order of size) on the eps-graph; each clique of k+1 points is a k-simplex
+    valued at its longest edge, contributing (-1)^k there. The edge lengths follow the
+    tool's documented rule (squares summed in coordinate order, then sqrt; an edge iff
+    length <= eps), written here with plain numpy so that no chitally code is involved.
+    """
+    p = np.asarray(points, dtype=np.float64)
+    n, m = p.shape
+    d2 = np.zeros((n, n))
+    for k in range(m):
+        t = p[:, None, k] - p[None, :, k]
+        d2 = d2 + t * t
+    length = np.sqrt(d2)
+    graph = nx.Graph()
+    graph.add_nodes_from(range(n))
+    ii, jj = np.nonzero(np.triu(length <= eps, k=1))
+    graph.add_edges_from(zip(ii.tolist(), jj.tolist()))
+    value_of: dict[tuple[int, ...], float] = {}
+    values: list[float] = []
+    jumps: list[int] = []
+    for clique in nx.enumerate_all_cliques(graph):
+        if max_dim is not None and len(clique) > max_dim + 1:
+            break
+        key = tuple(clique)
+        if len(clique) == 1:
+            v = 0.0
+        else:  # a clique arrives as an earlier clique plus one vertex
+            v = max(value_of[key[:-1]], float(length[list(key[:-1]), key[-1]].max()))
+        value_of[key] = v
+        values.append(v)
+        jumps.append(1 if len(clique) % 2 else -1)
+    return Curve.from_jumps(np.array(values), np.array(jumps, dtype=np.int64), eps=float(eps),
+                            max_dim=max_dim, n_points=n)
+
+
+# ------------------------------------------------------------------------- polling
+
+
+def wait_for(condition: Callable[[], T], timeout: float, what: str, interval: float = 0.05) -> T:
+    """Poll `condition` until it returns something truthy (returned), or fail after
+    `timeout` seconds saying `what` was awaited."""
+    deadline = time.monotonic() + timeout
+    while True:
+        value = condition()
+        if value:
+            return value
+        if time.monotonic() > deadline:
+            pytest.fail(f"timed out after {timeout:g} s waiting for {what}")
+        time.sleep(interval)
+
+
+def commits(run: Path) -> set[int]:
+    """Tasks with a commit record in the run store at `run` (by its files: temporary
+    ``.partial`` files of a write under way do not count)."""
+    folder = Path(run) / "commits"
+    if not folder.is_dir():
+        return set()
+    return {int(p.name[5:11]) for p in folder.glob("task-*.json")}
+
+
+def n_tasks(run: Path) -> int | None:
+    """Number of tasks of a run store once its creation finished, else None."""
+    if not (Path(run) / "created.json").exists():
+        return None
+    root = json.loads((Path(run) / "zarr.json").read_text())
+    return int(root["attributes"]["chitally"]["n_tasks"])
+
+
+def tree_digest(root: Path) -> dict[str, str]:
+    """sha256 of every file under `root`, by relative path (the store's exact bytes)."""
+    root = Path(root)
+    return {
+        str(p.relative_to(root)): hashlib.sha256(p.read_bytes()).hexdigest()
+        for p in sorted(root.rglob("*"))
+        if p.is_file()
+    }
+
+
+def chunk(run: Path, task: int, name: str = "values") -> Path:
+    """The one chunk file of a task's jump table array (`values` or `jumps`)."""
+    path = Path(run) / "tables" / f"task-{task:06d}" / name / "c" / "0"
+    assert path.is_file(), f"no chunk file {path}"
+    return path
+
+
+def flip_byte(path: Path, offset: int | None = None) -> None:
+    data = bytearray(path.read_bytes())
+    i = len(data) // 2 if offset is None else offset
+    data[i] ^= 0xFF
+    path.write_bytes(bytes(data))
+
+
+def truncate(path: Path, keep: int | None = None) -> None:
+    data = path.read_bytes()
+    path.write_bytes(data[: len(data) // 2 if keep is None else keep])
+
+
+# -------------------------------------------------------------------------- faults
+
+
+@dataclass
+class Faults:
+    """The fault-injection file of `chitally.tasks` (env CHITALLY_FAULTS) and its log."""
+
+    path: Path
+    log: Path
+
+    def write(self, **spec: Any) -> None:
+        self.path.write_text(json.dumps({"log": str(self.log), **spec}))
+
+    def attempts(self) -> dict[int, int]:
+        """Attempt lines per task so far."""
+        return {int(f.name[5:]): len(f.read_text().splitlines()) for f in self.log.glob("task-*")}
+
+    def pids(self, task: int) -> list[int]:
+        f = self.log / f"task-{task}"
+        return [int(line.split()[1]) for line in f.read_text().splitlines()] if f.exists() else []
+
+    def env(self) -> dict[str, str]:
+        return {"CHITALLY_FAULTS": str(self.path)}
+
+
+def make_faults(tmp: Path, **spec: Any) -> Faults:
+    log = tmp / "fault-log"
+    log.mkdir(exist_ok=True)
+    faults = Faults(tmp / "faults.json", log)
+    faults.write(**spec)
+    return faults
+
+
+# ----------------------------------------------------------------------- processes
+
+
+def child_env(extra: dict[str, str] | None = None) -> dict[str, str]:
+    """The environment of a child process: ours without Dask or fault settings, plus `extra`."""
+    env = {k: v for k, v in os.environ.items()
+           if k not in ("DASK_SCHEDULER_ADDRESS", "CHITALLY_FAULTS") and not k.startswith("CHITALLY_")}
+    env.update({"PYTHONUNBUFFERED": "1", "OMP_NUM_THREADS": "1"})
+    env.update(extra or {})
+    return env
+
+
+@dataclass
+class Proc:
+    popen: subprocess.Popen
+    out: Path
+    err: Path
+
+    @property
+    def pid(self) -> int:
+        return self.popen.pid
+
+    def stdout(self) -> str:
+        return self.out.read_text()
+
+    def stderr(self) -> str:
+        return self.err.read_text()
+
+    def wait(self, timeout: float) -> int:
+        return self.popen.wait(timeout=timeout)
+
+
+@dataclass
+class Processes:
+    """Processes of one test, each the leader of its own process group (session), so
+    that a kill reaches everything it started (a LocalCluster's workers, say)."""
+
+    folder: Path
+    procs: list[Proc] = field(default_factory=list)
+
+    def start(self, args: Sequence[str], *, env: dict[str, str] | None = None, name: str = "proc",
+              cwd: Path | None = None) -> Proc:
+        k = len(self.procs)
+        out, err = self.folder / f"{k:02d}-{name}.out", self.folder / f"{k:02d}-{name}.err"
+        with open(out, "wb") as fo, open(err, "wb") as fe:
+            popen = subprocess.Popen(list(args), stdout=fo, stderr=fe, stdin=subprocess.DEVNULL,
+                                     env=child_env(env), cwd=cwd, start_new_session=True)
+        proc = Proc(popen, out, err)
+        self.procs.append(proc)
+        return proc
+
+    def kill(self, proc: Proc, sig: int = signal.SIGKILL) -> int:
+        """Send `sig` to the process group of `proc` and reap its leader."""
+        try:
+            os.killpg(proc.pid, sig)
+        except ProcessLookupError:
+            pass
+        return proc.popen.wait(timeout=30)
+
+    def close(self) -> None:
+        for proc in reversed(self.procs):
+            try:  # the group may outlive its leader
+                os.killpg(proc.pid, signal.SIGKILL)
+            except (ProcessLookupError, PermissionError):
+                pass
+            try:
+                proc.popen.wait(timeout=30)
+            except subprocess.TimeoutExpired:  # pragma: no cover - reported, not hidden
+                print(f"process {proc.pid} did not exit after SIGKILL", file=sys.stderr)
+
+
+@pytest.fixture
+def processes(tmp_path: Path):
+    """Start processes through this; every one of their process groups is killed at teardown."""
+    folder = tmp_path / "procs"
+    folder.mkdir()
+    procs = Processes(folder)
+    yield procs
+    procs.close()
+
+
+def chitally(*args: Any, env: dict[str, str] | None = None, timeout: float = 120,
+             cwd: Path | None = None) -> subprocess.CompletedProcess:
+    """Run the `chitally` command to its end (for runs that need no killing), in a process
+    group of its own that is killed afterwards: nothing it started (a LocalCluster's
+    workers, say) outlives it, even on a timeout."""
+    argv = [CHITALLY, *map(str, args)]
+    with subprocess.Popen(argv, stdout=subprocess.PIPE, stderr=subprocess.PIPE, stdin=subprocess.DEVNULL,
+                          text=True, env=child_env(env), cwd=cwd, start_new_session=True) as popen:
+        try:
+            out, err = popen.communicate(timeout=timeout)
+        finally:
+            try:
+                os.killpg(popen.pid, signal.SIGKILL)
+            except (ProcessLookupError, PermissionError):
+                pass
+    return subprocess.CompletedProcess(argv, popen.returncode, out, err)
+
+
+def explain(res: Any) -> str:
+    """Both streams of a finished command, for assertion messages."""
+    return f"exit {res.returncode}\n--- stdout\n{res.stdout}\n--- stderr\n{res.stderr}"
+
+
+# ------------------------------------------------------------------------- cluster
+
+
+@dataclass
+class DaskCluster:
+    """A scheduler and workers, each a process group of its own."""
+
+    scheduler_file: Path
+    address: str
+    scheduler: Proc
+    workers: list[Proc]
+
+    def worker_of_pid(self, pid: int) -> Proc:
+        for w in self.workers:
+            if w.pid == pid:
+                return w
+        raise AssertionError(f"pid {pid} is none of the workers {[w.pid for w in self.workers]}")
+
+
+def _scheduler_address(path: Path) -> str | None:
+    try:
+        return json.loads(path.read_text()).get("address")
+    except (OSError, ValueError):
+        return None
+
+
+def n_workers_of(address: str) -> int:
+    from distributed import Client
+
+    with Client(address, timeout="10s") as client:
+        return len(client.scheduler_info()["workers"])
+
+
+def start_cluster(processes: Processes, folder: Path, n_workers: int = 2, *, nanny: bool = True,
+                  env: dict[str, str] | None = None, timeout: float = 60) -> DaskCluster:
+    """``dask scheduler`` on 127.0.0.1 (port 0, a scheduler file) and `n_workers`
+    single-threaded ``dask worker`` processes; returns once all workers are registered."""
+    folder.mkdir(parents=True, exist_ok=True)
+    sfile = folder / "scheduler.json"
+    scheduler = processes.start(
+        [DASK, "scheduler", "--host", HOST, "--port", "0", "--no-dashboard", "--scheduler-file", str(sfile)],
+        env=env, name="scheduler",
+    )
+    address = wait_for(lambda: _scheduler_address(sfile), timeout, "the scheduler file")
+    assert address.startswith(f"tcp://{HOST}:"), address
+    workers = []
+    for k in range(n_workers):
+        local = folder / f"worker-{k}"
+        local.mkdir(exist_ok=True)
+        workers.append(processes.start(
+            [DASK, "worker", "--scheduler-file", str(sfile), "--nthreads", "1", "--host", HOST,
+             "--no-dashboard", "--name", f"w{k}", "--local-directory", str(local),
+             "--nanny" if nanny else "--no-nanny"],
+            env=env, name=f"worker{k}",
+        ))
+    wait_for(lambda: n_workers_of(address) == n_workers, timeout, f"{n_workers} workers to register")
+    return DaskCluster(sfile, address, scheduler, workers)

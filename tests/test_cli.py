@@ -1,0 +1,290 @@
+"""The `chitally` command: bad input, plan, curve, export, status, --version.
+
+Driven in process with click's CliRunner (nothing here needs a second process), except a
+few checks of the installed console script itself. Curves are compared exactly with
+`chitally.euler_curve` on the same points and, once, with an outside reference (networkx
+``enumerate_all_cliques``, brute force).
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+from helpers import brute_force_curve, chitally, cloud, explain, make_faults, write_points
+
+import chitally as ct
+from chitally.cli import main
+from chitally.curve import read_samples
+from chitally.runs import (
+    EXIT_INCOMPLETE,
+    EXIT_USAGE,
+    Params,
+    create_or_open,
+    describe_plan,
+    open_run,
+    read_result,
+)
+
+pytestmark = pytest.mark.timeout(120)
+
+EPS = 0.03
+COST = 4000
+GRID = "0:0.03:7"
+
+
+@pytest.fixture(scope="module")
+def points() -> np.ndarray:
+    return cloud(2000, seed=3)
+
+
+@pytest.fixture(scope="module")
+def expected(points: np.ndarray) -> ct.Curve:
+    """`euler_curve`, which must equal the outside reference: every simplex listed by
+    networkx ``enumerate_all_cliques`` (helpers.brute_force_curve)."""
+    curve = ct.euler_curve(points, EPS)
+    assert curve == brute_force_curve(points, EPS)
+    return curve
+
+
+@pytest.fixture(scope="module")
+def src(tmp_path_factory, points) -> Path:
+    return write_points(tmp_path_factory.mktemp("input") / "points.npy", points)
+
+
+@pytest.fixture
+def runner() -> CliRunner:
+    return CliRunner()
+
+
+@pytest.fixture(scope="module")
+def complete_run(tmp_path_factory, src, expected) -> Path:
+    """A run store of `src` run to its end (serially, in this process), printing the
+    curve's samples on a grid."""
+    run = tmp_path_factory.mktemp("complete") / "run.zarr"
+    res = CliRunner().invoke(main, ["run", str(src), "--eps", str(EPS), "--task-cost", str(COST),
+                                    "--out", str(run), "--serial", "--no-progress", "--grid", GRID])
+    assert res.exit_code == 0, res.output
+    grid = ct.parse_grid(GRID)
+    rows = res.stdout.strip().splitlines()
+    assert rows[0] == "scale,chi"
+    assert [int(r.split(",")[1]) for r in rows[1:]] == expected.sample(grid).tolist()
+    return run
+
+
+def one_error_line(res) -> str:
+    lines = res.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("chitally: error: "), res.stderr
+    return lines[0]
+
+
+# ----------------------------------------------------------------------- version
+
+
+def test_version(runner):
+    res = runner.invoke(main, ["--version"])
+    assert res.exit_code == 0
+    assert res.stdout.strip() == f"chitally, version {ct.__version__}"
+
+
+# --------------------------------------------------------------------- bad input
+
+
+def _write_bad(folder: Path, kind: str) -> Path:
+    path = folder / f"{kind}.npy"
+    if kind == "nan":
+        np.save(path, np.array([[0.0, 1.0], [np.nan, 2.0]]))
+    elif kind == "inf":
+        np.save(path, np.array([[0.0, 1.0], [1.0, -np.inf]]))
+    elif kind == "flat":
+        np.save(path, np.array([0.0, 1.0, 2.0]))
+    elif kind == "empty":
+        np.save(path, np.zeros((0, 2)))
+    elif kind == "good":
+        np.save(path, cloud(50, seed=9))
+    return path  # "missing": never written
+
+
+BAD = [
+    # (file kind, extra options, words the message must contain)
+    ("nan", [], ["nan", "finite"]),
+    ("inf", [], ["inf", "finite"]),
+    ("flat", [], ["2-D", "(3,)"]),
+    ("empty", [], ["at least one point"]),
+    ("missing", [], ["missing.npy", "no such file"]),
+    ("good", ["--eps", "0"], ["eps", "positive"]),
+    ("good", ["--eps", "-0.5"], ["eps", "positive"]),
+    ("good", ["--eps", "nan"], ["eps", "positive"]),
+    ("good", ["--max-dim", "-1"], ["max_dim", ">= 0"]),
+]
+
+
+@pytest.mark.parametrize("command", ["run", "curve"])
+@pytest.mark.parametrize("kind,options,words", BAD, ids=[f"{b[0]}{''.join(b[1])}" for b in BAD])
+def test_bad_input_exits_2_with_one_line_and_creates_nothing(tmp_path, runner, command, kind, options, words):
+    src = _write_bad(tmp_path, kind)
+    before = sorted(p.name for p in tmp_path.iterdir())
+    opts = dict(zip(options[::2], options[1::2]))
+    args = [command, str(src), "--eps", opts.pop("--eps", "0.1")]
+    args += [x for kv in opts.items() for x in kv]
+    if command == "run":
+        args += ["--out", str(tmp_path / "run.zarr"), "--no-progress"]  # validated before any cluster
+    else:
+        args += ["--out", str(tmp_path / "curve.csv")]
+    res = runner.invoke(main, args)
+    assert res.exit_code == EXIT_USAGE, res.output
+    line = one_error_line(res)
+    assert all(w in line for w in words), line
+    assert res.stdout == ""
+    assert sorted(p.name for p in tmp_path.iterdir()) == before  # no store, no curve file
+
+
+def test_bad_input_through_the_console_script(tmp_path):
+    """The installed command, as a user runs it: exit status 2, one line, no store."""
+    src = _write_bad(tmp_path, "nan")
+    res = chitally("run", src, "--eps", 0.1, "--out", tmp_path / "run.zarr", "--serial")
+    assert res.returncode == EXIT_USAGE, explain(res)
+    assert res.stderr.strip().count("\n") == 0 and "row 1, column 0 is nan" in res.stderr
+    assert not (tmp_path / "run.zarr").exists()
+
+
+# ------------------------------------------------------------------------ plan
+
+
+def test_plan_prints_the_plan_and_writes_nothing(tmp_path, runner, src, points, complete_run, monkeypatch):
+    before = sorted(str(p) for p in src.parent.rglob("*"))
+    monkeypatch.chdir(tmp_path)
+    args = ["plan", str(src), "--eps", str(EPS), "--task-cost", str(COST)]
+    res = runner.invoke(main, args)
+    assert res.exit_code == 0, res.output
+    text = res.stdout
+    as_json = runner.invoke(main, [*args, "--json"])
+    assert as_json.exit_code == 0, as_json.output
+    assert list(tmp_path.iterdir()) == []
+    assert sorted(str(p) for p in src.parent.rglob("*")) == before
+    summary = json.loads(as_json.stdout)
+    want = describe_plan(points, Params.checked(EPS, None, None, COST))
+    for name in ("balls", "tasks", "halo_rows", "replication"):
+        assert summary[name] == want[name]
+        assert f"{name}: {want[name]}" in text
+    assert summary["points"] == points.shape[0]
+    assert "store layout:" in text and "tables/task-000000.." in text
+    # the plan is the one a run makes
+    assert summary["tasks"] == open_run(str(complete_run)).n_tasks
+
+
+# ----------------------------------------------------------------------- curve
+
+
+def test_curve_writes_exact_curves_and_samples(tmp_path, runner, src, expected):
+    for ending in ("csv", "json", "npz"):
+        out = tmp_path / f"curve.{ending}"
+        res = runner.invoke(main, ["curve", str(src), "--eps", str(EPS), "--out", str(out), "--threads", "1"])
+        assert res.exit_code == 0, res.output
+        assert ct.Curve.load(out) == expected
+    grid = ct.parse_grid(GRID)
+    res = runner.invoke(main, ["curve", str(src), "--eps", str(EPS), "--grid", GRID])
+    assert res.exit_code == 0, res.output
+    lines = res.stdout.strip().splitlines()
+    assert lines[0] == "scale,chi"
+    assert [float(r.split(",")[0]) for r in lines[1:]] == grid.tolist()
+    assert [int(r.split(",")[1]) for r in lines[1:]] == expected.sample(grid).tolist()
+    out = tmp_path / "samples.csv"
+    res = runner.invoke(main, ["curve", str(src), "--eps", str(EPS), "--grid", GRID, "--out", str(out)])
+    assert res.exit_code == 0, res.output
+    scale, chi = read_samples(out)
+    assert scale.tolist() == grid.tolist() and chi.tolist() == expected.sample(grid).tolist()
+    # a capped curve too
+    out = tmp_path / "capped.csv"
+    res = runner.invoke(main, ["curve", str(src), "--eps", str(EPS), "--max-dim", "1", "--out", str(out)])
+    assert res.exit_code == 0, res.output
+    assert ct.Curve.load(out) == ct.euler_curve(np.load(src), EPS, 1)
+
+
+def test_bad_grid_is_a_usage_error(tmp_path, runner, src):
+    res = runner.invoke(main, ["curve", str(src), "--eps", str(EPS), "--grid", "0.5:0.1:3"])
+    assert res.exit_code == EXIT_USAGE
+    assert "--grid" in res.stderr and "START" in res.stderr
+
+
+# ---------------------------------------------------------------------- export
+
+
+@pytest.mark.parametrize("fmt", ["csv", "json", "npz"])
+def test_export_round_trips(tmp_path, runner, complete_run, expected, fmt):
+    by_ending = tmp_path / f"curve.{fmt}"
+    res = runner.invoke(main, ["export", str(complete_run), "--out", str(by_ending)])
+    assert res.exit_code == 0, res.output
+    assert ct.Curve.load(by_ending) == expected
+    named = tmp_path / "curve.data"
+    res = runner.invoke(main, ["export", str(complete_run), "--format", fmt, "--out", str(named)])
+    assert res.exit_code == 0, res.output
+    assert ct.Curve.load(named, format=fmt) == expected
+    grid = ct.parse_grid(GRID)
+    samples = tmp_path / f"samples.{fmt}"
+    res = runner.invoke(main, ["export", str(complete_run), "--grid", GRID, "--out", str(samples)])
+    assert res.exit_code == 0, res.output
+    scale, chi = read_samples(samples)
+    assert scale.tolist() == grid.tolist() and chi.tolist() == expected.sample(grid).tolist()
+
+
+def test_export_to_stdout(tmp_path, runner, complete_run, expected):
+    res = runner.invoke(main, ["export", str(complete_run), "--format", "json"])
+    assert res.exit_code == 0, res.output
+    assert ct.Curve.from_dict(json.loads(res.stdout)) == expected
+    res = runner.invoke(main, ["export", str(complete_run)])  # csv by default
+    assert res.exit_code == 0, res.output
+    (tmp_path / "out.csv").write_text(res.stdout)
+    assert ct.Curve.load(tmp_path / "out.csv") == expected
+    res = runner.invoke(main, ["export", str(complete_run), "--format", "npz"])
+    assert res.exit_code == EXIT_USAGE and "npz needs --out" in res.stderr
+
+
+# ---------------------------------------------------------------------- status
+
+
+def test_status_of_a_complete_run(runner, complete_run, expected):
+    assert read_result(open_run(str(complete_run))) == expected
+    n = open_run(str(complete_run)).n_tasks
+    res = runner.invoke(main, ["status", str(complete_run)])
+    assert res.exit_code == 0, res.output
+    assert f"{n}/{n} tasks done (100.0% of the cost), 0 pending, 0 failed; complete: True" in res.stdout
+    info = json.loads(runner.invoke(main, ["status", str(complete_run), "--json"]).stdout)
+    assert (info["tasks"], info["done"], info["pending"], info["failed"]) == (n, n, 0, 0)
+    assert info["complete"] is True and info["percent"] == 100.0 and info["failures"] == {}
+    assert info["task_seconds_left_estimate"] == 0.0
+
+
+def test_status_of_incomplete_runs(tmp_path, runner, src, points, monkeypatch):
+    # created, nothing computed yet
+    fresh = tmp_path / "fresh.zarr"
+    store = create_or_open(str(fresh), points, Params.checked(EPS, None, None, COST))
+    n = store.n_tasks
+    info = json.loads(runner.invoke(main, ["status", str(fresh), "--json"]).stdout)
+    assert (info["done"], info["pending"], info["failed"], info["complete"]) == (0, n, 0, False)
+    assert info["percent"] == 0.0 and info["task_seconds_left_estimate"] is None
+    # one task that always fails: the run ends incomplete (exit 3), status names it
+    poison = 2
+    faults = make_faults(tmp_path, poison=[poison])
+    monkeypatch.setenv("CHITALLY_FAULTS", str(faults.path))
+    run = tmp_path / "run.zarr"
+    res = runner.invoke(main, ["run", str(src), "--eps", str(EPS), "--task-cost", str(COST), "--out", str(run),
+                               "--serial", "--no-progress"])
+    assert res.exit_code == EXIT_INCOMPLETE, res.output
+    assert f"task {poison} failed: RuntimeError: injected poison in task {poison}" in res.stderr
+    res = runner.invoke(main, ["status", str(run)])
+    assert res.exit_code == 0, res.output
+    assert f"{n - 1}/{n} tasks done" in res.stdout and "0 pending, 1 failed; complete: False" in res.stdout
+    assert f"task {poison} failed: RuntimeError: injected poison in task {poison}" in res.stdout
+    assert faults.attempts() == {t: 3 if t == poison else 1 for t in range(n)}
+    assert read_result(open_run(str(run))) is None and read_result(open_run(str(fresh))) is None
+
+
+def test_status_of_no_store(tmp_path, runner):
+    res = runner.invoke(main, ["status", str(tmp_path / "nothing.zarr")])
+    assert res.exit_code == 1
+    assert "no run store" in one_error_line(res)
+    assert not (tmp_path / "nothing.zarr").exists()

@@ -1,0 +1,145 @@
+"""`chitally run` on a real Dask cluster: a ``dask scheduler`` and two ``dask worker``
+processes on 127.0.0.1, reached through ``--scheduler``, ``--scheduler-file`` or the
+``DASK_SCHEDULER_ADDRESS`` environment variable. Every run must give exactly the curve of
+`chitally.euler_curve` on the same points and of a brute-force outside reference, and its
+tasks must have run on the cluster's workers, not in the driver.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pytest
+from helpers import (
+    Faults,
+    Processes,
+    brute_force_curve,
+    chitally,
+    cloud,
+    explain,
+    make_faults,
+    start_cluster,
+    write_points,
+)
+
+import chitally as ct
+from chitally.runs import open_run, read_result
+
+pytestmark = [pytest.mark.cluster, pytest.mark.timeout(180)]
+
+EPS = 0.03
+COST = 4000  # about 37 tasks for 2,500 points
+
+
+@pytest.fixture(scope="module")
+def points() -> np.ndarray:
+    return cloud(2500, seed=11)
+
+
+@pytest.fixture(scope="module")
+def expected(points: np.ndarray) -> dict[int | None, ct.Curve]:
+    """The curve by `euler_curve`, checked once against the outside reference
+    (networkx ``enumerate_all_cliques``, brute force, see helpers.brute_force_curve)."""
+    out = {}
+    for max_dim in (None, 2):
+        ours = ct.euler_curve(points, EPS, max_dim)
+        assert ours == brute_force_curve(points, EPS, max_dim)
+        out[max_dim] = ours
+    return out
+
+
+@pytest.fixture(scope="module")
+def cluster_and_faults(tmp_path_factory: pytest.TempPathFactory):
+    """One cluster for the module; its workers log every task attempt (with their pid)."""
+    folder = tmp_path_factory.mktemp("cluster")
+    faults = make_faults(folder)
+    procs = Processes(folder)
+    try:
+        cluster = start_cluster(procs, folder, 2, env=faults.env())
+        yield cluster, faults
+    finally:
+        procs.close()
+
+
+@pytest.fixture
+def cluster(cluster_and_faults):
+    return cluster_and_faults[0]
+
+
+@pytest.fixture
+def faults(cluster_and_faults) -> Faults:
+    faults = cluster_and_faults[1]
+    for f in faults.log.glob("task-*"):  # a fresh attempt log for each test
+        f.unlink()
+    return faults
+
+
+def worker_pids(address: str) -> set[int]:
+    from distributed import Client
+
+    with Client(address, timeout="10s") as client:
+        return set(client.run(os.getpid).values())
+
+
+def check_run(run: Path, expected: ct.Curve, faults: Faults, workers: set[int]) -> None:
+    curve = read_result(open_run(str(run)))
+    assert curve == expected
+    store = open_run(str(run))
+    attempts = faults.attempts()
+    # every task ran exactly once, and on the cluster's workers (both of them took part)
+    assert attempts == {t: 1 for t in range(store.n_tasks)}
+    pids = {pid for t in range(store.n_tasks) for pid in faults.pids(t)}
+    assert pids == workers
+
+
+def test_run_with_scheduler_address(tmp_path, points, expected, cluster, faults):
+    src = write_points(tmp_path / "points.npy", points)
+    run = tmp_path / "run.zarr"
+    res = chitally("run", src, "--eps", EPS, "--task-cost", COST, "--out", run,
+                   "--scheduler", cluster.address, "--no-progress")
+    assert res.returncode == 0, explain(res)
+    check_run(run, expected[None], faults, worker_pids(cluster.address))
+    assert f"{open_run(str(run)).n_tasks}/{open_run(str(run)).n_tasks} tasks reduced" in res.stderr
+
+
+def test_run_with_scheduler_file(tmp_path, points, expected, cluster, faults):
+    src = write_points(tmp_path / "points.npy", points)
+    run = tmp_path / "run.zarr"
+    res = chitally("run", src, "--eps", EPS, "--max-dim", 2, "--task-cost", COST, "--out", run,
+                   "--scheduler-file", cluster.scheduler_file, "--no-progress")
+    assert res.returncode == 0, explain(res)
+    check_run(run, expected[2], faults, worker_pids(cluster.address))
+
+
+def test_run_with_scheduler_from_environment_and_relative_paths(tmp_path, points, expected, cluster, faults):
+    """DASK_SCHEDULER_ADDRESS names the cluster. The workers run in another directory than
+    the driver, so the relative --out must reach them as the same store (the command makes
+    it absolute before handing it out)."""
+    write_points(tmp_path / "points.npy", points)
+    res = chitally("run", "points.npy", "--eps", EPS, "--task-cost", COST, "--out", "run.zarr",
+                   "--no-progress", env={"DASK_SCHEDULER_ADDRESS": cluster.address}, cwd=tmp_path)
+    assert res.returncode == 0, explain(res)
+    check_run(tmp_path / "run.zarr", expected[None], faults, worker_pids(cluster.address))
+
+
+def test_store_recreated_at_same_path(tmp_path, points, expected, cluster, faults):
+    """A long-lived cluster must not reuse what it knew of a deleted run store: a new run
+    at the same path, with other points and another eps, gives the new curve."""
+    src = write_points(tmp_path / "points.npy", points)
+    run = tmp_path / "run.zarr"
+    res = chitally("run", src, "--eps", EPS, "--task-cost", COST, "--out", run,
+                   "--scheduler", cluster.address, "--no-progress")
+    assert res.returncode == 0, explain(res)
+    assert read_result(open_run(str(run))) == expected[None]
+
+    shutil.rmtree(run)
+    other = cloud(1500, seed=12)
+    eps2 = 0.045
+    write_points(tmp_path / "other.npy", other)
+    res = chitally("run", tmp_path / "other.npy", "--eps", eps2, "--task-cost", COST, "--out", run,
+                   "--scheduler", cluster.address, "--no-progress")
+    assert res.returncode == 0, explain(res)
+    assert read_result(open_run(str(run))) == ct.euler_curve(other, eps2)
