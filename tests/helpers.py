@@ -22,11 +22,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, TypeVar
 
-import networkx as nx
 import numpy as np
 import pytest
 
-from chitally import Curve
 
 BIN = Path(sys.executable).parent
 CHITALLY = str(BIN / "chitally")
@@ -52,44 +50,6 @@ def cloud(n: int, seed: int = 1, dim: int = 2, duplicates: int = 3) -> np.ndarra
 def write_points(path: Path, points: np.ndarray) -> Path:
     np.save(path, np.asarray(points, dtype=np.float64))
     return path
-
-
-def brute_force_curve(points: np.ndarray, eps: float, max_dim: int | None = None) -> Curve:
-    """The outside reference: every simplex listed by networkx ``enumerate_all_cliques``.
-
-    Source of the method: networkx's clique enumeration (``networkx.enumerate_all_cliques``,
-    cliques in order of size) on the eps-graph; each clique of k+1 points is a k-simplex
-    valued at its longest edge, contributing (-1)^k there. The edge lengths follow the
-    tool's documented rule (squares summed in coordinate order, then sqrt; an edge iff
-    length <= eps), written here with plain numpy so that no chitally code is involved.
-    """
-    p = np.asarray(points, dtype=np.float64)
-    n, m = p.shape
-    d2 = np.zeros((n, n))
-    for k in range(m):
-        t = p[:, None, k] - p[None, :, k]
-        d2 = d2 + t * t
-    length = np.sqrt(d2)
-    graph = nx.Graph()
-    graph.add_nodes_from(range(n))
-    ii, jj = np.nonzero(np.triu(length <= eps, k=1))
-    graph.add_edges_from(zip(ii.tolist(), jj.tolist()))
-    value_of: dict[tuple[int, ...], float] = {}
-    values: list[float] = []
-    jumps: list[int] = []
-    for clique in nx.enumerate_all_cliques(graph):
-        if max_dim is not None and len(clique) > max_dim + 1:
-            break
-        key = tuple(clique)
-        if len(clique) == 1:
-            v = 0.0
-        else:  # a clique arrives as an earlier clique plus one vertex
-            v = max(value_of[key[:-1]], float(length[list(key[:-1]), key[-1]].max()))
-        value_of[key] = v
-        values.append(v)
-        jumps.append(1 if len(clique) % 2 else -1)
-    return Curve.from_jumps(np.array(values), np.array(jumps, dtype=np.int64), eps=float(eps),
-                            max_dim=max_dim, n_points=n)
 
 
 # ------------------------------------------------------------------------- polling

@@ -14,7 +14,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 from click.testing import CliRunner
-from helpers import brute_force_curve, chitally, cloud, explain, make_faults, write_points
+from references import brute_force_curve
+from helpers import chitally, cloud, explain, make_faults, write_points
 
 import chitally as ct
 from chitally.cli import main
@@ -44,9 +45,9 @@ def points() -> np.ndarray:
 @pytest.fixture(scope="module")
 def expected(points: np.ndarray) -> ct.Curve:
     """`euler_curve`, which must equal the outside reference: every simplex listed by
-    networkx ``enumerate_all_cliques`` (helpers.brute_force_curve)."""
+    networkx ``enumerate_all_cliques`` (references.brute_force_curve)."""
     curve = ct.euler_curve(points, EPS)
-    assert curve == brute_force_curve(points, EPS)
+    assert curve == brute_force_curve(points, EPS, None)
     return curve
 
 
@@ -285,6 +286,6 @@ def test_status_of_incomplete_runs(tmp_path, runner, src, points, monkeypatch):
 
 def test_status_of_no_store(tmp_path, runner):
     res = runner.invoke(main, ["status", str(tmp_path / "nothing.zarr")])
-    assert res.exit_code == 1
+    assert res.exit_code == 2  # naming a store that is not there is a usage error
     assert "no run store" in one_error_line(res)
     assert not (tmp_path / "nothing.zarr").exists()

@@ -13,10 +13,10 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from references import brute_force_curve
 from helpers import (
     Faults,
     Processes,
-    brute_force_curve,
     chitally,
     cloud,
     explain,
@@ -42,7 +42,7 @@ def points() -> np.ndarray:
 @pytest.fixture(scope="module")
 def expected(points: np.ndarray) -> dict[int | None, ct.Curve]:
     """The curve by `euler_curve`, checked once against the outside reference
-    (networkx ``enumerate_all_cliques``, brute force, see helpers.brute_force_curve)."""
+    (networkx ``enumerate_all_cliques``, brute force, see references.brute_force_curve)."""
     out = {}
     for max_dim in (None, 2):
         ours = ct.euler_curve(points, EPS, max_dim)

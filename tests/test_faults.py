@@ -23,9 +23,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 from click.testing import CliRunner
+from references import brute_force_curve
 from helpers import (
     CHITALLY,
-    brute_force_curve,
     chitally,
     chunk,
     cloud,
@@ -70,9 +70,9 @@ def points() -> np.ndarray:
 @pytest.fixture(scope="module")
 def expected(points: np.ndarray) -> ct.Curve:
     """The curve by `euler_curve`, which must equal the outside reference: every simplex
-    listed by networkx ``enumerate_all_cliques`` (helpers.brute_force_curve)."""
+    listed by networkx ``enumerate_all_cliques`` (references.brute_force_curve)."""
     curve = ct.euler_curve(points, EPS)
-    assert curve == brute_force_curve(points, EPS)
+    assert curve == brute_force_curve(points, EPS, None)
     return curve
 
 

@@ -22,7 +22,6 @@ from chitally import Curve, euler_curve, merge_jumps
 from chitally import runs
 from chitally.execute import Callbacks, SerialExecutor
 from chitally.reduce import Reducer
-from chitally.store import StoreError
 
 EPS = 0.55
 CAP = 3

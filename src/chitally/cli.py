@@ -1,7 +1,7 @@
 """The `chitally` command: thin over the Python API.
 
 Parses options, calls the API, prints, and sets exit codes: 0 done, 1 failure,
-2 bad input or usage (nothing is created), 3 incomplete but resumable (`chitally
+2 bad input or usage, including a RUN that is no run store (nothing is created), 3 incomplete but resumable (`chitally
 resume RUN`), 4 the run store is in use by another run.
 """
 
@@ -61,7 +61,7 @@ def _guarded(fn):  # one place that turns our exceptions into one line and an ex
     import functools
 
     from .cluster import ClusterError
-    from .store import LeaseHeld, StoreError, StoreMismatch
+    from .store import LeaseHeld, NotAStore, StoreError, StoreMismatch
 
     @functools.wraps(fn)
     def wrapper(*args: Any, **kwargs: Any) -> Any:
@@ -69,7 +69,7 @@ def _guarded(fn):  # one place that turns our exceptions into one line and an ex
             return fn(*args, **kwargs)
         except InputError as exc:
             _fail(str(exc), EXIT_USAGE)
-        except StoreMismatch as exc:
+        except (StoreMismatch, NotAStore) as exc:
             _fail(str(exc), EXIT_USAGE)
         except LeaseHeld as exc:
             # the store words its hint for the Python API; here the switch is a flag
