@@ -18,7 +18,7 @@ from references import brute_force_curve
 from helpers import chitally, cloud, explain, make_faults, write_points
 
 import chitally as ct
-from chitally.cli import main
+from chitally.cli import format_figure, main
 from chitally.curve import read_samples
 from chitally.runs import (
     EXIT_INCOMPLETE,
@@ -170,7 +170,7 @@ def test_plan_prints_the_plan_and_writes_nothing(tmp_path, runner, src, points, 
     want = describe_plan(points, Params.checked(EPS, None, None, COST))
     for name in ("balls", "tasks", "halo_rows", "replication"):
         assert summary[name] == want[name]
-        assert f"{name}: {want[name]}" in text
+        assert f"{name}: {format_figure(name, want[name])}" in text
     assert summary["points"] == points.shape[0]
     assert "store layout:" in text and "tables/task-000000.." in text
     # the plan is the one a run makes

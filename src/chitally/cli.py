@@ -147,6 +147,17 @@ def curve_cmd(input: str, eps: float, max_dim: int | None, key: str | None, out:
         _print_samples(curve, grid_values)
 
 
+def format_figure(name: str, value: Any) -> str:
+    """One figure of a plan summary as `chitally plan` prints it."""
+    if name.endswith("memory"):
+        return f"{value / 2**20:.1f} MiB (estimate)"
+    if isinstance(value, dict):
+        return ", ".join(f"{k} {v:g}" for k, v in value.items())
+    if isinstance(value, float):
+        return f"{value:.4g}"
+    return str(value)
+
+
 @main.command("plan")
 @input_arg
 @eps_opt
@@ -166,7 +177,7 @@ def plan_cmd(input: str, eps: float, max_dim: int | None, key: str | None, cover
         return
     layout = summary.pop("layout")
     for name, value in summary.items():
-        click.echo(f"{name:>22}: {value}")
+        click.echo(f"{name:>22}: {format_figure(name, value)}")
     click.echo("store layout:")
     click.echo(layout)
 
