@@ -103,7 +103,7 @@ def _has_bmi2() -> bool:
         return False
     try:
         return "+bmi2" in llvm.get_host_cpu_features().flatten().split(",")
-    except Exception:
+    except (RuntimeError, OSError):
         return False
 
 
@@ -154,8 +154,14 @@ def _radix_order(d2, m):
         x = keys[t]
         for d in range(npass):
             hist[d, (x >> np.uint64(d * bits)) & mask] += 1
-    order = np.arange(m).astype(np.int32)
+    # keys travel with their positions so that every pass reads sequentially
+    order = np.empty(m, dtype=np.int32)
+    for t in range(m):
+        order[t] = t
     tmp = np.empty(m, dtype=np.int32)
+    kcur = keys.copy()
+    ktmp = np.empty(m, dtype=np.uint64)
+    pos = np.empty(nbuck, dtype=np.int64)
     for d in range(npass):
         single = False
         for b in range(nbuck):
@@ -166,18 +172,20 @@ def _radix_order(d2, m):
                 break
         if single or m == 0:
             continue
-        pos = np.empty(nbuck, dtype=np.int64)
         acc = 0
         for b in range(nbuck):
             pos[b] = acc
             acc += hist[d, b]
         shift = np.uint64(d * bits)
         for t in range(m):
-            o = order[t]
-            b = (keys[o] >> shift) & mask
-            tmp[pos[b]] = o
-            pos[b] += 1
+            x = kcur[t]
+            b = (x >> shift) & mask
+            y = pos[b]
+            ktmp[y] = x
+            tmp[y] = order[t]
+            pos[b] = y + 1
         order, tmp = tmp, order
+        kcur, ktmp = ktmp, kcur
     return order
 
 
@@ -243,7 +251,7 @@ def build_graph(coords, pairs, eps):
     Returns (offsets int64[h+1], neighbours int32[2k], d2 float64[2k]); every row lists
     its neighbours in the edge order (d2, lower id, higher id).
     """
-    offsets, nbrs, erank, elo, ehi, ed2 = _edge_graph(coords, pairs, eps)
+    offsets, nbrs, erank, _elo, _ehi, ed2 = _edge_graph(coords, pairs, eps)
     nd2 = np.empty(nbrs.shape[0], dtype=np.float64)
     for k in range(nbrs.shape[0]):
         nd2[k] = ed2[erank[k]]
@@ -554,20 +562,18 @@ def _pending_bound(offsets, nbrs, own_lo, own_hi):
     for p in range(own_lo, own_hi):
         s = offsets[p]
         t = offsets[p + 1]
-        if t - s > maxdeg:
-            maxdeg = t - s
+        maxdeg = max(maxdeg, t - s)
         b = 0
         for k in range(s, t):
             w = nbrs[k]
             b += offsets[w + 1] - offsets[w]
-        if b > best:
-            best = b
+        best = max(best, b)
     return best, maxdeg
 
 
 @nb.njit(nogil=True, cache=True)
 def _vertex(p, offsets, nbrs, erank, max_dim, out_jump, stats, rank_of, prow, adj,
-            pend_g, pend_i, pend_j, srt_i, srt_j, bstart, L, cadj, rem1, rem, wstart, counts,
+            pend_g, pend_b, pend_i, pend_j, srt_i, srt_j, bstart, tab, L, cadj, rem1, rem, wstart, counts,
             stack1, signs, stack, degs, verts):
     """The jumps of every edge (p, q), q > p."""
     s = offsets[p]
@@ -579,6 +585,7 @@ def _vertex(p, offsets, nbrs, erank, max_dim, out_jump, stats, rank_of, prow, ad
         return
     n_act = last - s + 1  # ranks beyond the last owned edge never matter
     W = (n_act + 63) >> 6
+    dummy = prow.shape[0] - 1
     for a in range(n_act):
         rank_of[nbrs[s + a]] = a
         prow[a] = erank[s + a]
@@ -586,44 +593,66 @@ def _vertex(p, offsets, nbrs, erank, max_dim, out_jump, stats, rank_of, prow, ad
             adj[a, w] = 0
     gmax = prow[n_act - 1]
     depth_max = max_dim - 1
-    # the frame: edges among N(p). A pair that is not the longest edge of its triangle
-    # with p is shorter than (p, w_j) for the later neighbour j, so it goes in at once;
-    # the others wait in a bucket for the first edge of p that is longer.
+    # the frame: edges among N(p). The row of w_c is in edge order, so it splits at
+    # (w_c, p): a pair (w_j, w_c), j < c, met before it is shorter than (p, w_c) and is
+    # in the frame from the start (a pair with j > c there is met again, as such, in the
+    # row of w_j); a pair met after it is the longest edge of its triangle with p and
+    # waits in the bucket of the first edge of p that is longer. Rows are read up to
+    # the last owned edge of p only. Vertices outside the first n_act of N(p) carry the
+    # dummy rank, larger than any c.
     npend = 0
-    for i in range(n_act):
-        w = nbrs[s + i]
-        for k in range(offsets[w], offsets[w + 1]):
+    for c in range(n_act):
+        w = nbrs[s + c]
+        k = offsets[w]
+        kend = offsets[w + 1]
+        pc = prow[c]
+        bit = ONE << np.uint64(c & 63)
+        cw = c >> 6
+        while k < kend:
+            if erank[k] >= pc:
+                break
+            j = rank_of[nbrs[k]]
+            if j < c:
+                adj[c, j >> 6] |= ONE << np.uint64(j & 63)
+                adj[j, cw] |= bit
+            k += 1
+        while k < kend:
             g = erank[k]
             if g > gmax:
-                break  # rows are in edge order: the rest is never used
+                break
             j = rank_of[nbrs[k]]
-            if j > i:
-                if g < prow[j]:
-                    _set_edge(adj, i, j)
-                else:
-                    pend_g[npend] = g
-                    pend_i[npend] = i
-                    pend_j[npend] = j
-                    npend += 1
+            if j < c:
+                pend_g[npend] = g
+                pend_i[npend] = j
+                pend_j[npend] = c
+                npend += 1
+            k += 1
+    # bucket of a waiting pair: the first r with prow[r] > g, found from a coarse table
+    g0 = prow[0]
+    shift = 0
+    while ((gmax - g0) >> shift) >= tab.shape[0] - 1:
+        shift += 1
+    r = 0
+    for x in range(((gmax - g0) >> shift) + 1):
+        lim = g0 + (x << shift)
+        while prow[r] < lim:
+            r += 1
+        tab[x] = r
+    for x in range(npend):
+        g = pend_g[x]
+        r = tab[(g - g0) >> shift]
+        while prow[r] < g:
+            r += 1
+        pend_b[x] = r
     stats[4] += npend
     for r in range(n_act + 1):
         bstart[r] = 0
     for x in range(npend):
-        g = pend_g[x]
-        a = pend_j[x] + 1
-        b = n_act - 1
-        while a < b:
-            mid = (a + b) >> 1
-            if prow[mid] > g:
-                b = mid
-            else:
-                a = mid + 1
-        pend_g[x] = a
-        bstart[a + 1] += 1
+        bstart[pend_b[x] + 1] += 1
     for r in range(n_act):
         bstart[r + 1] += bstart[r]
     for x in range(npend):
-        a = pend_g[x]
+        a = pend_b[x]
         y = bstart[a]
         srt_i[y] = pend_i[x]
         srt_j[y] = pend_j[x]
@@ -688,7 +717,7 @@ def _vertex(p, offsets, nbrs, erank, max_dim, out_jump, stats, rank_of, prow, ad
             c = _reduced_euler(adj, L, Wr, stack, signs, degs, verts, stats)
         out_jump[prow[r]] = c
     for a in range(n_act):
-        rank_of[nbrs[s + a]] = -1
+        rank_of[nbrs[s + a]] = dummy
 
 
 @nb.njit(nogil=True, cache=True)
@@ -707,10 +736,15 @@ def count_range(offsets, nbrs, erank, own_lo, own_hi, max_dim, out_jump, stats):
     if maxdeg == 0:
         return
     Wmax = (maxdeg + 63) // 64
-    rank_of = np.full(h, -1, dtype=np.int32)
-    prow = np.empty(maxdeg, dtype=np.int64)
+    # the dummy rank: a column past every real one, with an unreachable threshold
+    dummy = 64 * Wmax
+    rank_of = np.full(h, dummy, dtype=np.int32)
+    prow = np.empty(dummy + 1, dtype=np.int64)
+    prow[dummy] = np.iinfo(np.int64).max
     adj = np.zeros((maxdeg, Wmax), dtype=np.uint64)
     pend_g = np.empty(bound, dtype=np.int64)
+    pend_b = np.empty(bound, dtype=np.int32)
+    tab = np.empty(1024, dtype=np.int32)
     pend_i = np.empty(bound, dtype=np.int32)
     pend_j = np.empty(bound, dtype=np.int32)
     srt_i = np.empty(bound, dtype=np.int32)
@@ -730,7 +764,7 @@ def count_range(offsets, nbrs, erank, own_lo, own_hi, max_dim, out_jump, stats):
     verts = np.empty(maxdeg, dtype=np.int64)
     for p in range(own_lo, own_hi):
         _vertex(p, offsets, nbrs, erank, max_dim, out_jump, stats, rank_of, prow, adj,
-                pend_g, pend_i, pend_j, srt_i, srt_j, bstart, L, cadj, rem1, rem, wstart, counts,
+                pend_g, pend_b, pend_i, pend_j, srt_i, srt_j, bstart, tab, L, cadj, rem1, rem, wstart, counts,
                 stack1, signs, stack, degs, verts)
 
 
@@ -881,7 +915,7 @@ def count_jumps(
         values = np.zeros(1 if hi > lo else 0, dtype=np.float64)
         jumps = np.full(values.shape, hi - lo, dtype=np.int64)
         return JumpTable(values, jumps, stats)
-    offsets, nbrs, erank, elo, ehi, ed2 = _halo_graph(coords, eps)
+    offsets, nbrs, erank, elo, _ehi, ed2 = _halo_graph(coords, eps)
     t1 = time.perf_counter()
     out_jump = np.empty(ed2.shape[0], dtype=np.int64)
     stats.edges = int(_owned_edges(elo, lo, hi, out_jump, cap == 1))
