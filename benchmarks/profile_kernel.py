@@ -40,12 +40,12 @@ def graph_phases(x: np.ndarray, eps: float) -> dict:
     t["query_pairs"] = t2 - t1
     t["pairs"] = pairs.shape[0]
     t0 = clock()
-    _lo, _hi, d2, m = kernel._filter_pairs(x, pairs, eps)
+    kernel._filter_pairs(x, pairs, eps)
     t1 = clock()
-    kernel._radix_order(d2, m)
+    kernel._edge_graph(x, pairs, eps)
     t2 = clock()
     t["filter"] = t1 - t0
-    t["radix"] = t2 - t1
+    t["filter+sort+csr"] = t2 - t1
     t0 = clock()
     g = kernel._halo_graph(x, eps)
     t["halo_graph(total)"] = clock() - t0

@@ -138,55 +138,59 @@ def _filter_pairs(coords, pairs, eps):
 
 
 @nb.njit(nogil=True, cache=True)
-def _radix_order(d2, m):
-    """Positions of d2[:m] in increasing order (stable), by LSD radix on the bits.
+def _sort_bucket_small(elo, ehi, ed2, a, b):
+    """Insertion sort of records [a, b) by (d2, lo, hi); buckets are a handful long."""
+    for t in range(a + 1, b):
+        x = ed2[t]
+        l = elo[t]
+        u = ehi[t]
+        s = t - 1
+        while s >= a:
+            y = ed2[s]
+            if y < x or (y == x and (elo[s] < l or (elo[s] == l and ehi[s] < u))):
+                break
+            ed2[s + 1] = y
+            elo[s + 1] = elo[s]
+            ehi[s + 1] = ehi[s]
+            s -= 1
+        ed2[s + 1] = x
+        elo[s + 1] = l
+        ehi[s + 1] = u
 
-    Non-negative doubles order like their bit patterns; digits equal in every key are
-    skipped, which drops the sign and most exponent bits of a bounded range.
-    """
-    bits = 11
-    nbuck = 1 << bits
-    npass = (64 + bits - 1) // bits
-    keys = d2[:m].view(np.uint64)
-    hist = np.zeros((npass, nbuck), dtype=np.int64)
-    mask = np.uint64(nbuck - 1)
-    for t in range(m):
-        x = keys[t]
-        for d in range(npass):
-            hist[d, (x >> np.uint64(d * bits)) & mask] += 1
-    # keys travel with their positions so that every pass reads sequentially
-    order = np.empty(m, dtype=np.int32)
-    for t in range(m):
-        order[t] = t
-    tmp = np.empty(m, dtype=np.int32)
-    kcur = keys.copy()
-    ktmp = np.empty(m, dtype=np.uint64)
-    pos = np.empty(nbuck, dtype=np.int64)
-    for d in range(npass):
-        single = False
-        for b in range(nbuck):
-            if hist[d, b] == m:
-                single = True
-                break
-            if hist[d, b] != 0:
-                break
-        if single or m == 0:
-            continue
-        acc = 0
-        for b in range(nbuck):
-            pos[b] = acc
-            acc += hist[d, b]
-        shift = np.uint64(d * bits)
-        for t in range(m):
-            x = kcur[t]
-            b = (x >> shift) & mask
-            y = pos[b]
-            ktmp[y] = x
-            tmp[y] = order[t]
-            pos[b] = y + 1
-        order, tmp = tmp, order
-        kcur, ktmp = ktmp, kcur
-    return order
+
+@nb.njit(nogil=True, cache=True)
+def _sort_bucket_large(elo, ehi, ed2, a, b, h):
+    """Sort records [a, b) by (d2, lo, hi) when a bucket is crowded (ties, clusters),
+    where insertion sort would be quadratic."""
+    o = np.argsort(ed2[a:b])
+    lo = elo[a:b].copy()
+    hi = ehi[a:b].copy()
+    d2 = ed2[a:b].copy()
+    for k in range(b - a):
+        elo[a + k] = lo[o[k]]
+        ehi[a + k] = hi[o[k]]
+        ed2[a + k] = d2[o[k]]
+    # ties in d2 (lattices, duplicate points) are ordered by (lo, hi)
+    t = a
+    while t < b:
+        u = t + 1
+        while u < b and ed2[u] == ed2[t]:
+            u += 1
+        if u - t > 1:
+            key = np.empty(u - t, dtype=np.int64)
+            for c in range(t, u):
+                key[c - t] = np.int64(elo[c]) * h + ehi[c]
+            srt = np.sort(key)
+            for c in range(t, u):
+                elo[c] = srt[c - t] // h
+                ehi[c] = srt[c - t] % h
+        t = u
+
+
+# buckets longer than this are sorted by _sort_bucket_large
+_SMALL_BUCKET = 48
+# coarse buckets of the first distribution pass: few enough write streams to stay cached
+_COARSE = 2048
 
 
 @nb.njit(nogil=True, cache=True)
@@ -199,36 +203,100 @@ def _edge_graph(coords, pairs, eps):
     """
     h = coords.shape[0]
     lo0, hi0, d20, m = _filter_pairs(coords, pairs, eps)
-    order = _radix_order(d20, m)
+    # Two distribution passes by value instead of a multi-pass radix sort plus a gather:
+    # u = d2 * scale is non-decreasing in d2 (a product by a positive constant, a
+    # difference with a constant and floor are all monotone), so coarse buckets floor(u),
+    # fine buckets floor((u - coarse) * nfine) inside them, and a sort of every fine
+    # bucket by (d2, lo, hi) sort the whole edge list, ties included. The coarse pass
+    # writes to few streams and each coarse bucket fits in cache for the fine pass, where
+    # one random scatter over all edges would miss the cache on nearly every write.
+    dmax = 0.0
+    for g in range(m):
+        if d20[g] > dmax:
+            dmax = d20[g]
+    ncoarse = _COARSE if m > 4 * _COARSE else max(1, m >> 2)
+    # dmax == 0 (all duplicates) or inf gives scale 0: every finite d2 goes to bucket 0
+    # and an infinite one (inf * 0 is nan) to the last bucket, which is still monotone
+    scale = ncoarse / dmax if dmax > 0.0 else 0.0
+    if not (scale < math.inf):
+        scale = 0.0
+    top = ncoarse - 1
+    start = np.zeros(ncoarse + 1, dtype=np.int64)
+    offsets = np.zeros(h + 1, dtype=np.int64)
+    for g in range(m):
+        u = d20[g] * scale
+        c = int(u) if u < top else top
+        start[c + 1] += 1
+        # degrees do not depend on the order, so the CSR row sizes are counted here too
+        offsets[lo0[g] + 1] += 1
+        offsets[hi0[g] + 1] += 1
+    for c in range(ncoarse):
+        start[c + 1] += start[c]
+    for i in range(h):
+        offsets[i + 1] += offsets[i]
+    fill = start[:-1].copy()
     elo = np.empty(m, dtype=np.int32)
     ehi = np.empty(m, dtype=np.int32)
     ed2 = np.empty(m, dtype=np.float64)
+    biggest = 0
     for g in range(m):
-        o = order[g]
-        elo[g] = lo0[o]
-        ehi[g] = hi0[o]
-        ed2[g] = d20[o]
-    # ties in d2 (lattices, duplicate points) are ordered by (lo, hi)
-    t = 0
-    while t < m:
-        u = t + 1
-        while u < m and ed2[u] == ed2[t]:
-            u += 1
-        if u - t > 1:
-            key = np.empty(u - t, dtype=np.int64)
-            for a in range(t, u):
-                key[a - t] = np.int64(elo[a]) * h + ehi[a]
-            srt = np.sort(key)
-            for a in range(t, u):
-                elo[a] = srt[a - t] // h
-                ehi[a] = srt[a - t] % h
-        t = u
-    offsets = np.zeros(h + 1, dtype=np.int64)
-    for g in range(m):
-        offsets[elo[g] + 1] += 1
-        offsets[ehi[g] + 1] += 1
-    for i in range(h):
-        offsets[i + 1] += offsets[i]
+        x = d20[g]
+        u = x * scale
+        c = int(u) if u < top else top
+        y = fill[c]
+        elo[y] = lo0[g]
+        ehi[y] = hi0[g]
+        ed2[y] = x
+        fill[c] = y + 1
+    for c in range(ncoarse):
+        biggest = max(biggest, start[c + 1] - start[c])
+    fend = np.empty((biggest >> 2) + 1, dtype=np.int64)
+    tlo = np.empty(biggest, dtype=np.int32)
+    thi = np.empty(biggest, dtype=np.int32)
+    td2 = np.empty(biggest, dtype=np.float64)
+    for c in range(ncoarse):
+        a = start[c]
+        e = start[c + 1]
+        if e - a <= _SMALL_BUCKET:
+            if e - a > 1:
+                _sort_bucket_small(elo, ehi, ed2, a, e)
+            continue
+        # about four edges a fine bucket
+        nf = (e - a) >> 2
+        last = nf - 1
+        for f in range(nf):
+            fend[f] = 0
+        for t in range(a, e):
+            v = (ed2[t] * scale - c) * nf
+            f = int(v) if v < last else last
+            fend[f] += 1
+        acc = 0
+        for f in range(nf):
+            k = fend[f]
+            fend[f] = acc
+            acc += k
+        for t in range(a, e):
+            v = (ed2[t] * scale - c) * nf
+            f = int(v) if v < last else last
+            y = fend[f]
+            tlo[y] = elo[t]
+            thi[y] = ehi[t]
+            td2[y] = ed2[t]
+            fend[f] = y + 1
+        for t in range(e - a):
+            elo[a + t] = tlo[t]
+            ehi[a + t] = thi[t]
+            ed2[a + t] = td2[t]
+        # fend[f] is now where fine bucket f ends
+        p = a
+        for f in range(nf):
+            q = a + fend[f]
+            if q - p > 1:
+                if q - p <= _SMALL_BUCKET:
+                    _sort_bucket_small(elo, ehi, ed2, p, q)
+                else:
+                    _sort_bucket_large(elo, ehi, ed2, p, q, h)
+            p = q
     fill = offsets[:-1].copy()
     nbrs = np.empty(2 * m, dtype=np.int32)
     erank = np.empty(2 * m, dtype=np.int32)
