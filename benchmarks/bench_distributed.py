@@ -35,6 +35,30 @@ def cube_at_density(n: int, seed: int = 0) -> np.ndarray:
     return np.random.default_rng(seed).random((n, 3)) * side
 
 
+def _spin(n: int) -> float:
+    t0 = time.perf_counter()
+    s = 0
+    for i in range(n):
+        s += i * i
+    return time.perf_counter() - t0
+
+
+def parallel_ceiling(n: int = 20_000_000) -> float:
+    """How much faster two CPU-bound processes finish than one after the other, here.
+
+    On a machine whose two vCPUs share one physical core this is well below 2, and no
+    scheduler can beat it: the scaling figure is reported against it.
+    """
+    from multiprocessing import get_context
+
+    one = _spin(n)
+    with get_context("spawn").Pool(2) as pool:
+        t0 = time.perf_counter()
+        pool.map(_spin, [n, n])
+        both = time.perf_counter() - t0
+    return 2 * one / both
+
+
 def timed_run(client, points, params, where: Path):
     t0 = time.perf_counter()
     store = create_or_open(str(where), points, params)
@@ -46,7 +70,7 @@ def timed_run(client, points, params, where: Path):
 
 def main() -> None:
     ap = argparse.ArgumentParser()
-    ap.add_argument("--scale-points", type=int, default=100_000)
+    ap.add_argument("--scale-points", type=int, default=100_000)  # ~60 s in process on one core here
     ap.add_argument("--scale-eps", type=float, default=0.35)
     ap.add_argument("--scale-cap", type=int, default=None)
     args = ap.parse_args()
@@ -59,6 +83,8 @@ def main() -> None:
     timed_run(client, warm, Params.checked(0.3), tmp / "warm.zarr")
 
     print("== scaling")
+    ceiling = parallel_ceiling()
+    print(f"this machine runs two CPU-bound processes {ceiling:.2f}x faster than one after the other")
     pts = sphere4(args.scale_points)
     params = Params.checked(args.scale_eps, args.scale_cap)
     t0 = time.perf_counter()
@@ -68,7 +94,8 @@ def main() -> None:
     t_run = t_plan + t_exec
     print(f"S^4 {args.scale_points} points, eps {params.eps}, cap {params.max_dim}: in process 1 thread {t_in:.1f} s; "
           f"2-worker run {t_run:.1f} s (plan+store {t_plan:.1f} s, execute+reduce {t_exec:.1f} s, "
-          f"{store.n_tasks} tasks); speedup {t_in / t_run:.2f}x (execute only {t_in / t_exec:.2f}x); "
+          f"{store.n_tasks} tasks); speedup {t_in / t_run:.2f}x (execute only {t_in / t_exec:.2f}x; "
+          f"{t_in / t_run / ceiling:.0%} of the machine's ceiling); "
           f"identical: {report.curve == ref}")
 
     print("== per-task overhead")
