@@ -1138,6 +1138,32 @@ def _halo_graph(coords: np.ndarray, eps: float):
     return _sorted_graph(h, lo0, hi0, d20, m)
 
 
+def _cap1_table(coords: np.ndarray, eps: float, lo: int, hi: int, stats: KernelStats, t0: float) -> JumpTable:
+    """Cap 1: -1 per owned edge at its length. No edge order or CSR is needed, only
+    the lengths of the edges whose lower endpoint is owned, grouped by value."""
+    import time
+
+    reach = query_radius(eps)
+    elo, _ehi, ed2, m = _tree_edges(coords, float(eps), reach * reach, _TREE_LEAF, _MAX_EDGES)
+    if m < 0:
+        raise ValueError(f"a halo of more than {_MAX_EDGES} edges is too large for one task")
+    elo, ed2 = elo[:m], ed2[:m]
+    t1 = time.perf_counter()
+    lengths = np.sqrt(ed2[(elo >= lo) & (elo < hi)])
+    stats.edges = int(lengths.shape[0])
+    values, counts = np.unique(lengths, return_counts=True)
+    jumps = -counts.astype(np.int64)
+    if values.shape[0] and values[0] == 0.0:
+        jumps[0] += hi - lo  # coincident points: their 0-length edges meet the vertices
+    else:
+        values = np.concatenate([[0.0], values])
+        jumps = np.concatenate([[hi - lo], jumps])
+    keep = jumps != 0
+    stats.seconds_graph = t1 - t0
+    stats.seconds_count = time.perf_counter() - t1
+    return JumpTable(values[keep], jumps[keep], stats)
+
+
 def _split_evenly(offsets: np.ndarray, lo: int, hi: int, pieces: int) -> list[tuple[int, int]]:
     """Cut [lo, hi) into pieces of about equal deg^2 weight (the frame dominates)."""
     if pieces <= 1 or hi - lo <= 1:
@@ -1196,6 +1222,8 @@ def count_jumps(
         values = np.zeros(1 if hi > lo else 0, dtype=np.float64)
         jumps = np.full(values.shape, hi - lo, dtype=np.int64)
         return JumpTable(values, jumps, stats)
+    if cap == 1 and eps >= 0.0 and coords.shape[1] > 0 and np.isfinite(coords).all():
+        return _cap1_table(coords, eps, lo, hi, stats, t0)
     offsets, nbrs, erank, elo, _ehi, ed2 = _halo_graph(coords, eps)
     t1 = time.perf_counter()
     out_jump = np.empty(ed2.shape[0], dtype=np.int64)
