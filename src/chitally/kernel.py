@@ -430,19 +430,6 @@ def _row_box_d2(box_lo, box_hi, node, xs, i):
     return s
 
 
-@nb.njit(inline="always", nogil=True, cache=True)
-def _box_box_d2(box_lo, box_hi, a, b):
-    s = 0.0
-    for k in range(box_lo.shape[1]):
-        t = 0.0
-        if box_hi[a, k] < box_lo[b, k]:
-            t = box_lo[b, k] - box_hi[a, k]
-        elif box_hi[b, k] < box_lo[a, k]:
-            t = box_lo[a, k] - box_hi[b, k]
-        s += t * t
-    return s
-
-
 @nb.njit(nogil=True, cache=True)
 def _tree_edges(coords, eps, prune2, leaf_size, max_edges):
     """Every pair within eps by the one rule, as (lo, hi, d2, m) like _filter_pairs;
@@ -480,7 +467,7 @@ def _tree_edges(coords, eps, prune2, leaf_size, max_edges):
             # empty, wholly before leaf a, or out of reach
             if stop[node] == start[node] or stop[node] <= a0:
                 continue
-            if _box_box_d2(box_lo, box_hi, a, node) > prune2:
+            if _cover._box_box_squared_distance(box_lo, box_hi, a, node) > prune2:
                 continue
             if node >= first_leaf:
                 if n_near == near.shape[0]:
