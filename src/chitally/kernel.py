@@ -416,20 +416,6 @@ def _kd_build(x, leaf_size):
     return xs, perm, start, stop, box_lo, box_hi
 
 
-@nb.njit(inline="always", nogil=True, cache=True)
-def _row_box_d2(box_lo, box_hi, node, xs, i):
-    s = 0.0
-    for k in range(xs.shape[1]):
-        v = xs[i, k]
-        t = 0.0
-        if v < box_lo[node, k]:
-            t = box_lo[node, k] - v
-        elif v > box_hi[node, k]:
-            t = v - box_hi[node, k]
-        s += t * t
-    return s
-
-
 @nb.njit(nogil=True, cache=True)
 def _tree_edges(coords, eps, prune2, leaf_size, max_edges):
     """Every pair within eps by the one rule, as (lo, hi, d2, m) like _filter_pairs;
@@ -483,7 +469,7 @@ def _tree_edges(coords, eps, prune2, leaf_size, max_edges):
         for i in range(a0, a1):
             for t in range(n_near):
                 b = near[t]
-                if b != a and _row_box_d2(box_lo, box_hi, b, xs, i) > prune2:
+                if b != a and _cover._box_squared_distance(box_lo, box_hi, b, xs, i) > prune2:
                     continue
                 jfrom = i + 1 if b == a else start[b]
                 b1 = stop[b]
