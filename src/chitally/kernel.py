@@ -505,6 +505,17 @@ def _set_edge(adj, i, j):
     adj[j, i >> 6] |= ONE << np.uint64(i & 63)
 
 
+@nb.njit(inline="always", nogil=True, cache=True)
+def _signed_clique_sum(counts, depth_max):
+    """c(e) from clique counts by size: sum over k of (-1)^(k+1) counts[k]."""
+    total = 0
+    sign = -1
+    for k in range(depth_max + 1):
+        total += sign * counts[k]
+        sign = -sign
+    return total
+
+
 @nb.njit(nogil=True, cache=True)
 def _count_capped(adj, L, W, depth_max, rem, wstart, counts):
     """Signed clique count of G_e (vertex set L) for cliques of size <= depth_max.
@@ -547,12 +558,7 @@ def _count_capped(adj, L, W, depth_max, rem, wstart, counts):
                     rem[level + 1, x] = 0
                 wstart[level + 1] = w
                 level += 1
-    total = 0
-    sign = -1
-    for k in range(depth_max + 1):
-        total += sign * counts[k]
-        sign = -sign
-    return total
+    return _signed_clique_sum(counts, depth_max)
 
 
 @nb.njit(nogil=True, cache=True)
@@ -579,12 +585,7 @@ def _count_capped1(cadj, n, depth_max, rem, counts):
             if level + 3 <= depth_max and cnt >= 2:
                 rem[level + 1] = y
                 level += 1
-    total = 0
-    sign = -1
-    for k in range(depth_max + 1):
-        total += sign * counts[k]
-        sign = -sign
-    return total
+    return _signed_clique_sum(counts, depth_max)
 
 
 @nb.njit(nogil=True, cache=True)
