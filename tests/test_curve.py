@@ -105,6 +105,21 @@ def test_merge_accepts_a_single_pair() -> None:
     assert v2.tolist() == [0.1, 0.3] and j2.tolist() == [2, 6]
 
 
+def test_merge_of_a_table_already_in_order_matches_the_shuffled_one() -> None:
+    # a kernel's table arrives sorted and skips the sort; ties, zeros and -0.0 must
+    # still be merged exactly as for the same entries in any order
+    values = np.array([-0.0, 0.0, 0.1, 0.1, 0.2, 0.3, 0.3, 0.3])
+    jumps = np.array([2, 1, -1, 1, 0, -4, 2, 1])
+    kept = values.copy()
+    sorted_v, sorted_j = merge_jumps(values, jumps)
+    order = np.random.default_rng(3).permutation(values.size)
+    shuffled_v, shuffled_j = merge_jumps(values[order], jumps[order])
+    assert sorted_v.tolist() == shuffled_v.tolist() == [0.0, 0.3]
+    assert sorted_j.tolist() == shuffled_j.tolist() == [3, -1]
+    assert sorted_v.view(np.uint64)[0] == 0  # +0.0
+    assert values.view(np.uint64).tolist() == kept.view(np.uint64).tolist()  # input untouched
+
+
 def test_merge_empty_and_all_cancelled() -> None:
     for v, j in (merge_jumps([], []), merge_jumps([np.array([0.5])], [np.array([0])])):
         assert v.shape == (0,) and v.dtype == np.float64
