@@ -4,8 +4,8 @@
 within R of it), numbers the balls so that consecutive balls are neighbours, rewrites the
 rows ball by ball, and lists for every ball the balls that can hold an eps-neighbour of its
 points. Every membership decision goes through the one distance rule of
-:mod:`chitally.metric`; the spatial index (a small compiled KD-tree kept here) only
-proposes candidates. It performs no I/O and knows nothing of Dask, Zarr or the run store.
+:mod:`chitally.metric`; the spatial index (the compiled KD-tree of :mod:`chitally.kdtree`)
+only proposes candidates. It performs no I/O and knows nothing of Dask, Zarr or the run store.
 """
 
 from __future__ import annotations
@@ -13,6 +13,7 @@ from __future__ import annotations
 import numba as nb
 import numpy as np
 
+from chitally.kdtree import STACK_DEPTH, box_squared_distance, build_tree_parallel, near_leaves
 from chitally.metric import query_radius, squared_distance, within
 from chitally.plan import Cover
 
@@ -27,128 +28,6 @@ LEAF_SIZE = 16
 # batched per leaf, so bigger leaves amortise the walk; 32 measured fastest on 10^6 balls.
 CENTRE_LEAF_SIZE = 32
 
-# Deepest tree we can traverse with the fixed stack below: 2**60 leaves is far beyond any
-# point count a process can hold.
-_STACK_DEPTH = 128
-
-
-# --------------------------------------------------------------------------------------
-# A compiled, implicit KD-tree.
-#
-# scipy's cKDTree answers batched radius queries as Python lists, which at 10^7 queries
-# costs gigabytes of objects, and the greedy cover is sequential by nature (each query
-# depends on what the previous ones covered). So the cover keeps its own tree inside
-# numba: median splits on the dimension of widest spread, all leaves at one depth, nodes
-# in heap order (children of k are 2k+1 and 2k+2), no pointers. The build reorders a
-# copy of the coordinates physically, so queries and the final leaf order read memory
-# sequentially. The tree proposes candidates only: membership is always decided by
-# `metric.within` on `metric.squared_distance`.
-# --------------------------------------------------------------------------------------
-
-
-@nb.njit(nogil=True, cache=True)
-def _swap_rows(xs, perm, i, j):
-    t = perm[i]
-    perm[i] = perm[j]
-    perm[j] = t
-    for k in range(xs.shape[1]):
-        v = xs[i, k]
-        xs[i, k] = xs[j, k]
-        xs[j, k] = v
-
-
-@nb.njit(nogil=True, cache=True)
-def _nth_element(xs, perm, lo, hi, nth, dim):
-    """Reorder rows lo..hi-1 so that row `nth` holds the value it would hold if sorted by
-    coordinate `dim`, with no larger value before it and no smaller one after it
-    (Hoare's selection; equal keys split evenly, so duplicate points stay cheap)."""
-    left = lo
-    right = hi - 1
-    while right > left:
-        a = xs[left, dim]
-        b = xs[(left + right) // 2, dim]
-        c = xs[right, dim]
-        # median of three: robust on rows that are already sorted
-        pivot = max(min(a, b), min(max(a, b), c))
-        i = left
-        j = right
-        while i <= j:
-            while xs[i, dim] < pivot:
-                i += 1
-            while xs[j, dim] > pivot:
-                j -= 1
-            if i <= j:
-                _swap_rows(xs, perm, i, j)
-                i += 1
-                j -= 1
-        if nth <= j:
-            right = j
-        elif nth >= i:
-            left = i
-        else:
-            return
-
-
-@nb.njit(nogil=True, cache=True)
-def _tree_depth(n, leaf_size):
-    depth = 0
-    while (n + (1 << depth) - 1) >> depth > leaf_size:
-        depth += 1
-    return depth
-
-
-@nb.njit(parallel=True, cache=True)
-def _build_tree(x, leaf_size):
-    """Return (xs, perm, start, stop, box_lo, box_hi): xs = x[perm] in leaf order and,
-    per heap node, its row range in xs and its exact bounding box.
-
-    Built level by level: the nodes of one level own disjoint row ranges, so they are
-    split in parallel.
-    """
-    n, m = x.shape
-    depth = _tree_depth(n, leaf_size)
-    n_nodes = (1 << (depth + 1)) - 1
-    first_leaf = (1 << depth) - 1
-    xs = x.copy()
-    perm = np.arange(n, dtype=np.int64)
-    start = np.empty(n_nodes, dtype=np.int64)
-    stop = np.empty(n_nodes, dtype=np.int64)
-    box_lo = np.empty((n_nodes, m), dtype=np.float64)
-    box_hi = np.empty((n_nodes, m), dtype=np.float64)
-    start[0] = 0
-    stop[0] = n
-    for level in range(depth + 1):
-        first = (1 << level) - 1
-        for t in nb.prange(1 << level):
-            node = first + t
-            s = start[node]
-            e = stop[node]
-            lo = np.full(m, np.inf)
-            hi = np.full(m, -np.inf)
-            for i in range(s, e):
-                for k in range(m):
-                    v = xs[i, k]
-                    lo[k] = min(lo[k], v)
-                    hi[k] = max(hi[k], v)
-            box_lo[node] = lo
-            box_hi[node] = hi
-            if node < first_leaf:
-                dim = 0
-                spread = -1.0
-                for k in range(m):
-                    w = hi[k] - lo[k]
-                    if w > spread:
-                        spread = w
-                        dim = k
-                mid = (s + e) // 2
-                if e - s > 1:
-                    _nth_element(xs, perm, s, e, mid, dim)
-                start[2 * node + 1] = s
-                stop[2 * node + 1] = mid
-                start[2 * node + 2] = mid
-                stop[2 * node + 2] = e
-    return xs, perm, start, stop, box_lo, box_hi
-
 
 def _prune_bound(radius: float) -> float:
     """Squared distance beyond which a tree box cannot hold a row within `radius`.
@@ -158,21 +37,6 @@ def _prune_bound(radius: float) -> float:
     """
     reach = query_radius(radius)
     return reach * reach
-
-
-@nb.njit(inline="always", nogil=True, cache=True)
-def _box_squared_distance(box_lo, box_hi, node, q, qi):
-    """A lower bound on d2 from row qi of q to any point of the node's box."""
-    s = 0.0
-    for k in range(q.shape[1]):
-        v = q[qi, k]
-        t = 0.0
-        if v < box_lo[node, k]:
-            t = box_lo[node, k] - v
-        elif v > box_hi[node, k]:
-            t = v - box_hi[node, k]
-        s += t * t
-    return s
 
 
 @nb.njit(nogil=True, cache=True)
@@ -191,7 +55,7 @@ def _greedy_cover(xs, start, stop, box_lo, box_hi, radius, prune2):
     # Uncovered rows per node: whole subtrees behind the sweep are skipped without
     # looking at their boxes.
     uncovered = stop - start
-    stack = np.empty(_STACK_DEPTH, dtype=np.int64)
+    stack = np.empty(STACK_DEPTH, dtype=np.int64)
     n_balls = 0
     for p in range(n):
         if owner[p] >= 0:
@@ -206,7 +70,7 @@ def _greedy_cover(xs, start, stop, box_lo, box_hi, radius, prune2):
             node = stack[top]
             if uncovered[node] == 0:
                 continue
-            if _box_squared_distance(box_lo, box_hi, node, xs, p) > prune2:
+            if box_squared_distance(box_lo, box_hi, node, xs, p) > prune2:
                 continue
             if node >= first_leaf:
                 claimed = 0
@@ -228,48 +92,6 @@ def _greedy_cover(xs, start, stop, box_lo, box_hi, radius, prune2):
     return owner, centre_rows[:n_balls].copy(), n_balls
 
 
-@nb.njit(inline="always", nogil=True, cache=True)
-def _box_box_squared_distance(box_lo, box_hi, a, b):
-    """A lower bound on d2 between any point of box a and any point of box b."""
-    s = 0.0
-    for k in range(box_lo.shape[1]):
-        t = 0.0
-        if box_hi[a, k] < box_lo[b, k]:
-            t = box_lo[b, k] - box_hi[a, k]
-        elif box_hi[b, k] < box_lo[a, k]:
-            t = box_lo[a, k] - box_hi[b, k]
-        s += t * t
-    return s
-
-
-@nb.njit(nogil=True, cache=True)
-def _near_leaves(start, stop, box_lo, box_hi, a, prune2, out):
-    """Leaves whose boxes come within sqrt(prune2) of node a's box, written into `out`
-    while it has room; returns how many there are."""
-    n_nodes = start.shape[0]
-    first_leaf = (n_nodes - 1) // 2
-    stack = np.empty(_STACK_DEPTH, dtype=np.int64)
-    top = 1
-    stack[0] = 0
-    count = 0
-    while top > 0:
-        top -= 1
-        node = stack[top]
-        if stop[node] == start[node]:
-            continue
-        if _box_box_squared_distance(box_lo, box_hi, a, node) > prune2:
-            continue
-        if node >= first_leaf:
-            if count < out.shape[0]:
-                out[count] = node
-            count += 1
-        else:
-            stack[top] = 2 * node + 2
-            stack[top + 1] = 2 * node + 1
-            top += 2
-    return count
-
-
 @nb.njit(nogil=True, cache=True)
 def _join_leaf(xs, perm, start, stop, box_lo, box_hi, leaf, reach, prune2, offsets, out, fill):
     """For every row of one leaf, the tree rows within `reach` of it (exact rule).
@@ -279,16 +101,16 @@ def _join_leaf(xs, perm, start, stop, box_lo, box_hi, leaf, reach, prune2, offse
     true, writes the original ids of the matches into ``out[offsets[perm[i]]:...]``.
     """
     near = np.empty(64, dtype=np.int64)
-    n_near = _near_leaves(start, stop, box_lo, box_hi, leaf, prune2, near)
+    n_near = near_leaves(start, stop, box_lo, box_hi, leaf, prune2, near, 0)
     if n_near > near.shape[0]:
         near = np.empty(n_near, dtype=np.int64)
-        _near_leaves(start, stop, box_lo, box_hi, leaf, prune2, near)
+        near_leaves(start, stop, box_lo, box_hi, leaf, prune2, near, 0)
     for i in range(start[leaf], stop[leaf]):
         count = 0
         base = offsets[perm[i]] if fill else 0
         for t in range(n_near):
             other = near[t]
-            if _box_squared_distance(box_lo, box_hi, other, xs, i) > prune2:
+            if box_squared_distance(box_lo, box_hi, other, xs, i) > prune2:
                 continue
             for j in range(start[other], stop[other]):
                 if within(squared_distance(xs, j, xs, i), reach):
@@ -304,7 +126,7 @@ def _neighbour_balls(centre_xyz, reach, prune2, leaf_size):
     """CSR lists of the balls whose centres are within `reach` (exact rule) of each
     ball's centre, the ball itself included, each list sorted."""
     n_balls = centre_xyz.shape[0]
-    cs, cperm, start, stop, box_lo, box_hi = _build_tree(centre_xyz, leaf_size)
+    cs, cperm, start, stop, box_lo, box_hi = build_tree_parallel(centre_xyz, leaf_size)
     n_nodes = start.shape[0]
     first_leaf = (n_nodes - 1) // 2
     n_leaves = n_nodes - first_leaf
@@ -400,7 +222,7 @@ def build_cover(points: np.ndarray, eps: float, radius: float | None = None) -> 
     if not (np.isfinite(radius) and radius > 0):
         raise ValueError(f"radius must be finite and > 0, got {radius!r}")
 
-    xs, perm, start, stop, box_lo, box_hi = _build_tree(x, LEAF_SIZE)
+    xs, perm, start, stop, box_lo, box_hi = build_tree_parallel(x, LEAF_SIZE)
     owner, centre_leaf_rows, n_balls = _greedy_cover(
         xs, start, stop, box_lo, box_hi, radius, _prune_bound(radius)
     )

@@ -36,7 +36,7 @@ from numba.core import cgutils
 from numba.extending import intrinsic
 from scipy.spatial import cKDTree
 
-from . import cover as _cover
+from . import kdtree
 from .metric import query_radius, squared_distance
 
 UNCAPPED = -1  # the compiled code's spelling of max_dim=None
@@ -343,7 +343,6 @@ def build_graph(coords, pairs, eps):
 # A uniform grid over the widest 2-5 coordinates (cells eps wide, 3^k stencil) was tried
 # and lost to this tree on the 4-sphere in R^5: its cells either held too few rows to
 # amortise the stencil or proposed several times more candidates than the tree's boxes.
-_TREE_STACK = 128  # 2**127 leaves: far deeper than any halo
 # rows per leaf: 32 and 64 measured alike on 50k points of S^4 at eps 0.25 and 0.40,
 # both clearly ahead of 8 and 16 (fewer walks, longer contiguous inner loops)
 _TREE_LEAF = 32
@@ -369,54 +368,6 @@ def _join_row(xs, perm, i, j0, j1, eps, e2, olo, ohi, od2, m):
 
 
 @nb.njit(nogil=True, cache=True)
-def _kd_build(x, leaf_size):
-    """A serial copy of the planner's implicit KD-tree (cover._build_tree is parallel,
-    and this kernel runs inside caller threads): (xs, perm, start, stop, box_lo, box_hi)
-    with xs = x[perm] in leaf order and per heap node its rows and exact bounding box."""
-    n, m = x.shape
-    depth = _cover._tree_depth(n, leaf_size)
-    n_nodes = (1 << (depth + 1)) - 1
-    first_leaf = (1 << depth) - 1
-    xs = x.copy()
-    perm = np.arange(n, dtype=np.int64)
-    start = np.empty(n_nodes, dtype=np.int64)
-    stop = np.empty(n_nodes, dtype=np.int64)
-    box_lo = np.empty((n_nodes, m), dtype=np.float64)
-    box_hi = np.empty((n_nodes, m), dtype=np.float64)
-    start[0] = 0
-    stop[0] = n
-    for node in range(n_nodes):
-        s = start[node]
-        e = stop[node]
-        for k in range(m):
-            box_lo[node, k] = math.inf
-            box_hi[node, k] = -math.inf
-        for i in range(s, e):
-            for k in range(m):
-                v = xs[i, k]
-                if v < box_lo[node, k]:
-                    box_lo[node, k] = v
-                if v > box_hi[node, k]:
-                    box_hi[node, k] = v
-        if node < first_leaf:
-            dim = 0
-            spread = -1.0
-            for k in range(m):
-                w = box_hi[node, k] - box_lo[node, k]
-                if w > spread:
-                    spread = w
-                    dim = k
-            mid = (s + e) // 2
-            if e - s > 1:
-                _cover._nth_element(xs, perm, s, e, mid, dim)
-            start[2 * node + 1] = s
-            stop[2 * node + 1] = mid
-            start[2 * node + 2] = mid
-            stop[2 * node + 2] = e
-    return xs, perm, start, stop, box_lo, box_hi
-
-
-@nb.njit(nogil=True, cache=True)
 def _tree_edges(coords, eps, prune2, leaf_size, max_edges):
     """Every pair within eps by the one rule, as (lo, hi, d2, m) like _filter_pairs;
     m = -1 when there are more than max_edges.
@@ -428,10 +379,9 @@ def _tree_edges(coords, eps, prune2, leaf_size, max_edges):
     metric.query_radius); membership is the one rule.
     """
     h = coords.shape[0]
-    xs, perm, start, stop, box_lo, box_hi = _kd_build(coords, leaf_size)
+    xs, perm, start, stop, box_lo, box_hi = kdtree.build_tree(coords, leaf_size)
     n_nodes = start.shape[0]
     first_leaf = (n_nodes - 1) // 2
-    stack = np.empty(_TREE_STACK, dtype=np.int64)
     near = np.empty(64, dtype=np.int64)
     e2 = eps * eps * (1.0 + 1e-12) + 1e-300
     cap = max(1024, 4 * h)
@@ -444,32 +394,15 @@ def _tree_edges(coords, eps, prune2, leaf_size, max_edges):
         a1 = stop[a]
         if a0 == a1:
             continue
-        n_near = 0
-        top = 1
-        stack[0] = 0
-        while top > 0:
-            top -= 1
-            node = stack[top]
-            # empty, wholly before leaf a, or out of reach
-            if stop[node] == start[node] or stop[node] <= a0:
-                continue
-            if _cover._box_box_squared_distance(box_lo, box_hi, a, node) > prune2:
-                continue
-            if node >= first_leaf:
-                if n_near == near.shape[0]:
-                    bigger = np.empty(2 * n_near, dtype=np.int64)
-                    bigger[:n_near] = near
-                    near = bigger
-                near[n_near] = node
-                n_near += 1
-            else:
-                stack[top] = 2 * node + 2
-                stack[top + 1] = 2 * node + 1
-                top += 2
+        # leaves wholly before leaf a were joined with it when their turn came
+        n_near = kdtree.near_leaves(start, stop, box_lo, box_hi, a, prune2, near, a0)
+        if n_near > near.shape[0]:
+            near = np.empty(2 * n_near, dtype=np.int64)
+            kdtree.near_leaves(start, stop, box_lo, box_hi, a, prune2, near, a0)
         for i in range(a0, a1):
             for t in range(n_near):
                 b = near[t]
-                if b != a and _cover._box_squared_distance(box_lo, box_hi, b, xs, i) > prune2:
+                if b != a and kdtree.box_squared_distance(box_lo, box_hi, b, xs, i) > prune2:
                     continue
                 jfrom = i + 1 if b == a else start[b]
                 b1 = stop[b]
