@@ -103,6 +103,8 @@ def test_run_with_scheduler_address(tmp_path, points, expected, cluster, faults)
     assert res.returncode == 0, explain(res)
     check_run(run, expected[None], faults, worker_pids(cluster.address))
     assert f"{open_run(str(run)).n_tasks}/{open_run(str(run)).n_tasks} tasks reduced" in res.stderr
+    # the test scheduler runs with --no-dashboard: no made-up link is printed
+    assert "dashboard" not in res.stderr
 
 
 def test_run_with_scheduler_file(tmp_path, points, expected, cluster, faults):
@@ -143,3 +145,20 @@ def test_store_recreated_at_same_path(tmp_path, points, expected, cluster, fault
                    "--scheduler", cluster.address, "--no-progress")
     assert res.returncode == 0, explain(res)
     assert read_result(open_run(str(run))) == ct.euler_curve(other, eps2)
+
+
+def test_local_cluster_reports_a_dashboard_that_answers():
+    """The embedded LocalCluster serves the Dask dashboard (bokeh is a dependency), and
+    the link `connect` reports opens; a scheduler without one reports None (see
+    test_run_with_scheduler_address)."""
+    from urllib.request import urlopen
+
+    from chitally.cluster import connect
+
+    conn = connect(workers=1, threads=1, dashboard_address="127.0.0.1:0")
+    try:
+        assert conn.dashboard and conn.dashboard.startswith("http://127.0.0.1:")
+        with urlopen(conn.dashboard, timeout=10) as page:
+            assert page.status == 200
+    finally:
+        conn.close()

@@ -354,6 +354,31 @@ def test_second_run_on_a_busy_store_is_refused(tmp_path, processes, src, expecte
     assert faults.attempts() == {t: 1 for t in range(n_tasks(run))}
 
 
+def test_busy_store_is_refused_before_any_cluster_starts(tmp_path, src, expected, monkeypatch):
+    """A Dask `resume` of a store leased elsewhere exits 4 without connecting to or
+    starting a cluster, and leaves the holder's lease alone."""
+    from chitally import cluster
+
+    run = tmp_path / "run.zarr"
+    res = chitally(*run_args(src, run, "--serial"))
+    assert res.returncode == 0, explain(res)
+    theirs = {"owner": "chitally pid 4242 on elsewhere", "host": "elsewhere", "pid": 4242,
+              "started": "2026-01-01T00:00:00+00:00", "heartbeat": datetime.now(timezone.utc).isoformat(),
+              "token": "theirs"}
+    (run / "lease.json").write_text(json.dumps(theirs))
+
+    def no_cluster(*args, **kwargs):
+        raise AssertionError("a cluster was started for a run that the lease refuses")
+
+    monkeypatch.setattr(cluster, "connect", no_cluster)
+    res = CliRunner().invoke(main, ["resume", str(run), "--no-progress"])
+    assert res.exit_code == EXIT_BUSY, res.output
+    assert "leased to chitally pid 4242 on elsewhere" in one_line(res.stderr)
+    assert "dashboard" not in res.stderr
+    assert json.loads((run / "lease.json").read_text())["token"] == "theirs"
+    assert result_of(run) == expected
+
+
 def test_stale_lease_is_taken_over_only_when_asked(tmp_path, src, expected):
     """A lease left by a process on another machine: refused while its heartbeat is
     fresh, even with --takeover; once stale, refused with a hint, taken with --takeover."""

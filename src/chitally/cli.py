@@ -25,6 +25,7 @@ from .runs import (
     EXIT_USAGE,
     Params,
     RunReport,
+    acquire_lease,
     create_or_open,
     describe_plan,
     execute,
@@ -253,16 +254,26 @@ def _execute(store: Any, *, scheduler: str | None, scheduler_file: str | None, w
             bar.close()
     from .cluster import check_workers, connect, preflight_memory
 
-    conn = connect(scheduler, scheduler_file, workers, threads)
+    # a run refused for a held lease must not start (and tear down) a cluster first
+    lease = acquire_lease(store, takeover=takeover)
+    try:
+        conn = connect(scheduler, scheduler_file, workers, threads)
+    except BaseException:
+        lease.release()
+        raise
     try:
         if conn.dashboard:
             click.echo(f"dashboard: {conn.dashboard}", err=True)
             if conn.cluster is not None:
                 click.echo(f"  from another machine: {conn.ssh_hint()}", err=True)
-        check_workers(conn.client, store.url)
-        preflight_memory(conn.client, int(store.read_plan().memory.max()))
+        try:
+            check_workers(conn.client, store.url)
+            preflight_memory(conn.client, int(store.read_plan().memory.max()))
+        except BaseException:
+            lease.release()
+            raise
         executor = DaskExecutor(conn.client, retries=retries)
-        return execute(store, executor, events=bar, takeover=takeover, on_pending=bar.on_pending)
+        return execute(store, executor, events=bar, on_pending=bar.on_pending, lease=lease)
     finally:
         bar.close()
         conn.close()

@@ -44,6 +44,29 @@ class Connection:
         return f"ssh -N -L {port}:127.0.0.1:{port} {getpass.getuser()}@{socket.getfqdn()}"
 
 
+def _dashboard_of(client: Any) -> str | None:
+    """The dashboard link, or None when the scheduler serves none.
+
+    The client makes a link up either way, and a scheduler started with
+    ``--no-dashboard`` still answers HTTP on that port (metrics, health) with 404 for
+    the dashboard pages; so the page is asked for. A link that cannot be reached from
+    here is kept: it may be meant for a tunnel.
+    """
+    from urllib.error import HTTPError, URLError
+    from urllib.request import urlopen
+
+    link = client.dashboard_link
+    if not link:
+        return None
+    try:
+        with urlopen(link, timeout=3):
+            return link
+    except HTTPError:
+        return None
+    except (URLError, OSError, ValueError):
+        return link
+
+
 def connect(
     scheduler: str | None = None,
     scheduler_file: str | None = None,
@@ -58,12 +81,9 @@ def connect(
     from distributed import Client, LocalCluster
 
     scheduler = scheduler or os.environ.get("DASK_SCHEDULER_ADDRESS") or None
-    if scheduler_file:
-        client = Client(scheduler_file=scheduler_file)
-        return Connection(client, None, client.dashboard_link)
-    if scheduler:
-        client = Client(scheduler)
-        return Connection(client, None, client.dashboard_link)
+    if scheduler_file or scheduler:
+        client = Client(scheduler_file=scheduler_file) if scheduler_file else Client(scheduler)
+        return Connection(client, None, _dashboard_of(client))
     cores = os.cpu_count() or 1
     n_workers = workers or cores
     threads = threads or max(1, cores // n_workers)
@@ -77,7 +97,7 @@ def connect(
         silence_logs=logging.WARNING,
     )
     client = Client(cluster)
-    return Connection(client, cluster, client.dashboard_link)
+    return Connection(client, cluster, _dashboard_of(client))
 
 
 def _worker_facts(url: str) -> dict[str, Any]:

@@ -24,7 +24,7 @@ from .plan import Cover, Plan
 from .planner import make_plan, summarise_plan
 from .reduce import Reducer
 from .sources import validate_eps, validate_max_dim, validate_points
-from .store import RunStore, describe_layout, fingerprint
+from .store import Lease, RunStore, describe_layout, fingerprint
 from .tasks import TaskResult
 
 logger = logging.getLogger(__name__)
@@ -150,6 +150,17 @@ class _Driver(Callbacks):
         self.user.task_failed(task, message, attempts)
 
 
+def acquire_lease(store: RunStore, *, takeover: bool = False) -> Lease:
+    """The store's writer lease for this process (raises `LeaseHeld` if another run has it).
+
+    Take it before starting a cluster, so that a refused run costs nothing; then hand it
+    to `execute`, which holds it (heartbeating) and releases it at the end.
+    """
+    lease = store.acquire_lease(f"chitally pid {os.getpid()} on {socket.gethostname()}", takeover=takeover)
+    lease.start()  # beating from now: starting a cluster can take a while
+    return lease
+
+
 def execute(
     store: RunStore,
     executor: SerialExecutor | DaskExecutor,
@@ -158,15 +169,18 @@ def execute(
     takeover: bool = False,
     on_pending: Callable[[RunStore, list[int]], None] | None = None,
     checkpoint_every: int = 256,
+    lease: Lease | None = None,
 ) -> RunReport:
     """Compute every task not yet committed, reduce, and write the curve if complete.
 
-    Holds the store's writer lease throughout (a second run is refused with `LeaseHeld`).
-    The reducer writes a checkpoint after every `checkpoint_every` newly reduced tasks
-    (and every 30 s, and at the end).
+    Holds the store's writer lease throughout (a second run is refused with `LeaseHeld`):
+    the one given, taken earlier with `acquire_lease`, or one taken here. Either way it
+    is released when this returns or raises. The reducer writes a checkpoint after every
+    `checkpoint_every` newly reduced tasks (and every 30 s, and at the end).
     """
     t0 = time.perf_counter()
-    lease = store.acquire_lease(f"chitally pid {os.getpid()} on {socket.gethostname()}", takeover=takeover)
+    if lease is None:
+        lease = acquire_lease(store, takeover=takeover)
     with lease:
         store.clean_partials()
         reducer = Reducer(store, every_tasks=checkpoint_every)
