@@ -248,11 +248,21 @@ def test_damaged_task_output_after_complete_run(tmp_path, src, expected):
     assert res.returncode == 0, explain(res)
     n = n_tasks(run)
     assert result_of(run) == expected
-    # a damaged final curve is refused on export and written again by `resume`, which
-    # computes nothing: the last checkpoint covers every task
+    # a damaged final curve is refused on export (exit 3, with the way out), reported by
+    # `status`, and written again by `resume`, which computes nothing: the last
+    # checkpoint covers every task
     flip_byte(run / "curve" / "values" / "c" / "0")
     res = CliRunner().invoke(main, ["export", str(run)])
-    assert res.exit_code == 1 and f"curve in {run} is unreadable: " in one_line(res.stderr)
+    assert res.exit_code == EXIT_INCOMPLETE, res.output
+    line = one_line(res.stderr)
+    assert f"curve in {run} is unreadable: " in line and "`chitally resume` writes it again" in line
+    res = CliRunner().invoke(main, ["status", str(run), "--json"])
+    assert res.exit_code == 0, res.output
+    info = json.loads(res.stdout)
+    assert info["complete"] is False and f"curve in {run} is unreadable: " in info["curve_damaged"]
+    assert info["done"] == n
+    res = CliRunner().invoke(main, ["status", str(run)])
+    assert res.exit_code == 0 and "the final curve is damaged" in res.stdout, res.output
     res = chitally("resume", run, "--serial", "--no-progress", env=faults.env())
     assert res.returncode == 0 and "0 computed now" in res.stderr, explain(res)
     assert result_of(run) == expected

@@ -22,6 +22,7 @@ from .curve import Curve, parse_grid
 from .runs import (
     EXIT_BUSY,
     EXIT_FAILURE,
+    EXIT_INCOMPLETE,
     EXIT_USAGE,
     Params,
     RunReport,
@@ -62,7 +63,7 @@ def _guarded(fn):  # one place that turns our exceptions into one line and an ex
     import functools
 
     from .cluster import ClusterError
-    from .store import LeaseHeld, NotAStore, StoreError, StoreMismatch
+    from .store import CurveDamaged, LeaseHeld, NotAStore, StoreError, StoreMismatch
 
     @functools.wraps(fn)
     def wrapper(*args: Any, **kwargs: Any) -> Any:
@@ -75,6 +76,8 @@ def _guarded(fn):  # one place that turns our exceptions into one line and an ex
         except LeaseHeld as exc:
             # the store words its hint for the Python API; here the switch is a flag
             _fail(str(exc).replace("pass takeover=True", "rerun with --takeover"), EXIT_BUSY)
+        except CurveDamaged as exc:
+            _fail(f"{exc}; `chitally resume` writes it again from the task tables", EXIT_INCOMPLETE)
         except (StoreError, ClusterError) as exc:
             _fail(str(exc), EXIT_FAILURE)
         except ValueError as exc:
@@ -363,6 +366,8 @@ def status_cmd(run: str, as_json: bool) -> None:
                f"{info['task_seconds_left_estimate']} s; commits from {info['first_commit']} to {info['last_commit']}")
     for task, message in info["failures"].items():
         click.echo(f"  task {task} failed: {message}")
+    if info["curve_damaged"]:
+        click.echo(f"  the final curve is damaged ({info['curve_damaged']}): `chitally resume {run}` writes it again")
 
 
 @main.command("export")

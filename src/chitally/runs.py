@@ -24,7 +24,7 @@ from .plan import Cover, Plan
 from .planner import make_plan, summarise_plan
 from .reduce import Reducer
 from .sources import validate_eps, validate_max_dim, validate_points
-from .store import Lease, RunStore, describe_layout, fingerprint
+from .store import CurveDamaged, Lease, RunStore, describe_layout, fingerprint
 from .tasks import TaskResult
 
 logger = logging.getLogger(__name__)
@@ -239,7 +239,10 @@ def status(store: RunStore) -> dict[str, Any]:
         stamps.append(rec.get("committed"))
     compute = float(np.sum(seconds)) if seconds else 0.0
     left = compute * (total_cost - done_cost) / done_cost if done_cost else None
-    curve = store.read_curve()
+    try:
+        curve, damage = store.read_curve(), None
+    except CurveDamaged as exc:
+        curve, damage = None, str(exc)
     return {
         "store": store.url,
         "tasks": int(store.n_tasks),
@@ -252,6 +255,7 @@ def status(store: RunStore) -> dict[str, Any]:
         "first_commit": min((s for s in stamps if s), default=None),
         "last_commit": max((s for s in stamps if s), default=None),
         "complete": curve is not None,
+        "curve_damaged": damage,
         "failures": {int(t): failures[t].get("message", "") for t in failures if not committed[t]},
     }
 
@@ -264,7 +268,7 @@ def read_result(store: RunStore) -> Curve | None:
     curve = Curve(values=rec["values"], chi=rec["chi"], eps=rec["eps"], max_dim=rec["max_dim"],
                   n_points=rec["n_points"])
     if curve.digest() != rec["digest"]:
-        raise RuntimeError(f"the curve in {store.url} does not match its digest")
+        raise CurveDamaged(f"the curve in {store.url} does not match its digest")
     return curve
 
 

@@ -152,6 +152,11 @@ class LeaseHeld(StoreError):
     """Another live process holds (or has taken over) the writer lease."""
 
 
+class CurveDamaged(StoreError):
+    """The final curve is unreadable or does not match its record; the task tables it
+    was reduced from are untouched, so a resume writes it again."""
+
+
 # ------------------------------------------------------------------------ small helpers
 
 
@@ -1491,13 +1496,13 @@ class RunStore:
 
         Raises
         ------
-        StoreError
-            The stored curve does not match its record.
+        CurveDamaged
+            The stored curve is unreadable or does not match its record.
         """
         try:
             record = self._get_json(f"{_CURVE}/record.json")
         except ValueError as exc:
-            raise StoreError(f"curve record in {self._url} is not JSON: {exc}") from exc
+            raise CurveDamaged(f"curve record in {self._url} is not JSON: {exc}") from exc
         if record is None:
             return None
         try:
@@ -1506,10 +1511,10 @@ class RunStore:
                 for name in ("values", "chi")
             )
         except Exception as exc:
-            raise StoreError(f"curve in {self._url} is unreadable: {_one_line(exc)}") from exc
+            raise CurveDamaged(f"curve in {self._url} is unreadable: {_one_line(exc)}") from exc
         found = _sha256(_le(values, "<f8"), _le(chi, "<i8"))
-        if values.size != record["length"] or found != record["sha256"]:
-            raise StoreError(f"curve in {self._url} does not match its record (length or sha256)")
+        if values.size != record.get("length") or found != record.get("sha256"):
+            raise CurveDamaged(f"curve in {self._url} does not match its record (length or sha256)")
         out = {k: record[k] for k in ("eps", "max_dim", "n_points", "digest", "written")}
         return {"values": values, "chi": chi, **out}
 
