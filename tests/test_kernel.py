@@ -161,6 +161,46 @@ def test_matches_networkx_brute_force_clustered_cloud(max_dim: int | None) -> No
         assert kernel_curve(points, eps, max_dim) == brute_force_curve(points, eps, max_dim)
 
 
+@pytest.mark.parametrize("m", [1, 2, 3, 4, 6, 7, 8, 9, 12])
+def test_cap_2_in_every_dimension_matches_networkx(m: int) -> None:
+    """Cap 2 counts by distances up to 8 coordinates and by walking rows beyond; both
+    against networkx enumerate_all_cliques (brute force), on random points and on an
+    integer lattice with coincident points (every length tied many times over), with
+    owned pieces that must add up."""
+    rng = np.random.default_rng(500 + m)
+    points = rng.random((60, m))
+    for eps in (edge_quantile(points, 0.1), edge_quantile(points, 0.3)):
+        assert kernel_curve(points, eps, 2) == brute_force_curve(points, eps, 2), eps
+    lattice = rng.integers(0, 3, (40, m)).astype(np.float64)  # repeats rows, ties lengths
+    for eps in (1.0, SQRT2, SQRT3, 2.0):
+        whole = kernel_curve(lattice, eps, 2)
+        assert whole == brute_force_curve(lattice, eps, 2), eps
+        pieces = [count_jumps(lattice, eps, 2, owned=(a, b)) for a, b in ((0, 7), (7, 30), (30, 40))]
+        values, jumps = merge_jumps([t.values for t in pieces], [t.jumps for t in pieces])
+        assert Curve.from_jumps(values, jumps, eps=eps, max_dim=2, n_points=40) == whole
+
+
+def test_cap_2_distance_count_equals_the_row_walk() -> None:
+    """The two cap-2 counts, edge by edge, on tied lattices and random clouds in 1 to 8
+    coordinates with neighbourhoods of dozens to hundreds of rows (an internal cross-check; the
+    outside reference is the networkx test above)."""
+    from chitally import kernel
+
+    rng = np.random.default_rng(9)
+    for m in range(1, kernel._NEAR_DIMS + 1):
+        cloud = rng.random((600, m))
+        for points, eps in ((rng.integers(0, 4 if m <= 4 else 2, (400, m)).astype(np.float64), 2.0),
+                            (cloud, edge_quantile(cloud, 0.1))):
+            offsets, nbrs, erank, elo, _ehi, ed2 = kernel._halo_graph(points, eps)
+            unset = -2  # every jump is at least -1
+            by_distance = np.full(ed2.shape[0], unset, dtype=np.int64)
+            by_walk = np.full(ed2.shape[0], unset, dtype=np.int64)
+            kernel._count_cap2_near(points, offsets, nbrs, erank, 0, len(points), by_distance)
+            kernel._count_cap2(offsets, nbrs, erank, 0, len(points), by_walk, np.zeros(len(points), np.int64))
+            assert np.array_equal(by_distance, by_walk), m
+            assert (by_walk != unset).all() and np.diff(offsets).max() > 40
+
+
 # ----------------------------------------------------------------- gudhi (kernel level)
 
 

@@ -696,12 +696,114 @@ def _reduced_euler(adj, L, W, stack, signs, degs, verts, stats):
 # ---------------------------------------------------------------------------------------
 
 
+# Cap 2 by geometry. |L(e)| for e = (p, w_c) counts the w_j earlier in the row of p
+# (key(p, w_j) < key(e)) that are closer to w_c than p is (key(w_j, w_c) < key(e)). The
+# second test is a distance computed by the one rule from coordinates copied next to each
+# other, which vectorises, instead of a walk along the row of w_c, which gathers: on 50k
+# points of S^4 at eps 0.40 it measured about 2.5x faster. Its cost grows with the
+# dimension and the walk's does not, so it serves up to _NEAR_DIMS coordinates, each
+# count compiled for its own number of coordinates (a loop of known length unrolls, and
+# the loop over the neighbours vectorises).
+_NEAR_DIMS = 8
+
+
+def _closer_counter(width: int):
+    @nb.njit(inline="always", nogil=True)
+    def closer(X, c, thr):
+        """(#j < c with d2(j, c) < thr, #j < c with d2(j, c) == thr); row k of X holds
+        coordinate k, so d2 is the one rule's sum in coordinate order."""
+        below = 0
+        equal = 0
+        # whole blocks of 8 with the tail masked: no scalar remainder loop
+        for j in range((c + 7) & ~7):
+            s = 0.0
+            for k in range(width):
+                d = X[k, j] - X[k, c]
+                s += d * d
+            inside = j < c
+            below += (s < thr) & inside
+            equal += (s == thr) & inside
+        return below, equal
+
+    return closer
+
+
+_closer1, _closer2, _closer3, _closer4, _closer5, _closer6, _closer7, _closer8 = (
+    _closer_counter(w) for w in range(1, _NEAR_DIMS + 1)
+)
+
+
+@nb.njit(inline="always", nogil=True)
+def _closer_count(X, m, c, thr):
+    if m == 1:
+        return _closer1(X, c, thr)
+    if m == 2:
+        return _closer2(X, c, thr)
+    if m == 3:
+        return _closer3(X, c, thr)
+    if m == 4:
+        return _closer4(X, c, thr)
+    if m == 5:
+        return _closer5(X, c, thr)
+    if m == 6:
+        return _closer6(X, c, thr)
+    if m == 7:
+        return _closer7(X, c, thr)
+    return _closer8(X, c, thr)
+
+
+@nb.njit(nogil=True, cache=True)
+def _count_cap2_near(coords, offsets, nbrs, erank, own_lo, own_hi, out_jump):
+    """Cap 2 for 1 to _NEAR_DIMS coordinates: c(e) = -1 + |L(e)| by distances."""
+    m = coords.shape[1]
+    maxdeg = 0
+    for p in range(own_lo, own_hi):
+        maxdeg = max(maxdeg, offsets[p + 1] - offsets[p])
+    X = np.zeros((m, maxdeg + 8))  # row k: coordinate k of the neighbours of p
+    T = np.empty(maxdeg + 8)  # d2(p, w_a), by the same rule: the edge's own d2
+    for p in range(own_lo, own_hi):
+        s = offsets[p]
+        t = offsets[p + 1]
+        last = t - 1
+        while last >= s and nbrs[last] < p:
+            last -= 1
+        n_act = last - s + 1
+        for a in range(n_act):
+            w = nbrs[s + a]
+            v = 0.0
+            for k in range(m):
+                xk = coords[w, k]
+                X[k, a] = xk
+                d = coords[p, k] - xk
+                v += d * d
+            T[a] = v
+        for c in range(n_act):
+            q = nbrs[s + c]
+            if q < p:
+                continue
+            thr = T[c]
+            below, equal = _closer_count(X, m, c, thr)
+            if equal:
+                # equal lengths: the edge order breaks the tie by (lower id, higher id).
+                # e = (p, q) with p < q, and r is neither p nor q, so (r, q) comes first
+                # exactly when its lower id is below p
+                for j in range(c):
+                    d2 = 0.0
+                    for k in range(m):
+                        d = X[k, j] - X[k, c]
+                        d2 += d * d
+                    if d2 == thr and min(nbrs[s + j], q) < p:
+                        below += 1
+            out_jump[erank[s + c]] = below - 1
+
+
 @nb.njit(nogil=True, cache=True)
 def _count_cap2(offsets, nbrs, erank, own_lo, own_hi, out_jump, mark):
     """Cap 2: c(e) = -1 + |L(e)|, the triangles whose longest edge is e.
 
     For p, the neighbours met so far in its row (edges shorter than e) are marked; the
-    row of q is scanned up to the edge itself, counting the marked ones.
+    row of q is scanned up to the edge itself, counting the marked ones. The path for
+    more than _NEAR_DIMS coordinates (see _count_cap2_near).
     """
     for p in range(own_lo, own_hi):
         s = offsets[p]
@@ -1140,9 +1242,14 @@ def count_jumps(
         ranges = _split_evenly(offsets, lo, hi, max(1, threads) * 8 if threads > 1 else 1)
         raw = np.zeros((len(ranges), len(STAT_NAMES)), dtype=np.int64)
 
+        near = cap == 2 and 1 <= coords.shape[1] <= _NEAR_DIMS
+
         def work(k: int) -> None:
             a, b = ranges[k]
-            count_range(offsets, nbrs, erank, a, b, cap, out_jump, raw[k])
+            if near:
+                _count_cap2_near(coords, offsets, nbrs, erank, a, b, out_jump)
+            else:
+                count_range(offsets, nbrs, erank, a, b, cap, out_jump, raw[k])
 
         if len(ranges) == 1:
             work(0)
