@@ -48,7 +48,7 @@ def graph_phases(x: np.ndarray, eps: float) -> dict:
     t["filter+sort+csr"] = t2 - t1
     t0 = clock()
     reach = query_radius(eps)
-    kernel._tree_edges(x, eps, reach * reach, kernel._TREE_LEAF, kernel._MAX_EDGES)
+    kernel._tree_edges(x, eps, reach * reach, kernel._MAX_EDGES)
     t["tree_join(used)"] = clock() - t0
     t0 = clock()
     g = kernel._halo_graph(x, eps)

@@ -187,7 +187,7 @@ def test_cap_2_distance_count_equals_the_row_walk() -> None:
     from chitally import kernel
 
     rng = np.random.default_rng(9)
-    for m in range(1, kernel._NEAR_DIMS + 1):
+    for m in range(1, kernel._UNROLLED_DIMS + 1):
         cloud = rng.random((600, m))
         for points, eps in ((rng.integers(0, 4 if m <= 4 else 2, (400, m)).astype(np.float64), 2.0),
                             (cloud, edge_quantile(cloud, 0.1))):

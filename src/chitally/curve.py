@@ -374,15 +374,17 @@ class Curve:
         """
         eps_f = _check_eps(eps)
         v = _as_scales(values, "scales")
-        if v.size:
-            low = v < 0.0
-            high = v > eps_f
-            if low.any() or high.any():
-                bad = v[low | high][0]
-                raise ValueError(
-                    f"jump at scale {bad!r} lies outside the allowed range [0, eps] = [0, {eps_f!r}]"
-                )
-        merged_v, merged_j = merge_jumps(v, jumps)
+        if v.size and (v.min() < 0.0 or v.max() > eps_f):
+            bad = v[(v < 0.0) | (v > eps_f)][0]
+            raise ValueError(
+                f"jump at scale {bad!r} lies outside the allowed range [0, eps] = [0, {eps_f!r}]"
+            )
+        j = _as_counts(jumps, "jumps")
+        if v.shape == j.shape and (v.size < 2 or (v[1:] > v[:-1]).all()) and j.all():
+            # already canonical (a kernel's table): nothing to merge
+            merged_v, merged_j = v + 0.0, j  # + 0.0 folds -0.0 into 0.0 (and copies)
+        else:
+            merged_v, merged_j = merge_jumps(v, j)
         if merged_v.size == 0 or merged_v[0] != 0.0:
             merged_v = np.concatenate(([0.0], merged_v))
             merged_j = np.concatenate((np.zeros(1, np.int64), merged_j))

@@ -83,6 +83,7 @@ def _pext_hw(typingctx, x, m):
 
 ONE = np.uint64(1)
 ZERO = np.uint64(0)
+ALL_ONES = np.uint64(0xFFFFFFFFFFFFFFFF)
 
 
 @nb.njit(inline="always", nogil=True, cache=True)
@@ -343,43 +344,127 @@ def build_graph(coords, pairs, eps):
 # A uniform grid over the widest 2-5 coordinates (cells eps wide, 3^k stencil) was tried
 # and lost to this tree on the 4-sphere in R^5: its cells either held too few rows to
 # amortise the stencil or proposed several times more candidates than the tree's boxes.
-# rows per leaf: 32 and 64 measured alike on 50k points of S^4 at eps 0.25 and 0.40,
-# both clearly ahead of 8 and 16 (fewer walks, longer contiguous inner loops)
-_TREE_LEAF = 32
+# Loops compiled for a known number of coordinates: a loop of known length unrolls, and
+# the loop over rows around it vectorises. Coordinates sit in rows (X[k, j] is coordinate
+# k of point j) and every sum of squares runs in coordinate order from 0.0, so each
+# distance has the bits of metric.squared_distance.
+_UNROLLED_DIMS = 8
+
+# Rows per KD-tree leaf in the join: a row is tested against a whole leaf at once, one bit
+# per row in a 64-bit mask.
+_TREE_LEAF = 64
+
+
+def _unrolled_kernels(width: int):
+    @nb.njit(inline="always", nogil=True)
+    def within_mask(X, i, j0, e2):
+        """Bit u set when d2(i, j0 + u) <= e2, for the _TREE_LEAF rows from j0."""
+        mask = ZERO
+        for u in range(_TREE_LEAF):
+            s = 0.0
+            for k in range(width):
+                d = X[k, i] - X[k, j0 + u]
+                s += d * d
+            mask |= np.uint64(s <= e2) << np.uint64(u)
+        return mask
+
+    @nb.njit(inline="always", nogil=True)
+    def closer(X, c, thr):
+        """(#j < c with d2(j, c) < thr, #j < c with d2(j, c) == thr)."""
+        below = 0
+        equal = 0
+        # whole blocks of 8 with the tail masked: no scalar remainder loop
+        for j in range((c + 7) & ~7):
+            s = 0.0
+            for k in range(width):
+                d = X[k, j] - X[k, c]
+                s += d * d
+            inside = j < c
+            below += (s < thr) & inside
+            equal += (s == thr) & inside
+        return below, equal
+
+    return within_mask, closer
+
+
+(_within1, _closer1), (_within2, _closer2), (_within3, _closer3), (_within4, _closer4), \
+    (_within5, _closer5), (_within6, _closer6), (_within7, _closer7), (_within8, _closer8) = (
+        _unrolled_kernels(w) for w in range(1, _UNROLLED_DIMS + 1))
+
+
+@nb.njit(inline="always", nogil=True)
+def _within_mask(X, m, i, j0, e2, buf):
+    """within_mask for m coordinates; beyond _UNROLLED_DIMS the sums build up in buf one
+    coordinate at a time (the same order, so the same bits)."""
+    if m == 1:
+        return _within1(X, i, j0, e2)
+    if m == 2:
+        return _within2(X, i, j0, e2)
+    if m == 3:
+        return _within3(X, i, j0, e2)
+    if m == 4:
+        return _within4(X, i, j0, e2)
+    if m == 5:
+        return _within5(X, i, j0, e2)
+    if m == 6:
+        return _within6(X, i, j0, e2)
+    if m == 7:
+        return _within7(X, i, j0, e2)
+    if m == 8:
+        return _within8(X, i, j0, e2)
+    for u in range(_TREE_LEAF):
+        buf[u] = 0.0
+    for k in range(m):
+        xi = X[k, i]
+        for u in range(_TREE_LEAF):
+            d = xi - X[k, j0 + u]
+            buf[u] += d * d
+    mask = ZERO
+    for u in range(_TREE_LEAF):
+        mask |= np.uint64(buf[u] <= e2) << np.uint64(u)
+    return mask
+
+
+@nb.njit(inline="always", nogil=True)
+def _closer_count(X, m, c, thr):
+    """closer for 1 <= m <= _UNROLLED_DIMS coordinates."""
+    if m == 1:
+        return _closer1(X, c, thr)
+    if m == 2:
+        return _closer2(X, c, thr)
+    if m == 3:
+        return _closer3(X, c, thr)
+    if m == 4:
+        return _closer4(X, c, thr)
+    if m == 5:
+        return _closer5(X, c, thr)
+    if m == 6:
+        return _closer6(X, c, thr)
+    if m == 7:
+        return _closer7(X, c, thr)
+    return _closer8(X, c, thr)
 
 
 @nb.njit(nogil=True, cache=True)
-def _join_row(xs, perm, i, j0, j1, eps, e2, olo, ohi, od2, m):
-    """Append the rows j0..j1-1 of xs within eps of row i; the caller has made room."""
-    p = perm[i]
-    for j in range(j0, j1):
-        d2 = squared_distance(xs, i, xs, j)
-        if d2 <= e2 and math.sqrt(d2) <= eps:
-            q = perm[j]
-            if p < q:
-                olo[m] = p
-                ohi[m] = q
-            else:
-                olo[m] = q
-                ohi[m] = p
-            od2[m] = d2
-            m += 1
-    return m
-
-
-@nb.njit(nogil=True, cache=True)
-def _tree_edges(coords, eps, prune2, leaf_size, max_edges):
+def _tree_edges(coords, eps, prune2, max_edges):
     """Every pair within eps by the one rule, as (lo, hi, d2, m) like _filter_pairs;
     m = -1 when there are more than max_edges.
 
     Leaf by leaf: one walk finds the leaves at or after it in leaf order whose boxes come
     within the pruning bound of its box, then each row is tested against the boxes of
     those leaves and joined with the rows of the ones it can reach (rows after it in its
-    own leaf), so each pair is seen once. The boxes only prune (with the widened bound of
-    metric.query_radius); membership is the one rule.
+    own leaf), so each pair is seen once: a whole leaf at a time, as a bit mask of the
+    rows within the widened bound. The boxes and the mask only propose (with the widened
+    bound of metric.query_radius); membership is the one rule.
     """
-    h = coords.shape[0]
-    xs, perm, start, stop, box_lo, box_hi = kdtree.build_tree(coords, leaf_size)
+    h, dims = coords.shape
+    xs, perm, start, stop, box_lo, box_hi = kdtree.build_tree(coords, _TREE_LEAF)
+    # coordinates in rows; a leaf's mask may read up to _TREE_LEAF rows past the end
+    X = np.zeros((dims, h + _TREE_LEAF))
+    for i in range(h):
+        for k in range(dims):
+            X[k, i] = xs[i, k]
+    buf = np.empty(_TREE_LEAF)
     n_nodes = start.shape[0]
     first_leaf = (n_nodes - 1) // 2
     near = np.empty(64, dtype=np.int64)
@@ -400,13 +485,17 @@ def _tree_edges(coords, eps, prune2, leaf_size, max_edges):
             near = np.empty(2 * n_near, dtype=np.int64)
             kdtree.near_leaves(start, stop, box_lo, box_hi, a, prune2, near, a0)
         for i in range(a0, a1):
+            p = perm[i]
             for t in range(n_near):
                 b = near[t]
                 if b != a and kdtree.box_squared_distance(box_lo, box_hi, b, xs, i) > prune2:
                     continue
-                jfrom = i + 1 if b == a else start[b]
+                b0 = start[b]
                 b1 = stop[b]
-                # room for the whole row first, so that the hot loop never reallocates
+                jfrom = i + 1 if b == a else b0
+                if jfrom >= b1:
+                    continue
+                # room for the whole leaf first, so that the hot loop never reallocates
                 need = m + (b1 - jfrom)
                 if need > cap:
                     if m > max_edges:
@@ -421,7 +510,24 @@ def _tree_edges(coords, eps, prune2, leaf_size, max_edges):
                     olo = nlo
                     ohi = nhi
                     od2 = nd2
-                m = _join_row(xs, perm, i, jfrom, b1, eps, e2, olo, ohi, od2, m)
+                # the mask proposes (rows jfrom..b1-1 of the leaf only); the one rule decides
+                mask = _within_mask(X, dims, i, b0, e2, buf)
+                mask &= ALL_ONES >> np.uint64(_TREE_LEAF - (b1 - b0))
+                mask &= ~((ONE << np.uint64(jfrom - b0)) - ONE)
+                while mask != ZERO:
+                    j = b0 + _trailing_zeros(mask)
+                    mask &= mask - ONE
+                    d2 = squared_distance(xs, i, xs, j)
+                    if math.sqrt(d2) <= eps:
+                        q = perm[j]
+                        if p < q:
+                            olo[m] = p
+                            ohi[m] = q
+                        else:
+                            olo[m] = q
+                            ohi[m] = p
+                        od2[m] = d2
+                        m += 1
     if m > max_edges:
         return olo, ohi, od2, -1
     return olo, ohi, od2, m
@@ -701,60 +807,12 @@ def _reduced_euler(adj, L, W, stack, signs, degs, verts, stats):
 # second test is a distance computed by the one rule from coordinates copied next to each
 # other, which vectorises, instead of a walk along the row of w_c, which gathers: on 50k
 # points of S^4 at eps 0.40 it measured about 2.5x faster. Its cost grows with the
-# dimension and the walk's does not, so it serves up to _NEAR_DIMS coordinates, each
-# count compiled for its own number of coordinates (a loop of known length unrolls, and
-# the loop over the neighbours vectorises).
-_NEAR_DIMS = 8
-
-
-def _closer_counter(width: int):
-    @nb.njit(inline="always", nogil=True)
-    def closer(X, c, thr):
-        """(#j < c with d2(j, c) < thr, #j < c with d2(j, c) == thr); row k of X holds
-        coordinate k, so d2 is the one rule's sum in coordinate order."""
-        below = 0
-        equal = 0
-        # whole blocks of 8 with the tail masked: no scalar remainder loop
-        for j in range((c + 7) & ~7):
-            s = 0.0
-            for k in range(width):
-                d = X[k, j] - X[k, c]
-                s += d * d
-            inside = j < c
-            below += (s < thr) & inside
-            equal += (s == thr) & inside
-        return below, equal
-
-    return closer
-
-
-_closer1, _closer2, _closer3, _closer4, _closer5, _closer6, _closer7, _closer8 = (
-    _closer_counter(w) for w in range(1, _NEAR_DIMS + 1)
-)
-
-
-@nb.njit(inline="always", nogil=True)
-def _closer_count(X, m, c, thr):
-    if m == 1:
-        return _closer1(X, c, thr)
-    if m == 2:
-        return _closer2(X, c, thr)
-    if m == 3:
-        return _closer3(X, c, thr)
-    if m == 4:
-        return _closer4(X, c, thr)
-    if m == 5:
-        return _closer5(X, c, thr)
-    if m == 6:
-        return _closer6(X, c, thr)
-    if m == 7:
-        return _closer7(X, c, thr)
-    return _closer8(X, c, thr)
+# dimension and the walk's does not, so it serves up to _UNROLLED_DIMS coordinates.
 
 
 @nb.njit(nogil=True, cache=True)
 def _count_cap2_near(coords, offsets, nbrs, erank, own_lo, own_hi, out_jump):
-    """Cap 2 for 1 to _NEAR_DIMS coordinates: c(e) = -1 + |L(e)| by distances."""
+    """Cap 2 for 1 to _UNROLLED_DIMS coordinates: c(e) = -1 + |L(e)| by distances."""
     m = coords.shape[1]
     maxdeg = 0
     for p in range(own_lo, own_hi):
@@ -803,7 +861,7 @@ def _count_cap2(offsets, nbrs, erank, own_lo, own_hi, out_jump, mark):
 
     For p, the neighbours met so far in its row (edges shorter than e) are marked; the
     row of q is scanned up to the edge itself, counting the marked ones. The path for
-    more than _NEAR_DIMS coordinates (see _count_cap2_near).
+    more than _UNROLLED_DIMS coordinates (see _count_cap2_near).
     """
     for p in range(own_lo, own_hi):
         s = offsets[p]
@@ -1078,7 +1136,8 @@ def _collect(ed2, elo, own_lo, own_hi, out_jump, n_vertices):
             values[k] = values[a]
             jumps[k] = jumps[a]
             k += 1
-    return values[:k].copy(), jumps[:k].copy()
+    # views, not copies: a copy of tens of MB costs more (page faults) than the slack
+    return values[:k], jumps[:k]
 
 
 # ---------------------------------------------------------------------------------------
@@ -1141,7 +1200,7 @@ def _halo_graph(coords: np.ndarray, eps: float):
         # behaviour for anything else
         return _halo_graph_ckdtree(coords, eps)
     reach = query_radius(eps)
-    lo0, hi0, d20, m = _tree_edges(coords, eps, reach * reach, _TREE_LEAF, _MAX_EDGES)
+    lo0, hi0, d20, m = _tree_edges(coords, eps, reach * reach, _MAX_EDGES)
     if m < 0:
         raise ValueError(f"a halo of more than {_MAX_EDGES} edges is too large for one task")
     return _sorted_graph(h, lo0, hi0, d20, m)
@@ -1153,7 +1212,7 @@ def _cap1_table(coords: np.ndarray, eps: float, lo: int, hi: int, stats: KernelS
     import time
 
     reach = query_radius(eps)
-    elo, _ehi, ed2, m = _tree_edges(coords, float(eps), reach * reach, _TREE_LEAF, _MAX_EDGES)
+    elo, _ehi, ed2, m = _tree_edges(coords, float(eps), reach * reach, _MAX_EDGES)
     if m < 0:
         raise ValueError(f"a halo of more than {_MAX_EDGES} edges is too large for one task")
     elo, ed2 = elo[:m], ed2[:m]
@@ -1242,7 +1301,7 @@ def count_jumps(
         ranges = _split_evenly(offsets, lo, hi, max(1, threads) * 8 if threads > 1 else 1)
         raw = np.zeros((len(ranges), len(STAT_NAMES)), dtype=np.int64)
 
-        near = cap == 2 and 1 <= coords.shape[1] <= _NEAR_DIMS
+        near = cap == 2 and 1 <= coords.shape[1] <= _UNROLLED_DIMS
 
         def work(k: int) -> None:
             a, b = ranges[k]
