@@ -161,6 +161,30 @@ def test_matches_networkx_brute_force_clustered_cloud(max_dim: int | None) -> No
         assert kernel_curve(points, eps, max_dim) == brute_force_curve(points, eps, max_dim)
 
 
+@pytest.mark.parametrize("m", [1, 2, 3, 5, 8, 9, 13])
+@pytest.mark.parametrize("n", [1, 2, 63, 64, 65, 130, 700])
+def test_edge_join_finds_exactly_the_pairs_within_eps(m: int, n: int) -> None:
+    """The compiled join (a row against whole leaves of 64 through bit masks) against
+    scipy's cKDTree.query_pairs, an independent KD-tree, widened and then filtered by the
+    one rule: the same pairs with the same squared lengths, on random points and on a
+    lattice with repeated rows whose lengths tie eps exactly."""
+    from scipy.spatial import cKDTree
+
+    from chitally import kernel
+    from chitally.metric import pair_squared_distances, query_radius
+
+    rng = np.random.default_rng(n * 31 + m)
+    cases = ((rng.random((n, m)), 0.35 * math.sqrt(m)), (rng.integers(0, 3, (n, m)).astype(np.float64), SQRT2))
+    for points, eps in cases:
+        pairs = cKDTree(points).query_pairs(query_radius(eps), output_type="ndarray").reshape(-1, 2)
+        d2 = pair_squared_distances(points, pairs[:, 0], points, pairs[:, 1])
+        keep = np.sqrt(d2) <= eps
+        expected = sorted(zip(pairs[keep].min(axis=1).tolist(), pairs[keep].max(axis=1).tolist(), d2[keep].tolist()))
+        reach = query_radius(eps)
+        lo, hi, sq, count = kernel._tree_edges(points, eps, reach * reach, kernel._MAX_EDGES)
+        assert sorted(zip(lo[:count].tolist(), hi[:count].tolist(), sq[:count].tolist())) == expected
+
+
 @pytest.mark.parametrize("m", [1, 2, 3, 4, 6, 7, 8, 9, 12])
 def test_cap_2_in_every_dimension_matches_networkx(m: int) -> None:
     """Cap 2 counts by distances up to 8 coordinates and by walking rows beyond; both
