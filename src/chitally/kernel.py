@@ -210,7 +210,30 @@ def _edge_graph(coords, pairs, eps):
 @nb.njit(nogil=True, cache=True)
 def _sorted_graph(h, lo0, hi0, d20, m):
     """_edge_graph from the first m accepted records (lo0 < hi0, d2) in any order: the
-    sort below fixes the edge order, so the neighbour search may emit pairs as it likes."""
+    sort fixes the edge order, so the neighbour search may emit pairs as it likes."""
+    offsets = np.empty(h + 1, dtype=np.int64)
+    nbrs = np.empty(2 * m, dtype=np.int32)
+    erank = np.empty(2 * m, dtype=np.int32)
+    elo = np.empty(m, dtype=np.int32)
+    ehi = np.empty(m, dtype=np.int32)
+    ed2 = np.empty(m, dtype=np.float64)
+    _sort_into(lo0, hi0, d20, m, offsets, nbrs, erank, elo, ehi, ed2)
+    return offsets, nbrs, erank, elo, ehi, ed2
+
+
+def _graph_arrays(h: int, m: int):
+    """(offsets, nbrs, erank, elo, ehi, ed2) to fill, allocated by numpy: large numpy
+    arrays are backed by huge pages where the system allows it, and tens of thousands of
+    page faults on arrays allocated inside compiled code measured a third of a kernel call."""
+    return (np.empty(h + 1, dtype=np.int64), np.empty(2 * m, dtype=np.int32),
+            np.empty(2 * m, dtype=np.int32), np.empty(m, dtype=np.int32),
+            np.empty(m, dtype=np.int32), np.empty(m, dtype=np.float64))
+
+
+@nb.njit(nogil=True, cache=True)
+def _sort_into(lo0, hi0, d20, m, offsets, nbrs, erank, elo, ehi, ed2):
+    """Fill the arrays of _sorted_graph (offsets has h + 1 entries, the others 2m or m)."""
+    h = offsets.shape[0] - 1
     # Two distribution passes by value instead of a multi-pass radix sort plus a gather:
     # u = d2 * scale is non-decreasing in d2 (a product by a positive constant, a
     # difference with a constant and floor are all monotone), so coarse buckets floor(u),
@@ -230,7 +253,7 @@ def _sorted_graph(h, lo0, hi0, d20, m):
         scale = 0.0
     top = ncoarse - 1
     start = np.zeros(ncoarse + 1, dtype=np.int64)
-    offsets = np.zeros(h + 1, dtype=np.int64)
+    offsets[:] = 0
     for g in range(m):
         u = d20[g] * scale
         c = int(u) if u < top else top
@@ -243,9 +266,6 @@ def _sorted_graph(h, lo0, hi0, d20, m):
     for i in range(h):
         offsets[i + 1] += offsets[i]
     fill = start[:-1].copy()
-    elo = np.empty(m, dtype=np.int32)
-    ehi = np.empty(m, dtype=np.int32)
-    ed2 = np.empty(m, dtype=np.float64)
     biggest = 0
     for g in range(m):
         x = d20[g]
@@ -306,8 +326,6 @@ def _sorted_graph(h, lo0, hi0, d20, m):
                     _sort_bucket_large(elo, ehi, ed2, p, q, h)
             p = q
     fill = offsets[:-1].copy()
-    nbrs = np.empty(2 * m, dtype=np.int32)
-    erank = np.empty(2 * m, dtype=np.int32)
     for g in range(m):
         a = elo[g]
         b = ehi[g]
@@ -317,7 +335,6 @@ def _sorted_graph(h, lo0, hi0, d20, m):
         nbrs[fill[b]] = a
         erank[fill[b]] = g
         fill[b] += 1
-    return offsets, nbrs, erank, elo, ehi, ed2
 
 
 @nb.njit(nogil=True, cache=True)
@@ -446,6 +463,25 @@ def _closer_count(X, m, c, thr):
 
 
 @nb.njit(nogil=True, cache=True)
+def _sampled_edge_count(X, dims, h, e2, buf):
+    """A generous estimate of the edges among h rows, from the degrees of 64 evenly spaced
+    rows: the join then rarely grows (and copies) its output."""
+    samples = min(h, 64)
+    if samples == 0:
+        return 0
+    found = 0
+    for t in range(samples):
+        i = t * h // samples
+        for j0 in range(0, h, _TREE_LEAF):
+            mask = _within_mask(X, dims, i, j0, e2, buf)
+            if h - j0 < _TREE_LEAF:
+                mask &= ALL_ONES >> np.uint64(_TREE_LEAF - (h - j0))
+            found += _popcount(mask)
+    found -= samples  # each row is within reach of itself
+    return int(1.25 * h * found / (2 * samples))
+
+
+@nb.njit(nogil=True, cache=True)
 def _tree_edges(coords, eps, prune2, max_edges):
     """Every pair within eps by the one rule, as (lo, hi, d2, m) like _filter_pairs;
     m = -1 when there are more than max_edges.
@@ -469,7 +505,7 @@ def _tree_edges(coords, eps, prune2, max_edges):
     first_leaf = (n_nodes - 1) // 2
     near = np.empty(64, dtype=np.int64)
     e2 = eps * eps * (1.0 + 1e-12) + 1e-300
-    cap = max(1024, 4 * h)
+    cap = max(1024, 4 * h, _sampled_edge_count(X, dims, h, e2, buf))
     olo = np.empty(cap, dtype=np.int32)
     ohi = np.empty(cap, dtype=np.int32)
     od2 = np.empty(cap, dtype=np.float64)
@@ -1111,33 +1147,44 @@ def _owned_edges(elo, own_lo, own_hi, out_jump, unit):
 
 
 @nb.njit(nogil=True, cache=True)
-def _collect(ed2, elo, own_lo, own_hi, out_jump, n_vertices):
-    """Group the owned edges' jumps by length (edges are in increasing d2) and drop zeros."""
-    m = ed2.shape[0]
-    values = np.empty(m + 1, dtype=np.float64)
-    jumps = np.empty(m + 1, dtype=np.int64)
-    values[0] = 0.0
-    jumps[0] = n_vertices
-    n = 1
-    for g in range(m):
+def _collect_in_place(ed2, elo, own_lo, own_hi, out_jump):
+    """Group the owned edges' nonzero jumps by length (edges are in increasing d2) into
+    the first k entries of ed2 (now lengths) and out_jump; returns k. Entry g is written
+    at an index of at most g, after it was read."""
+    n = 0
+    for g in range(ed2.shape[0]):
         if own_lo <= elo[g] < own_hi:
             j = out_jump[g]
             if j != 0:
                 v = math.sqrt(ed2[g])
-                if v == values[n - 1]:
-                    jumps[n - 1] += j
+                if n > 0 and v == ed2[n - 1]:
+                    out_jump[n - 1] += j
                 else:
-                    values[n] = v
-                    jumps[n] = j
+                    ed2[n] = v
+                    out_jump[n] = j
                     n += 1
     k = 0
     for a in range(n):
-        if jumps[a] != 0:
-            values[k] = values[a]
-            jumps[k] = jumps[a]
+        if out_jump[a] != 0:
+            ed2[k] = ed2[a]
+            out_jump[k] = out_jump[a]
             k += 1
-    # views, not copies: a copy of tens of MB costs more (page faults) than the slack
-    return values[:k], jumps[:k]
+    return k
+
+
+def _collect(ed2: np.ndarray, elo: np.ndarray, lo: int, hi: int, out_jump: np.ndarray,
+             n_vertices: int) -> tuple[np.ndarray, np.ndarray]:
+    """The jump table of the owned edges and vertices; consumes ed2 and out_jump."""
+    k = _collect_in_place(ed2, elo, lo, hi, out_jump)
+    values, jumps = ed2[:k], out_jump[:k]  # views: a copy of tens of MB costs page faults
+    if k and values[0] == 0.0:  # coincident points: their 0-length edges meet the vertices
+        jumps[0] += n_vertices
+        if jumps[0] == 0:
+            values, jumps = values[1:], jumps[1:]
+    elif n_vertices:
+        values = np.concatenate((np.zeros(1), values))
+        jumps = np.concatenate((np.full(1, n_vertices, dtype=np.int64), jumps))
+    return values, jumps
 
 
 # ---------------------------------------------------------------------------------------
@@ -1203,7 +1250,9 @@ def _halo_graph(coords: np.ndarray, eps: float):
     lo0, hi0, d20, m = _tree_edges(coords, eps, reach * reach, _MAX_EDGES)
     if m < 0:
         raise ValueError(f"a halo of more than {_MAX_EDGES} edges is too large for one task")
-    return _sorted_graph(h, lo0, hi0, d20, m)
+    graph = _graph_arrays(h, m)
+    _sort_into(lo0, hi0, d20, m, *graph)
+    return graph
 
 
 def _cap1_table(coords: np.ndarray, eps: float, lo: int, hi: int, stats: KernelStats, t0: float) -> JumpTable:
