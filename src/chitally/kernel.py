@@ -505,7 +505,8 @@ def _tree_edges(coords, eps, prune2, max_edges):
     first_leaf = (n_nodes - 1) // 2
     near = np.empty(64, dtype=np.int64)
     e2 = eps * eps * (1.0 + 1e-12) + 1e-300
-    cap = max(1024, 4 * h, _sampled_edge_count(X, dims, h, e2, buf))
+    # a dense halo's estimate may be huge: beyond 2**27 edges the output grows as it fills
+    cap = max(1024, 4 * h, min(_sampled_edge_count(X, dims, h, e2, buf), 1 << 27))
     olo = np.empty(cap, dtype=np.int32)
     ohi = np.empty(cap, dtype=np.int32)
     od2 = np.empty(cap, dtype=np.float64)
