@@ -249,37 +249,28 @@ def _execute(store: Any, *, scheduler: str | None, scheduler_file: str | None, w
     from .execute import DaskExecutor, SerialExecutor
 
     bar = _ProgressBar(progress)
-    if serial:
-        try:
+    try:
+        if serial:
             return execute(store, SerialExecutor(retries=retries, threads=threads or 1), events=bar,
                            takeover=takeover, on_pending=bar.on_pending)
-        finally:
-            bar.close()
-    from .cluster import check_workers, connect, preflight_memory
+        from .cluster import check_workers, connect, preflight_memory
 
-    # a run refused for a held lease must not start (and tear down) a cluster first
-    lease = acquire_lease(store, takeover=takeover)
-    try:
-        conn = connect(scheduler, scheduler_file, workers, threads)
-    except BaseException:
-        lease.release()
-        raise
-    try:
-        if conn.dashboard:
-            click.echo(f"dashboard: {conn.dashboard}", err=True)
-            if conn.cluster is not None:
-                click.echo(f"  from another machine: {conn.ssh_hint()}", err=True)
-        try:
-            check_workers(conn.client, store.url)
-            preflight_memory(conn.client, int(store.read_plan().memory.max()))
-        except BaseException:
-            lease.release()
-            raise
-        executor = DaskExecutor(conn.client, retries=retries)
-        return execute(store, executor, events=bar, on_pending=bar.on_pending, lease=lease)
+        # a run refused for a held lease must not start (and tear down) a cluster first
+        with acquire_lease(store, takeover=takeover) as lease:
+            conn = connect(scheduler, scheduler_file, workers, threads)
+            try:
+                if conn.dashboard:
+                    click.echo(f"dashboard: {conn.dashboard}", err=True)
+                    if conn.cluster is not None:
+                        click.echo(f"  from another machine: {conn.ssh_hint()}", err=True)
+                check_workers(conn.client, store.url)
+                preflight_memory(conn.client, int(store.read_plan().memory.max()))
+                executor = DaskExecutor(conn.client, retries=retries)
+                return execute(store, executor, events=bar, on_pending=bar.on_pending, lease=lease)
+            finally:
+                conn.close()
     finally:
         bar.close()
-        conn.close()
 
 
 def _report(report: RunReport, grid: np.ndarray | None) -> None:

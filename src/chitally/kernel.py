@@ -195,8 +195,7 @@ _SMALL_BUCKET = 48
 _COARSE = 2048
 
 
-@nb.njit(nogil=True, cache=True)
-def _edge_graph(coords, pairs, eps):
+def _edge_graph(coords: np.ndarray, pairs: np.ndarray, eps: float):
     """The eps-graph of the halo with its edges sorted by (d2, lo, hi).
 
     Returns (offsets int64[h+1], nbrs int32[2m], erank int32[2m], elo int32[m],
@@ -207,27 +206,19 @@ def _edge_graph(coords, pairs, eps):
     return _sorted_graph(coords.shape[0], lo0, hi0, d20, m)
 
 
-@nb.njit(nogil=True, cache=True)
-def _sorted_graph(h, lo0, hi0, d20, m):
+def _sorted_graph(h: int, lo0: np.ndarray, hi0: np.ndarray, d20: np.ndarray, m: int):
     """_edge_graph from the first m accepted records (lo0 < hi0, d2) in any order: the
-    sort fixes the edge order, so the neighbour search may emit pairs as it likes."""
-    offsets = np.empty(h + 1, dtype=np.int64)
-    nbrs = np.empty(2 * m, dtype=np.int32)
-    erank = np.empty(2 * m, dtype=np.int32)
-    elo = np.empty(m, dtype=np.int32)
-    ehi = np.empty(m, dtype=np.int32)
-    ed2 = np.empty(m, dtype=np.float64)
-    _sort_into(lo0, hi0, d20, m, offsets, nbrs, erank, elo, ehi, ed2)
-    return offsets, nbrs, erank, elo, ehi, ed2
+    sort fixes the edge order, so the neighbour search may emit pairs as it likes.
 
-
-def _graph_arrays(h: int, m: int):
-    """(offsets, nbrs, erank, elo, ehi, ed2) to fill, allocated by numpy: large numpy
-    arrays are backed by huge pages where the system allows it, and tens of thousands of
-    page faults on arrays allocated inside compiled code measured a third of a kernel call."""
-    return (np.empty(h + 1, dtype=np.int64), np.empty(2 * m, dtype=np.int32),
-            np.empty(2 * m, dtype=np.int32), np.empty(m, dtype=np.int32),
-            np.empty(m, dtype=np.int32), np.empty(m, dtype=np.float64))
+    The arrays are numpy's: large numpy arrays are backed by huge pages where the system
+    allows it, and the page faults of arrays allocated inside compiled code measured a
+    third of a kernel call.
+    """
+    graph = (np.empty(h + 1, dtype=np.int64), np.empty(2 * m, dtype=np.int32),
+             np.empty(2 * m, dtype=np.int32), np.empty(m, dtype=np.int32),
+             np.empty(m, dtype=np.int32), np.empty(m, dtype=np.float64))
+    _sort_into(lo0, hi0, d20, m, *graph)
+    return graph
 
 
 @nb.njit(nogil=True, cache=True)
@@ -335,20 +326,6 @@ def _sort_into(lo0, hi0, d20, m, offsets, nbrs, erank, elo, ehi, ed2):
         nbrs[fill[b]] = a
         erank[fill[b]] = g
         fill[b] += 1
-
-
-@nb.njit(nogil=True, cache=True)
-def build_graph(coords, pairs, eps):
-    """CSR eps-graph of the halo from candidate pairs, filtered by the one distance rule.
-
-    Returns (offsets int64[h+1], neighbours int32[2k], d2 float64[2k]); every row lists
-    its neighbours in the edge order (d2, lower id, higher id).
-    """
-    offsets, nbrs, erank, _elo, _ehi, ed2 = _edge_graph(coords, pairs, eps)
-    nd2 = np.empty(nbrs.shape[0], dtype=np.float64)
-    for k in range(nbrs.shape[0]):
-        nd2[k] = ed2[erank[k]]
-    return offsets, nbrs, nd2
 
 
 # ---------------------------------------------------------------------------------------
@@ -1251,9 +1228,7 @@ def _halo_graph(coords: np.ndarray, eps: float):
     lo0, hi0, d20, m = _tree_edges(coords, eps, reach * reach, _MAX_EDGES)
     if m < 0:
         raise ValueError(f"a halo of more than {_MAX_EDGES} edges is too large for one task")
-    graph = _graph_arrays(h, m)
-    _sort_into(lo0, hi0, d20, m, *graph)
-    return graph
+    return _sorted_graph(h, lo0, hi0, d20, m)
 
 
 def _cap1_table(coords: np.ndarray, eps: float, lo: int, hi: int, stats: KernelStats, t0: float) -> JumpTable:

@@ -1625,6 +1625,7 @@ class Lease:
         self.stale_after = float(stale_after)
         self.last_beat = self.started
         self.error: BaseException | None = None
+        self._released = False
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
 
@@ -1702,8 +1703,12 @@ class Lease:
         Returns
         -------
         bool
-            True if it was ours and is now removed.
+            True if it was ours and is now removed; False if it was not, or was
+            released before.
         """
+        if self._released:  # nested holders (a caller and `runs.execute`) release once
+            return False
+        self._released = True
         self.stop()
         if self._still_ours() is None:
             logger.warning("lease on %s is no longer ours; leaving it alone", self.store.url)
