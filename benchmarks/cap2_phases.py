@@ -36,9 +36,7 @@ def main() -> None:
         reach = query_radius(eps)
         lo, hi, d2, m = kernel._tree_edges(coords, eps, reach * reach, kernel._MAX_EDGES)
         t = lap("edge join", t)
-        graph = kernel._graph_arrays(n, m)
-        kernel._sort_into(lo, hi, d2, m, *graph)
-        offsets, nbrs, erank, elo, _ehi, ed2 = graph
+        offsets, nbrs, erank, elo, _ehi, ed2 = kernel._sorted_graph(n, lo, hi, d2, m)
         t = lap("edge order + rows", t)
         out = np.empty(m, dtype=np.int64)
         kernel._count_cap2_near(coords, offsets, nbrs, erank, 0, n, out)
