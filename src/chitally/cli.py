@@ -1,47 +1,47 @@
 """The `chitally` command: thin over the Python API.
 
-Parses options, calls the API, prints, and sets exit codes: 0 done, 1 failure,
-2 bad input or usage, including a RUN that is no run store (nothing is created), 3 incomplete but resumable (`chitally
-resume RUN`), 4 the run store is in use by another run.
+Parses options, calls the API, prints, and sets the exit codes (documented in the
+README): 0 done, 1 failure, 2 bad input or usage (nothing created), 3 incomplete but
+resumable, 4 the run store is in use by another run (or this run lost its lease),
+130 interrupted by SIGINT, 143 by SIGTERM. Heavy modules are imported inside commands so
+that `chitally --help` starts fast.
 """
 
 from __future__ import annotations
 
+import functools
 import json
 import logging
 import os
 import sys
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any, NoReturn
 
 import click
-import numpy as np
 
 from . import __version__
-from .curve import Curve, parse_grid
-from .runs import (
-    EXIT_BUSY,
-    EXIT_FAILURE,
-    EXIT_INCOMPLETE,
-    EXIT_USAGE,
-    Params,
-    RunReport,
-    acquire_lease,
-    create_or_open,
-    describe_plan,
-    execute,
-    open_run,
-    read_result,
-    status,
-)
-from .sources import InputError, read_points
 
-GRID_HELP = "Also sample the curve on START:STOP:COUNT evenly spaced scales."
+EXIT_OK = 0
+EXIT_FAILURE = 1
+EXIT_USAGE = 2
+EXIT_INCOMPLETE = 3
+EXIT_BUSY = 4
+EXIT_SIGINT = 130
+EXIT_SIGTERM = 143
+
+GRID_HELP = "Also sample on START:STOP:COUNT evenly spaced scales."
+CURVE_FORMATS = ("csv", "json", "npz")
 
 
-def _fail(message: str, code: int) -> NoReturn:
+def fail(message: str, code: int) -> NoReturn:
+    """The one error style: `chitally: error: <one line>` on stderr, then exit `code`."""
     click.echo(f"chitally: error: {' '.join(str(message).split())}", err=True)
     sys.exit(code)
+
+
+def say(message: str) -> None:
+    click.echo(message, err=True)
 
 
 def _store_url(text: str) -> str:
@@ -50,103 +50,304 @@ def _store_url(text: str) -> str:
     return text if "://" in text else os.path.abspath(text)
 
 
-def _grid(text: str | None) -> np.ndarray | None:
+def _grid(text: str | None, option: str = "--grid") -> Any:
     if text is None:
         return None
+    from .curve import parse_grid
+
     try:
         return parse_grid(text)
     except ValueError as exc:
-        raise click.BadParameter(str(exc), param_hint="--grid") from None
+        fail(f"{option}: {exc}", EXIT_USAGE)
 
 
-def _guarded(fn):  # one place that turns our exceptions into one line and an exit code
-    import functools
+def check_output(path: str | None, fmt: str | None, formats: tuple[str, ...] = CURVE_FORMATS,
+                 option: str = "--out") -> str | None:
+    """Check an output file and its format before any work; returns the format."""
+    if path is None:
+        return fmt
+    if fmt is None:
+        fmt = Path(path).suffix.lstrip(".").lower()
+        if fmt not in formats:
+            fail(f"{option} {path}: cannot tell the format from the ending "
+                 f"{Path(path).suffix or '(none)'!r}; use one of {', '.join('.' + f for f in formats)} "
+                 "or --format", EXIT_USAGE)
+    folder = Path(path).resolve().parent
+    if not folder.is_dir():
+        fail(f"{option} {path}: the folder {folder} does not exist", EXIT_USAGE)
+    if not os.access(folder, os.W_OK):
+        fail(f"{option} {path}: the folder {folder} is not writable", EXIT_USAGE)
+    if Path(path).is_dir():
+        fail(f"{option} {path} is a folder, not a file", EXIT_USAGE)
+    return fmt
 
-    from .cluster import ClusterError
-    from .store import CurveDamaged, LeaseHeld, NotAStore, StoreError, StoreMismatch
+
+def guarded(fn: Callable[..., Any]) -> Callable[..., Any]:
+    """Turn the API's exceptions into one line and an exit code (the only place)."""
 
     @functools.wraps(fn)
     def wrapper(*args: Any, **kwargs: Any) -> Any:
+        from .cluster import ClusterError
+        from .execute import SchedulerLost
+        from .runs import Interrupted
+        from .sources import InputError
+        from .store import (
+            InputsDamaged,
+            LeaseHeld,
+            LeaseLost,
+            NotAStore,
+            ResultDamaged,
+            StoreError,
+            StoreExists,
+            StoreMismatch,
+        )
+
         try:
             return fn(*args, **kwargs)
-        except InputError as exc:
-            _fail(str(exc), EXIT_USAGE)
-        except (StoreMismatch, NotAStore) as exc:
-            _fail(str(exc), EXIT_USAGE)
+        except Interrupted as exc:
+            fail(str(exc), EXIT_SIGTERM if exc.signal == 15 else EXIT_SIGINT)
+        except KeyboardInterrupt:
+            fail("interrupted", EXIT_SIGINT)
+        except (InputError, StoreMismatch, NotAStore, StoreExists) as exc:
+            fail(str(exc), EXIT_USAGE)
+        except LeaseLost as exc:
+            fail(str(exc), EXIT_BUSY)
         except LeaseHeld as exc:
-            # the store words its hint for the Python API; here the switch is a flag
-            _fail(str(exc).replace("pass takeover=True", "rerun with --takeover"), EXIT_BUSY)
-        except CurveDamaged as exc:
-            _fail(f"{exc}; `chitally resume` writes it again from the task tables", EXIT_INCOMPLETE)
+            fail(str(exc).replace("pass takeover=True", "rerun with --takeover"), EXIT_BUSY)
+        except SchedulerLost as exc:
+            fail(f"{exc}; committed tasks are kept: `chitally resume RUN` continues on a new "
+                 "cluster", EXIT_INCOMPLETE)
+        except ResultDamaged as exc:
+            fail(f"{exc}; `chitally resume` writes it again from the task outputs", EXIT_INCOMPLETE)
+        except InputsDamaged as exc:
+            fail(str(exc), EXIT_FAILURE)
         except (StoreError, ClusterError) as exc:
-            _fail(str(exc), EXIT_FAILURE)
+            fail(str(exc), EXIT_FAILURE)
         except ValueError as exc:
-            _fail(str(exc), EXIT_USAGE)
+            fail(str(exc), EXIT_USAGE)
 
     return wrapper
 
 
-def _print_samples(curve: Curve, grid: np.ndarray) -> None:
-    click.echo("scale,chi")
-    for t, v in zip(grid, curve.sample(grid)):
-        click.echo(f"{float(t)!r},{int(v)}")
+class _Group(click.Group):
+    def main(self, *args: Any, **kwargs: Any) -> Any:
+        # click's own usage errors in our one style: "chitally: error: ..." and exit 2
+        try:
+            return super().main(*args, standalone_mode=False, **kwargs)
+        except click.exceptions.NoArgsIsHelpError as exc:
+            click.echo(exc.ctx.get_help() if exc.ctx else str(exc))
+            sys.exit(EXIT_OK)
+        except click.UsageError as exc:
+            hint = f" (see `{exc.ctx.command_path} --help`)" if exc.ctx else ""
+            fail(f"{exc.format_message()}{hint}", EXIT_USAGE)
+        except click.exceptions.Abort:
+            fail("interrupted", EXIT_SIGINT)
+        except click.exceptions.Exit as exc:
+            sys.exit(exc.exit_code)
+        except click.ClickException as exc:
+            fail(exc.format_message(), exc.exit_code)
 
 
-@click.group(context_settings={"help_option_names": ["-h", "--help"], "auto_envvar_prefix": "CHITALLY"})
+@click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"],
+                                           "auto_envvar_prefix": "CHITALLY"})
 @click.version_option(__version__, prog_name="chitally")
 @click.option("-v", "--verbose", count=True, help="More log output (-v info, -vv debug).")
 def main(verbose: int) -> None:
     """Exact Euler characteristic curves of Vietoris-Rips filtrations of large point sets."""
     level = logging.WARNING - 10 * min(verbose, 2)
     logging.basicConfig(level=level, format="%(levelname)s %(name)s: %(message)s")
-    # distributed configures its own INFO handlers; keep the terminal for our progress
-    if not verbose:
-        import dask
 
-        dask.config.set({"logging.distributed": "warning", "logging.bokeh": "error", "logging.tornado": "error"})
 
+# ------------------------------------------------------------------ shared options
 
 input_arg = click.argument("input", metavar="INPUT")
-eps_opt = click.option("--eps", type=float, required=True, help="Largest scale (> 0): edges are pairs at distance <= eps.")
-dim_opt = click.option("--max-dim", type=int, default=None, help="Count simplices up to this dimension (default: all).")
-key_opt = click.option("--key", default=None, help="Array, dataset or columns inside INPUT (npz, zarr, hdf5, parquet).")
-radius_opt = click.option("--cover-radius", type=float, default=None, help="Ball radius of the cover (default: eps).")
-cost_opt = click.option("--task-cost", type=float, default=None, help="Target cost per task (default: planner's choice).")
+eps_opt = click.option("--eps", type=float, required=True,
+                       help="Largest scale (> 0): edges join points at distance <= eps.")
+dim_opt = click.option("--max-dim", type=int, default=None,
+                       help="Count simplices up to this dimension (default: all).")
+key_opt = click.option("--key", default=None,
+                       help="Array, dataset or columns inside INPUT (npz, zarr, hdf5, parquet).")
+radius_opt = click.option("--cover-radius", type=float, default=None,
+                          help="Ball radius of the cover (default: eps).")
+cost_opt = click.option("--task-cost", type=float, default=None,
+                        help="Target cost per task (default: the planner's choice).")
 
+_NAMES = {"eps": "--eps", "max_dim": "--max-dim", "cover_radius": "--cover-radius",
+          "task_cost": "--task-cost"}
+
+
+def _cloud_params(eps: float, max_dim: int | None, cover_radius: float | None = None,
+                  task_cost: float | None = None) -> Any:
+    from .jobs.cloud import Params
+
+    return Params.checked(eps, max_dim, cover_radius, task_cost, names=_NAMES)
+
+
+def _executor_options(fn: Callable[..., Any]) -> Callable[..., Any]:
+    for opt in reversed([
+        click.option("--scheduler", default=None, envvar="DASK_SCHEDULER_ADDRESS", show_envvar=True,
+                     help="Address of a running Dask scheduler (default: start a LocalCluster)."),
+        click.option("--scheduler-file", default=None, type=click.Path(exists=True, dir_okay=False),
+                     help="Dask scheduler file of a running cluster."),
+        click.option("--workers", type=int, default=None,
+                     help="LocalCluster worker processes (default: one per core)."),
+        click.option("--threads", type=int, default=None, help="Threads per LocalCluster worker."),
+        click.option("--serial", is_flag=True, help="Run the tasks one by one in this process (no Dask)."),
+        click.option("--retries", type=int, default=2, show_default=True,
+                     help="Retries of a task that raised an error."),
+        click.option("--takeover", is_flag=True, help="Take over the lease of a run that stopped heartbeating."),
+        click.option("--lost-after", type=float, default=60.0, show_default=True,
+                     help="Seconds without any worker before a run stops as lost (exit 3, resumable)."),
+        click.option("--progress/--no-progress", default=True, help="Terminal progress bar."),
+    ]):
+        fn = opt(fn)
+    return fn
+
+
+def _where(scheduler: str | None, scheduler_file: str | None, workers: int | None,
+           threads: int | None, serial: bool, retries: int, takeover: bool,
+           lost_after: float) -> Any:
+    from .runs import Where
+    from .validate import validate_count, validate_positive
+
+    if workers is not None:
+        validate_count(workers, name="--workers", minimum=1)
+    if threads is not None:
+        validate_count(threads, name="--threads", minimum=1)
+    validate_count(retries, name="--retries", minimum=0)
+    validate_positive(lost_after, name="--lost-after")
+    return Where(scheduler=scheduler, scheduler_file=scheduler_file, workers=workers,
+                 threads=threads, serial=serial, retries=retries, takeover=takeover,
+                 lost_after=lost_after)
+
+
+class ProgressBar:
+    """Terminal progress weighted by task cost (one adapter among the executor's events)."""
+
+    def __init__(self, enabled: bool, unit: str = "tasks") -> None:
+        self.enabled = enabled
+        self.unit = unit
+        self.bar: Any = None
+        self.cost: Any = None
+
+    def on_pending(self, store: Any, pending: list[int]) -> None:
+        if not self.enabled:
+            return
+        from tqdm import tqdm
+
+        self.cost = store.task_cost()
+        if self.bar is not None:
+            self.bar.close()
+        self.bar = tqdm(total=float(self.cost[pending].sum()), desc=f"{len(pending)} tasks",
+                        file=sys.stderr, dynamic_ncols=True,
+                        bar_format="{desc}: {percentage:3.0f}%|{bar}| {elapsed}<{remaining}")
+
+    def on_connect(self, conn: Any) -> None:
+        if conn.dashboard:
+            say(f"dashboard: {conn.dashboard}")
+            if conn.cluster is not None:
+                say(f"  from another machine: {conn.ssh_hint()}")
+
+    def task_started(self, task: int, attempt: str) -> None:
+        pass
+
+    def task_done(self, result: Any) -> None:
+        if self.bar is not None and self.cost is not None:
+            self.bar.update(float(self.cost[result.task]))
+
+    def task_retry(self, task: int, attempt: str, message: str) -> None:
+        if self.bar is not None:
+            self.bar.write(f"task {task}: attempt {attempt} failed, retrying: {message}")
+
+    def task_failed(self, task: int, message: str, attempts: int) -> None:
+        if self.bar is not None:
+            self.bar.write(f"task {task} failed after {attempts} attempts: {message}")
+
+    def tick(self) -> None:
+        if self.bar is not None:
+            self.bar.refresh()
+
+    def close(self) -> None:
+        if self.bar is not None:
+            self.bar.close()
+
+
+def _run_store(store: Any, where: Any, progress: bool) -> Any:
+    from .jobs import kind_of
+    from .runs import run
+
+    bar = ProgressBar(progress, kind_of(store.kind).unit)
+    try:
+        return run(store, where, events=bar, on_pending=bar.on_pending, on_connect=bar.on_connect)
+    finally:
+        bar.close()
+
+
+def _print_samples(curve: Any, grid: Any) -> None:
+    click.echo("scale,chi")
+    for t, v in zip(grid, curve.sample(grid)):
+        click.echo(f"{float(t)!r},{int(v)}")
+
+
+def _report(report: Any, grid: Any = None, out: str | None = None, fmt: str | None = None) -> None:
+    say(f"{report.url}: {report.done}/{report.n_tasks} tasks done, {report.computed} computed now, "
+        f"{len(report.failed)} failed, {report.seconds:.1f} s")
+    if report.set_aside:
+        say(f"  damaged outputs set aside and computed again: tasks {sorted(set(report.set_aside))}")
+    for task, message in sorted(report.failed.items()):
+        say(f"  task {task} failed: {message}")
+    if not report.complete:
+        say(f"incomplete: fix the cause, then `chitally resume {report.url}`")
+        sys.exit(EXIT_INCOMPLETE)
+    if report.kind == "cloud":
+        c = report.result
+        say(f"curve: {c.n_jumps} jumps, chi(0) = {c.at(0.0)}, chi(eps) = {c.final}, "
+            f"digest {c.digest()[:16]}")
+        if out is not None:
+            c.save_samples(out, grid, format=fmt) if grid is not None else c.save(out, format=fmt)
+            say(f"wrote {out}")
+        elif grid is not None:
+            _print_samples(c, grid)
+    else:
+        m = report.result
+        say(f"feature matrix: {m.values.shape[0]} rows x {m.values.shape[1]} grid points")
+        if out is not None:
+            m.save(out, format=fmt)
+            say(f"wrote {out}")
+    say(f"export: chitally export {report.url} --out FILE")
+
+
+# ------------------------------------------------------------------ commands
 
 @main.command("curve")
 @input_arg
 @eps_opt
 @dim_opt
 @key_opt
-@click.option("--out", "out", type=click.Path(dir_okay=False), default=None,
-              help="Write the curve here; format from the ending (.csv, .json, .npz).")
+@click.option("--out", "out", default=None, help="Write the curve here (.csv, .json, .npz).")
+@click.option("--format", "fmt", type=click.Choice(CURVE_FORMATS), default=None,
+              help="Output format (default: from --out's ending).")
 @click.option("--grid", default=None, help=GRID_HELP + " With --out, the file holds the samples.")
-@click.option("--threads", type=int, default=None, help="Kernel threads (default: all cores).")
-@_guarded
+@click.option("--threads", type=int, default=None, help="Kernel threads (default: by size).")
+@guarded
 def curve_cmd(input: str, eps: float, max_dim: int | None, key: str | None, out: str | None,
-              grid: str | None, threads: int | None) -> None:
+              fmt: str | None, grid: str | None, threads: int | None) -> None:
     """Compute the curve of INPUT in this process."""
-    from .inprocess import euler_curve
-
-    params = Params.checked(eps, max_dim)
+    params = _cloud_params(eps, max_dim)
     grid_values = _grid(grid)
+    fmt = check_output(out, fmt)
+    from .inprocess import euler_curve
+    from .sources import read_points
+
     points = read_points(input, key=key)
     curve, stats = euler_curve(points, params.eps, params.max_dim, threads=threads, return_stats=True)
-    click.echo(
-        f"{points.shape[0]} points in R^{points.shape[1]}, eps {params.eps:g}, "
-        f"max_dim {params.max_dim if params.max_dim is not None else 'none'}: "
-        f"{stats.edges} edges, {stats.cones} cones, {stats.collapsed} collapses, {stats.splits} splits; "
+    say(f"{points.shape[0]} points in R^{points.shape[1]}, eps {params.eps:g}, max_dim "
+        f"{params.max_dim if params.max_dim is not None else 'none'}: {stats.edges} edges; "
         f"{curve.n_jumps} jumps, chi(0) = {curve.at(0.0)}, chi(eps) = {curve.final}; "
-        f"{stats.seconds_graph + stats.seconds_count:.2f} s",
-        err=True,
-    )
+        f"{stats.seconds_graph + stats.seconds_count:.2f} s")
     if out is not None:
-        if grid_values is not None:
-            curve.save_samples(out, grid_values)
-        else:
-            curve.save(out)
-        click.echo(f"wrote {out}", err=True)
+        curve.save_samples(out, grid_values, format=fmt) if grid_values is not None else curve.save(out, format=fmt)
+        say(f"wrote {out}")
     elif grid_values is not None:
         _print_samples(curve, grid_values)
 
@@ -170,128 +371,26 @@ def format_figure(name: str, value: Any) -> str:
 @radius_opt
 @cost_opt
 @click.option("--json", "as_json", is_flag=True, help="Print the figures as JSON.")
-@_guarded
+@guarded
 def plan_cmd(input: str, eps: float, max_dim: int | None, key: str | None, cover_radius: float | None,
              task_cost: float | None, as_json: bool) -> None:
     """Show what a run would do (balls, tasks, halos, cost, memory, store layout); writes nothing."""
-    params = Params.checked(eps, max_dim, cover_radius, task_cost)
-    summary = describe_plan(read_points(input, key=key), params)
+    from .jobs.cloud import describe
+    from .sources import read_points
+
+    params = _cloud_params(eps, max_dim, cover_radius, task_cost)
+    summary = describe(read_points(input, key=key), params)
     if as_json:
         click.echo(json.dumps(summary, indent=2))
         return
     layout = summary.pop("layout")
+    warnings = summary.pop("warnings")
     for name, value in summary.items():
         click.echo(f"{name:>22}: {format_figure(name, value)}")
+    for w in warnings:
+        click.echo(f"warning: {w}")
     click.echo("store layout:")
     click.echo(layout)
-
-
-class _ProgressBar:
-    """Terminal progress weighted by task cost (one adapter among the executor's events)."""
-
-    def __init__(self, enabled: bool) -> None:
-        self.enabled = enabled
-        self.bar = None
-        self.cost: np.ndarray | None = None
-
-    def on_pending(self, store: Any, pending: list[int]) -> None:
-        if not self.enabled:
-            return
-        from tqdm import tqdm
-
-        self.cost = store.read_plan().cost.astype(np.float64)
-        total = float(self.cost[pending].sum())
-        if self.bar is not None:
-            self.bar.close()
-        self.bar = tqdm(total=total, unit="cost", unit_scale=True, desc=f"{len(pending)} tasks",
-                        file=sys.stderr, dynamic_ncols=True)
-
-    def task_started(self, task: int, attempt: str) -> None:
-        pass
-
-    def task_done(self, result: Any) -> None:
-        if self.bar is not None and self.cost is not None:
-            self.bar.update(float(self.cost[result.task]))
-
-    def task_retry(self, task: int, attempt: str, message: str) -> None:
-        if self.bar is not None:
-            self.bar.write(f"task {task}: attempt {attempt} failed, retrying: {message}")
-
-    def task_failed(self, task: int, message: str, attempts: int) -> None:
-        if self.bar is not None:
-            self.bar.write(f"task {task} failed after {attempts} attempts: {message}")
-
-    def close(self) -> None:
-        if self.bar is not None:
-            self.bar.close()
-
-
-def _executor_options(fn):
-    for opt in reversed([
-        click.option("--scheduler", default=None, envvar="DASK_SCHEDULER_ADDRESS", show_envvar=True,
-                     help="Address of a running Dask scheduler (default: start a LocalCluster)."),
-        click.option("--scheduler-file", default=None, type=click.Path(exists=True, dir_okay=False),
-                     help="Dask scheduler file of a running cluster."),
-        click.option("--workers", type=int, default=None, help="LocalCluster worker processes (default: one per core)."),
-        click.option("--threads", type=int, default=None, help="Threads per LocalCluster worker."),
-        click.option("--serial", is_flag=True, help="Run the tasks one by one in this process (no Dask)."),
-        click.option("--retries", type=int, default=2, show_default=True, help="Retries of a task that raised an error."),
-        click.option("--takeover", is_flag=True, help="Take over the lease of a run that stopped heartbeating."),
-        click.option("--grid", default=None, help=GRID_HELP),
-        click.option("--progress/--no-progress", default=True, help="Terminal progress bar."),
-    ]):
-        fn = opt(fn)
-    return fn
-
-
-def _execute(store: Any, *, scheduler: str | None, scheduler_file: str | None, workers: int | None,
-             threads: int | None, serial: bool, retries: int, takeover: bool, progress: bool) -> RunReport:
-    from .execute import DaskExecutor, SerialExecutor
-
-    bar = _ProgressBar(progress)
-    try:
-        if serial:
-            return execute(store, SerialExecutor(retries=retries, threads=threads or 1), events=bar,
-                           takeover=takeover, on_pending=bar.on_pending)
-        from .cluster import check_workers, connect, preflight_memory
-
-        # a run refused for a held lease must not start (and tear down) a cluster first
-        with acquire_lease(store, takeover=takeover) as lease:
-            conn = connect(scheduler, scheduler_file, workers, threads)
-            try:
-                if conn.dashboard:
-                    click.echo(f"dashboard: {conn.dashboard}", err=True)
-                    if conn.cluster is not None:
-                        click.echo(f"  from another machine: {conn.ssh_hint()}", err=True)
-                check_workers(conn.client, store.url)
-                preflight_memory(conn.client, int(store.read_plan().memory.max()))
-                executor = DaskExecutor(conn.client, retries=retries)
-                return execute(store, executor, events=bar, on_pending=bar.on_pending, lease=lease)
-            finally:
-                conn.close()
-    finally:
-        bar.close()
-
-
-def _report(report: RunReport, grid: np.ndarray | None) -> None:
-    click.echo(
-        f"{report.url}: {report.done}/{report.n_tasks} tasks reduced, {report.computed} computed now, "
-        f"{len(report.failed)} failed, {report.seconds:.1f} s",
-        err=True,
-    )
-    if report.set_aside:
-        click.echo(f"  damaged outputs set aside and computed again: tasks {sorted(set(report.set_aside))}",
-                   err=True)
-    for task, message in sorted(report.failed.items()):
-        click.echo(f"  task {task} failed: {message}", err=True)
-    if report.curve is None:
-        click.echo(f"incomplete: fix the cause, then `chitally resume {report.url}`", err=True)
-        sys.exit(report.exit_code)
-    c = report.curve
-    click.echo(f"curve: {c.n_jumps} jumps, chi(0) = {c.at(0.0)}, chi(eps) = {c.final}, digest {c.digest()[:16]}",
-               err=True)
-    if grid is not None:
-        _print_samples(c, grid)
 
 
 @main.command("run")
@@ -302,16 +401,27 @@ def _report(report: RunReport, grid: np.ndarray | None) -> None:
 @click.option("--out", "out", required=True, help="The run store: a local path or an fsspec URL all workers reach.")
 @radius_opt
 @cost_opt
+@click.option("--grid", default=None, help=GRID_HELP)
+@click.option("--discard", is_flag=True, help="Delete committed work of an unfinished store at --out.")
 @_executor_options
-@_guarded
+@guarded
 def run_cmd(input: str, eps: float, max_dim: int | None, key: str | None, out: str,
-            cover_radius: float | None, task_cost: float | None, grid: str | None, **how: Any) -> None:
+            cover_radius: float | None, task_cost: float | None, grid: str | None, discard: bool,
+            progress: bool, **how: Any) -> None:
     """Plan, execute and reduce: the exact curve of INPUT on a Dask cluster."""
-    params = Params.checked(eps, max_dim, cover_radius, task_cost)
+    from .jobs.cloud import create_or_open, plan_warnings
+    from .sources import read_points
+
+    params = _cloud_params(eps, max_dim, cover_radius, task_cost)
     grid_values = _grid(grid)
+    where = _where(**how)
     points = read_points(input, key=key)  # validated before any store exists
-    store = create_or_open(_store_url(out), points, params)
-    _report(_execute(store, **how), grid_values)
+    store = create_or_open(_store_url(out), points, params, discard=discard)
+    from .jobs.cloud import read_plan
+
+    for w in plan_warnings(read_plan(store)):
+        say(f"warning: {w}")
+    _report(_run_store(store, where, progress), grid_values)
 
 
 @main.command("resume")
@@ -320,74 +430,101 @@ def run_cmd(input: str, eps: float, max_dim: int | None, key: str | None, out: s
 @click.option("--key", default=None, help="Array inside --input.")
 @click.option("--eps", type=float, default=None, help="Check the store was made for this eps.")
 @click.option("--max-dim", type=int, default=None, help="Check the store was made for this cap.")
+@click.option("--grid", default=None, help=GRID_HELP)
 @_executor_options
-@_guarded
+@guarded
 def resume_cmd(run: str, input_: str | None, key: str | None, eps: float | None, max_dim: int | None,
-               grid: str | None, **how: Any) -> None:
+               grid: str | None, progress: bool, **how: Any) -> None:
     """Continue RUN: compute only the tasks without a valid commit, then reduce."""
+    from .runs import open_run
     from .store import fingerprint
 
     grid_values = _grid(grid)
+    where = _where(**how)
     store = open_run(_store_url(run))
-    stored = store.params
     if eps is not None or max_dim is not None or input_ is not None:
-        wanted = dict(stored)
+        from .sources import read_points
+
+        wanted = store.params
         if eps is not None:
-            wanted["eps"] = Params.checked(eps).eps
+            wanted["eps"] = _cloud_params(eps, None).eps
         if max_dim is not None:
             wanted["max_dim"] = max_dim
         fp = fingerprint(read_points(input_, key=key)) if input_ is not None else store.fingerprint
-        store.check_matches(wanted, fp)
-    _report(_execute(store, **how), grid_values)
+        store.check_matches(store.kind, wanted, fp)
+    _report(_run_store(store, where, progress), grid_values)
 
 
 @main.command("status")
 @click.argument("run", metavar="RUN")
 @click.option("--json", "as_json", is_flag=True, help="Print as JSON.")
-@_guarded
+@guarded
 def status_cmd(run: str, as_json: bool) -> None:
     """Tasks done, pending and failed, cost-weighted progress and a time estimate."""
-    info = status(open_run(run))
+    from .runs import open_run, status
+
+    info = status(open_run(_store_url(run)))
     if as_json:
         click.echo(json.dumps(info, indent=2))
         return
-    click.echo(f"{info['store']}: {info['done']}/{info['tasks']} tasks done ({info['percent']}% of the cost), "
-               f"{info['pending']} pending, {info['failed']} failed; complete: {info['complete']}")
+    click.echo(f"{info['store']} ({info['kind']}): {info['done']}/{info['tasks']} tasks done "
+               f"({info['percent']}% of the work), {info['pending']} pending, {info['failed']} failed; "
+               f"complete: {info['complete']}")
     click.echo(f"task time so far {info['task_seconds']} s; estimated task time left "
-               f"{info['task_seconds_left_estimate']} s; commits from {info['first_commit']} to {info['last_commit']}")
+               f"{info['task_seconds_left_estimate']} s; commits from {info['first_commit']} to "
+               f"{info['last_commit']}")
+    if info["running"]:
+        r = info["running"]
+        click.echo(f"  in use by {r['owner']} (host {r['host']}, pid {r['pid']}; {r['verdict']})")
     for task, message in info["failures"].items():
         click.echo(f"  task {task} failed: {message}")
-    if info["curve_damaged"]:
-        click.echo(f"  the final curve is damaged ({info['curve_damaged']}): `chitally resume {run}` writes it again")
+    if info["damaged_commit_records"]:
+        click.echo(f"  damaged commit records (resume recomputes them): tasks {info['damaged_commit_records']}")
+    if info["result_damaged"]:
+        click.echo(f"  the result is damaged ({info['result_damaged']}): `chitally resume {run}` writes it again")
 
 
 @main.command("export")
 @click.argument("run", metavar="RUN")
-@click.option("--format", "fmt", type=click.Choice(["csv", "npz", "json"]), default=None,
+@click.option("--format", "fmt", type=click.Choice(["csv", "npz", "json", "npy", "parquet"]), default=None,
               help="Output format (default: from --out's ending, else csv).")
-@click.option("--grid", default=None, help="Export samples on START:STOP:COUNT instead of the exact jumps.")
-@click.option("--out", "out", default=None, type=click.Path(dir_okay=False), help="File to write (default: stdout, csv/json only).")
-@_guarded
+@click.option("--grid", default=None, help="Export a curve's samples on START:STOP:COUNT instead of its exact steps.")
+@click.option("--out", "out", default=None, help="File to write (default: stdout, csv/json only).")
+@guarded
 def export_cmd(run: str, fmt: str | None, grid: str | None, out: str | None) -> None:
-    """Write the curve of a complete RUN (CSV: header row, then scale and the value from there on)."""
+    """Write the result of a complete RUN: a curve's exact steps or samples, or a feature matrix."""
+    from .runs import open_run, read_result
+
     grid_values = _grid(grid)
-    curve = read_result(open_run(run))
-    if curve is None:
-        _fail(f"{run} has no curve yet: run `chitally resume {run}`", 3)
-    if fmt is None:
-        fmt = Path(out).suffix.lstrip(".").lower() if out else "csv"
+    store = open_run(_store_url(run))
+    formats = CURVE_FORMATS if store.kind == "cloud" else ("csv", "npy", "npz", "parquet")
+    if fmt is not None and fmt not in formats:
+        fail(f"--format {fmt}: a {store.kind} result exports as {', '.join(formats)}", EXIT_USAGE)
+    fmt = check_output(out, fmt, formats) or "csv"
+    result = read_result(store)
+    if result is None:
+        fail(f"{run} has no result yet: run `chitally resume {run}`", EXIT_INCOMPLETE)
     if out is None:
-        if fmt == "npz":
-            raise click.UsageError("npz needs --out")
+        if fmt not in ("csv", "json"):
+            fail(f"{fmt} needs --out", EXIT_USAGE)
         import tempfile
 
         with tempfile.TemporaryDirectory() as tmp:
-            path = Path(tmp) / f"curve.{fmt}"
-            curve.save_samples(path, grid_values) if grid_values is not None else curve.save(path)
+            path = Path(tmp) / f"result.{fmt}"
+            _save(result, path, fmt, grid_values)
             click.echo(path.read_text(), nl=False)
         return
-    curve.save_samples(out, grid_values, format=fmt) if grid_values is not None else curve.save(out, format=fmt)
-    click.echo(f"wrote {out}", err=True)
+    _save(result, out, fmt, grid_values)
+    say(f"wrote {out}")
+
+
+def _save(result: Any, path: Any, fmt: str, grid: Any) -> None:
+    from .curve import Curve
+
+    if isinstance(result, Curve):
+        result.save_samples(path, grid, format=fmt) if grid is not None else result.save(path, format=fmt)
+    else:
+        result.save(path, format=fmt)
 
 
 @main.command("demo")
@@ -395,18 +532,18 @@ def export_cmd(run: str, fmt: str | None, grid: str | None, out: str | None) -> 
 @click.option("--out", "out", default="chitally-demo.run", show_default=True, help="Run store of the demo.")
 @click.option("--workers", type=int, default=None, help="LocalCluster worker processes.")
 @click.option("--seed", type=int, default=7, show_default=True)
-@_guarded
+@guarded
 def demo_cmd(n_points: int, out: str, workers: int | None, seed: int) -> None:
     """Generate a scenario of our own and run the main job on an embedded LocalCluster."""
+    from .curve import parse_grid
     from .demo import demo_scenario
+    from .jobs.cloud import create_or_open
 
+    where = _where(None, None, workers, None, False, 2, False, 60.0)
     points, eps, story = demo_scenario(n_points, seed)
-    click.echo(story, err=True)
-    params = Params.checked(eps, None)
-    store = create_or_open(out, points, params)
-    report = _execute(store, scheduler=None, scheduler_file=None, workers=workers, threads=None,
-                      serial=False, retries=2, takeover=False, progress=True)
-    _report(report, parse_grid(f"0:{eps!r}:9"))
+    say(story)
+    store = create_or_open(_store_url(out), points, _cloud_params(eps, None))
+    _report(_run_store(store, where, True), parse_grid(f"0:{eps!r}:9"))
 
 
 if __name__ == "__main__":  # pragma: no cover

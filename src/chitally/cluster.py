@@ -100,24 +100,25 @@ def connect(
     return Connection(client, cluster, _dashboard_of(client))
 
 
-def _worker_facts(url: str) -> dict[str, Any]:
+def _worker_facts(store: Any) -> dict[str, Any]:
     import chitally
-    from chitally.store import RunStore
+    from chitally.engine import worker_store
 
     try:
-        RunStore.open(url)
+        worker_store(store)
         reach = None
     except Exception as exc:  # reported to the driver, which names the worker
         reach = f"{type(exc).__name__}: {exc}"
     return {"chitally": chitally.__version__, "numba": numba.__version__, "store_error": reach}
 
 
-def check_workers(client: Any, url: str) -> int:
+def check_workers(client: Any, store: Any) -> int:
     """Every worker runs our chitally and numba versions and can open the store.
 
     Returns the number of worker threads.
     """
-    facts = client.run(_worker_facts, url)
+    url = store.url
+    facts = client.run(_worker_facts, store)
     if not facts:
         raise ClusterError("the cluster has no workers")
     for worker, f in facts.items():

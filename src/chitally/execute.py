@@ -1,31 +1,39 @@
-"""Executors: run a set of tasks of one run store and report through callbacks.
+"""Executors: run task ids of one run store and report through callbacks.
 
-Two executors run the same task function (`chitally.tasks.run_task`): a serial for-loop,
-the reference in tests, and a Dask executor that submits in a bounded window so a
-million tasks never flood the scheduler. Retries are ours, not Dask's, so that every
-attempt has a name, input errors are not retried, and a task that keeps failing is
-handed back with its message. Lost workers are Dask's business: it recomputes their
-tasks. Executors never print; progress, logging and checkpointing hang off `Events`.
+An executor has one method, ``run(store, tasks, events) -> Outcome``, and knows nothing
+of what a task computes: it calls a task function (`chitally.engine.run_task` unless
+another is given, e.g. a test's fault-injecting wrapper). The serial for-loop is the
+reference; the Dask executor submits in a window that follows the live cluster (workers
+that join later raise it), notices a lost scheduler, and keeps our own bounded retries so
+every attempt has a name and errors that another attempt cannot cure are not retried.
+Executors never print; progress, logging and checkpointing hang off `Events`.
 """
 
 from __future__ import annotations
 
-import hashlib
 import logging
 import socket
+import time
 import traceback
-from collections.abc import Iterable, Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Protocol
 
-from .sources import InputError
-from .store import CommitConflict, StoreMismatch
-from .tasks import InputFault, TaskResult, run_task
+from . import engine
+from .engine import TaskResult
+from .store import CommitConflict, InputsDamaged, LeaseLost, RunStore, StoreMismatch
+from .validate import InputError
 
 logger = logging.getLogger(__name__)
 
 # errors that another attempt of the same task cannot cure
-NOT_RETRIED = (InputError, InputFault, CommitConflict, StoreMismatch)
+NOT_RETRIED: tuple[type[BaseException], ...] = (InputError, CommitConflict, StoreMismatch, InputsDamaged)
+# errors that end the whole run at once: no other task can succeed either
+FATAL: tuple[type[BaseException], ...] = (InputsDamaged, LeaseLost)
+
+
+class SchedulerLost(RuntimeError):
+    """The Dask scheduler (or every worker) went away; the run can be resumed."""
 
 
 class Events(Protocol):
@@ -35,6 +43,7 @@ class Events(Protocol):
     def task_done(self, result: TaskResult) -> None: ...
     def task_retry(self, task: int, attempt: str, message: str) -> None: ...
     def task_failed(self, task: int, message: str, attempts: int) -> None: ...
+    def tick(self) -> None: ...
 
 
 class Callbacks:
@@ -52,6 +61,9 @@ class Callbacks:
     def task_failed(self, task: int, message: str, attempts: int) -> None:
         pass
 
+    def tick(self) -> None:
+        """Called at least every second or so while the executor waits: proof of life."""
+
 
 @dataclass
 class Outcome:
@@ -61,8 +73,15 @@ class Outcome:
     failed: dict[int, str] = field(default_factory=dict)
 
 
-def _message(exc: BaseException) -> str:
-    text = f"{type(exc).__name__}: {exc}".replace("\n", " ")
+class Executor(Protocol):
+    def run(self, store: RunStore, tasks: Sequence[int], events: Events) -> Outcome: ...
+
+
+TaskFunction = Callable[..., TaskResult]
+
+
+def message_of(exc: BaseException) -> str:
+    text = " ".join(f"{type(exc).__name__}: {exc}".split())
     return text if len(text) < 2000 else text[:2000] + "..."
 
 
@@ -70,116 +89,183 @@ def attempt_name(task: int, number: int) -> str:
     return f"{socket.gethostname()}-{task}-{number}"
 
 
+def _task_function(given: TaskFunction | None) -> TaskFunction:
+    # looked up at run time, so a test can wrap the engine's function from its own side
+    return given if given is not None else engine.run_task
+
+
 class SerialExecutor:
     """Runs tasks one after the other in this process: the reference executor."""
 
-    def __init__(self, threads: int = 1, retries: int = 2) -> None:
+    def __init__(self, threads: int = 1, retries: int = 2,
+                 task_function: TaskFunction | None = None) -> None:
         self.threads = threads
         self.retries = retries
+        self.task_function = task_function
 
-    def run(self, url: str, tasks: Sequence[int], events: Events, plan_digest: str = "") -> Outcome:
+    def run(self, store: RunStore, tasks: Sequence[int], events: Events) -> Outcome:
+        fn = _task_function(self.task_function)
         outcome = Outcome()
         for task in tasks:
             for number in range(self.retries + 1):
                 attempt = attempt_name(task, number)
                 events.task_started(task, attempt)
                 try:
-                    result = run_task(url, task, attempt, threads=self.threads,
-                                      plan_digest=plan_digest or None)
+                    result = fn(store, task, attempt, threads=self.threads)
+                except FATAL:
+                    raise
                 except NOT_RETRIED as exc:
-                    outcome.failed[task] = _message(exc)
+                    outcome.failed[task] = message_of(exc)
                     events.task_failed(task, outcome.failed[task], number + 1)
                     break
                 except Exception as exc:  # any other error: bounded retries
                     logger.debug("task %d attempt %s failed:\n%s", task, attempt, traceback.format_exc())
                     if number == self.retries:
-                        outcome.failed[task] = _message(exc)
+                        outcome.failed[task] = message_of(exc)
                         events.task_failed(task, outcome.failed[task], number + 1)
                     else:
-                        events.task_retry(task, attempt, _message(exc))
+                        events.task_retry(task, attempt, message_of(exc))
                     continue
                 outcome.done.append(task)
                 events.task_done(result)
+                events.tick()
                 break
         return outcome
 
 
 class DaskExecutor:
-    """Runs tasks on a Dask cluster through `client`, at most `window` in flight.
+    """Runs tasks on a Dask cluster through `client`.
 
-    Keys are ``chitally-task-<plan digest>-<store hash>-<task>[-r<retry>]`` so the dashboard groups
-    them by run. Higher-cost tasks get higher priority (tasks arrive heaviest first).
+    At most `window` tasks are in flight; by default four per worker thread of the live
+    cluster, recounted as workers come and go. Keys are
+    ``chitally-<kind>-<plan digest>-<store hash>-<task>[-r<retry>]`` so the dashboard
+    groups them by run; tasks arrive heaviest first and keep that priority. When the
+    client closes, or no worker is connected for `lost_after` seconds, `SchedulerLost`
+    is raised with the in-flight tasks cancelled.
     """
 
-    def __init__(self, client: Any, retries: int = 2, window: int | None = None, threads: int = 1) -> None:
+    def __init__(self, client: Any, retries: int = 2, window: int | None = None, threads: int = 1,
+                 task_function: TaskFunction | None = None, lost_after: float = 60.0) -> None:
         self.client = client
         self.retries = retries
         self.threads = threads
-        if window is None:
-            slots = sum(w.get("nthreads", 1) for w in client.scheduler_info()["workers"].values())
-            window = max(4, 4 * slots)
-        self.window = window
+        self.fixed_window = window
+        self.task_function = task_function
+        self.lost_after = float(lost_after)
+        self._window_at = -1.0
+        self._window = 4
 
-    def run(self, url: str, tasks: Sequence[int], events: Events, plan_digest: str = "") -> Outcome:
-        from distributed import as_completed
+    def window(self) -> int:
+        if self.fixed_window is not None:
+            return self.fixed_window
+        now = time.monotonic()
+        if now - self._window_at > 1.0:
+            try:
+                workers = self.client.scheduler_info(n_workers=-1)["workers"].values()
+            except TypeError:  # older distributed: no n_workers argument
+                workers = self.client.scheduler_info()["workers"].values()
+            except Exception:
+                workers = []
+            slots = sum(w.get("nthreads", 1) for w in workers)
+            self._window = max(4, 4 * slots)
+            self._window_at = now
+        return self._window
 
+    def _check_alive(self, since_workers: list[float]) -> None:
+        status = getattr(self.client, "status", "running")
+        if status in ("closed", "closing", "failed"):
+            raise SchedulerLost(f"the Dask scheduler was lost (client {status})")
+        now = time.monotonic()
+        try:
+            n = len(self.client.scheduler_info()["workers"])
+        except Exception:
+            n = 0
+        if n:
+            since_workers[0] = now
+        elif now - since_workers[0] > self.lost_after:
+            raise SchedulerLost(f"no Dask worker for {self.lost_after:g} s")
+
+    def run(self, store: RunStore, tasks: Sequence[int], events: Events) -> Outcome:
+        import hashlib
+
+        from distributed import wait
+
+        fn = _task_function(self.task_function)
         outcome = Outcome()
         # two stores of one plan may run at once on one cluster: keys must differ
-        key_prefix = f"chitally-task-{plan_digest}-{hashlib.sha256(url.encode()).hexdigest()[:6]}"
+        prefix = (f"chitally-{store.kind}-{store.plan_digest[:16]}-"
+                  f"{hashlib.sha256(store.url.encode()).hexdigest()[:6]}")
         queue = iter(list(tasks))
         attempts: dict[int, int] = {}
         in_flight: dict[Any, int] = {}
-        ac = as_completed()
-        submitted = [0]
+        submitted = 0
+        since_workers = [time.monotonic()]
 
         def submit(task: int) -> None:
+            nonlocal submitted
             number = attempts.get(task, 0)
             attempt = attempt_name(task, number)
-            key = f"{key_prefix}-{task}" + (f"-r{number}" if number else "")
-            fut = self.client.submit(
-                run_task, url, task, attempt, threads=self.threads, plan_digest=plan_digest or None,
-                key=key, pure=False,
-                priority=-submitted[0],  # tasks arrive heaviest first: keep that order
-            )
-            submitted[0] += 1
+            key = f"{prefix}-{task}" + (f"-r{number}" if number else "")
+            fut = self.client.submit(fn, store, task, attempt, threads=self.threads, key=key,
+                                     pure=False, priority=-submitted)
+            submitted += 1
             in_flight[fut] = task
             events.task_started(task, attempt)
-            ac.add(fut)
 
         def refill() -> None:
-            while len(in_flight) < self.window:
+            while len(in_flight) < self.window():
                 task = next(queue, None)
                 if task is None:
                     return
                 submit(task)
 
-        refill()
-        for fut in ac:
-            task = in_flight.pop(fut)
-            try:
-                result = fut.result()
-            except NOT_RETRIED as exc:
-                outcome.failed[task] = _message(exc)
-                events.task_failed(task, outcome.failed[task], attempts.get(task, 0) + 1)
-            except Exception as exc:
-                number = attempts.get(task, 0)
-                if number >= self.retries:
-                    outcome.failed[task] = _message(exc)
-                    events.task_failed(task, outcome.failed[task], number + 1)
-                else:
-                    events.task_retry(task, attempt_name(task, number), _message(exc))
-                    attempts[task] = number + 1
-                    submit(task)
-            else:
-                outcome.done.append(task)
-                events.task_done(result)
-            finally:
-                fut.release()
+        try:
             refill()
+            while in_flight:
+                try:
+                    finished = wait(list(in_flight), timeout=1.0, return_when="FIRST_COMPLETED").done
+                except TimeoutError:
+                    finished = set()
+                events.tick()
+                if not finished:
+                    self._check_alive(since_workers)
+                    refill()
+                    continue
+                for fut in finished:
+                    task = in_flight.pop(fut)
+                    try:
+                        result = fut.result()
+                    except FATAL:
+                        raise
+                    except NOT_RETRIED as exc:
+                        outcome.failed[task] = message_of(exc)
+                        events.task_failed(task, outcome.failed[task], attempts.get(task, 0) + 1)
+                    except Exception as exc:
+                        if getattr(self.client, "status", "running") in ("closed", "closing", "failed"):
+                            raise SchedulerLost("the Dask scheduler was lost") from exc
+                        number = attempts.get(task, 0)
+                        if number >= self.retries:
+                            outcome.failed[task] = message_of(exc)
+                            events.task_failed(task, outcome.failed[task], number + 1)
+                        else:
+                            events.task_retry(task, attempt_name(task, number), message_of(exc))
+                            attempts[task] = number + 1
+                            submit(task)
+                    else:
+                        outcome.done.append(task)
+                        events.task_done(result)
+                    finally:
+                        fut.release()
+                refill()
+        except BaseException:
+            self._cancel(list(in_flight))
+            raise
         return outcome
 
-
-def run_tasks(executor: SerialExecutor | DaskExecutor, url: str, tasks: Iterable[int],
-              events: Events | None = None, plan_digest: str = "") -> Outcome:
-    """Run `tasks` of the store at `url` on `executor` (a thin convenience)."""
-    return executor.run(url, list(tasks), events or Callbacks(), plan_digest)
+    def _cancel(self, futures: list[Any]) -> None:
+        if not futures or getattr(self.client, "status", "") != "running":
+            return
+        try:
+            self.client.cancel(futures, force=True)
+        except Exception:  # best effort: the cluster may be going away
+            logger.debug("cancelling in-flight tasks failed", exc_info=True)

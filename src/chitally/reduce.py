@@ -1,29 +1,29 @@
-"""The checkpointed reducer: committed jump tables in, one exact curve out.
+"""The checkpointed reducer: verified task outputs in, a job kind's result out.
 
-The reducer keeps a running jump table and the set of tasks it covers. It adds a task
-only after reading its table back from the store verified against the commit record,
-writes a new checkpoint generation every so often (the generation lists the tasks it
-covers, so no task is summed twice), and on resume starts from the newest valid
-generation. A task whose stored output turns out damaged is set aside and reported as
-pending, to be computed again.
+The reducer keeps the kind's fold state and the set of tasks it covers. It adds a task
+only after reading its outputs back verified against the commit record, writes a new
+checkpoint generation every so often (the generation lists the tasks it covers, so no
+task is folded twice), and on resume starts from the newest valid generation. A task
+whose stored outputs turn out damaged is set aside and reported, to be computed again.
 """
 
 from __future__ import annotations
 
 import logging
 import time
-from collections.abc import Iterable
+from collections.abc import Iterable, Mapping
 
 import numpy as np
 
-from .curve import Curve, merge_jumps
+from .jobs import kind_of
+from .jobs.kind import Fold
 from .store import CorruptTask, RunStore
 
 logger = logging.getLogger(__name__)
 
 
 class Reducer:
-    """Sums verified jump tables into one curve with resumable checkpoints.
+    """Folds verified task outputs into a kind's result, with resumable checkpoints.
 
     Parameters
     ----------
@@ -35,89 +35,74 @@ class Reducer:
 
     def __init__(self, store: RunStore, *, every_tasks: int = 256, every_seconds: float = 30.0) -> None:
         self.store = store
+        self.fold: Fold = kind_of(store.kind).make_fold(store)
         self.every_tasks = every_tasks
         self.every_seconds = every_seconds
         self.covered = np.zeros(store.n_tasks, dtype=bool)
-        self.values = np.zeros(0, dtype=np.float64)
-        self.jumps = np.zeros(0, dtype=np.int64)
         self.generation = 0
-        self._pending_values: list[np.ndarray] = []
-        self._pending_jumps: list[np.ndarray] = []
-        self._pending_tasks: list[int] = []
+        self._pending: dict[int, Mapping[str, np.ndarray]] = {}
         self._last_checkpoint = time.monotonic()
-        self.skipped_generations: tuple[int, ...] = ()
         self._highest_seen = 0
-        checkpoint = store.latest_checkpoint()
+        self.skipped_generations: tuple[int, ...] = ()
+        checkpoint = store.checkpoints.latest()
         if checkpoint is not None:
             self.generation = checkpoint.generation
             # damaged newer generations keep their numbers: the next one goes above them all
             self._highest_seen = max((checkpoint.generation, *checkpoint.skipped))
             self.covered[np.asarray(checkpoint.task_ids, dtype=np.int64)] = True
-            self.values = np.asarray(checkpoint.values, dtype=np.float64)
-            self.jumps = np.asarray(checkpoint.jumps, dtype=np.int64)
+            self.fold.restore(checkpoint.state)
             self.skipped_generations = tuple(checkpoint.skipped)
 
     @property
     def n_covered(self) -> int:
-        return int(self.covered.sum()) + len(self._pending_tasks)
+        return int(self.covered.sum()) + len(self._pending)
 
     def is_covered(self, task: int) -> bool:
-        return bool(self.covered[task]) or task in self._pending_tasks
+        return bool(self.covered[task]) or task in self._pending
 
     def add(self, task: int) -> bool:
-        """Add a committed task's table; False (and the task set aside) if it is damaged."""
+        """Add a committed task's outputs; False (and the task set aside) if damaged."""
         if self.is_covered(task):
             return True
         try:
-            values, jumps = self.store.read_jump_table(task, verify=True)
+            outputs = self.store.commits.read(task)
         except CorruptTask as exc:
             logger.warning("%s; setting it aside to be computed again", exc)
-            self.store.set_aside(task)
+            self.store.commits.set_aside(task)
             return False
-        self._pending_values.append(values)
-        self._pending_jumps.append(jumps)
-        self._pending_tasks.append(task)
-        if (len(self._pending_tasks) >= self.every_tasks
+        self._pending[int(task)] = outputs
+        if (len(self._pending) >= self.every_tasks
                 or time.monotonic() - self._last_checkpoint >= self.every_seconds):
             self.checkpoint()
         return True
 
     def add_committed(self, tasks: Iterable[int] | None = None) -> list[int]:
         """Add every committed task not yet covered; returns the tasks set aside."""
-        committed = self.store.committed()
-        candidates = np.flatnonzero(committed & ~self.covered) if tasks is None else tasks
-        return [int(t) for t in candidates if not self.add(int(t))]
+        if tasks is None:
+            tasks = np.flatnonzero(self.store.commits.committed() & ~self.covered)
+        return [int(t) for t in tasks if not self.add(int(t))]
 
     def checkpoint(self) -> None:
-        """Fold the added tables into the running sum and write a new generation."""
-        if not self._pending_tasks:
+        """Fold the added outputs into the state and write a new generation."""
+        if not self._pending:
             return
-        self.values, self.jumps = merge_jumps(
-            [self.values, *self._pending_values], [self.jumps, *self._pending_jumps]
-        )
-        self.covered[np.asarray(self._pending_tasks, dtype=np.int64)] = True
-        self._pending_values.clear()
-        self._pending_jumps.clear()
-        self._pending_tasks.clear()
+        tasks = sorted(self._pending)
+        self.fold.add(tasks, [self._pending[t] for t in tasks])
+        self.covered[np.asarray(tasks, dtype=np.int64)] = True
+        self._pending.clear()
         self.generation = max(self.generation, self._highest_seen) + 1
-        self.store.write_checkpoint(self.generation, np.flatnonzero(self.covered), self.values, self.jumps)
+        self.store.checkpoints.write(self.generation, np.flatnonzero(self.covered), self.fold.state())
         self._last_checkpoint = time.monotonic()
 
     @property
     def complete(self) -> bool:
         return self.n_covered == self.store.n_tasks
 
-    def finish(self) -> Curve:
-        """Write the final curve once every task is covered exactly once."""
+    def finish(self) -> None:
+        """Write the kind's result once every task is covered exactly once."""
         self.checkpoint()
         if not self.covered.all():
             missing = np.flatnonzero(~self.covered)
             raise RuntimeError(f"{missing.size} tasks are not reduced yet (first: {missing[:5].tolist()})")
-        params = self.store.params
-        curve = Curve.from_jumps(
-            self.values, self.jumps, eps=float(params["eps"]), max_dim=params["max_dim"],
-            n_points=self.store.n_points,
-        )
-        self.store.write_curve(curve.values, curve.chi, eps=curve.eps, max_dim=curve.max_dim,
-                               n_points=curve.n_points, digest=curve.digest())
-        return curve
+        arrays, record = self.fold.result()
+        self.store.write_result(arrays, record)

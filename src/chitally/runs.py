@@ -1,8 +1,11 @@
-"""Runs: plan, create the run store, execute, reduce, resume, report status, export.
+"""Runs: create or open a run store, execute its tasks, reduce, resume, report status.
 
-This is the Python API behind `chitally run`, `resume`, `status`, `plan` and `export`.
-Planning is pure; creating the store is its own explicit, idempotent step; execution
-holds the store's writer lease for its whole length; the reducer follows the commits.
+This is the Python API behind `chitally run`, `batch`, `resume`, `status` and `export`,
+and it owns orchestration: the writer lease is taken before any cluster starts, then the
+cluster is connected (or the serial executor chosen), the workers checked, the memory of
+the heaviest task compared with what a worker thread may use, and the tasks executed
+with the lease held and fenced. Every job kind runs through here; the CLI only parses
+and prints.
 """
 
 from __future__ import annotations
@@ -11,95 +14,68 @@ import logging
 import os
 import socket
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
-from .cover import build_cover
-from .curve import Curve
-from .execute import Callbacks, DaskExecutor, Events, Outcome, SerialExecutor
-from .plan import Cover, Plan
-from .planner import make_plan, summarise_plan
+from .execute import Callbacks, DaskExecutor, Events, Executor, Outcome, SerialExecutor
+from .jobs import kind_of
 from .reduce import Reducer
-from .sources import validate_eps, validate_max_dim, validate_points
-from .store import CurveDamaged, Lease, RunStore, describe_layout, fingerprint
-from .tasks import TaskResult
+from .store import (
+    CorruptTask,
+    IncompleteStore,
+    JobSpec,
+    Lease,
+    NotAStore,
+    ResultDamaged,
+    RunStore,
+    StoreError,
+)
 
 logger = logging.getLogger(__name__)
-
-# exit codes of the CLI (documented in the README)
-EXIT_OK = 0
-EXIT_FAILURE = 1
-EXIT_USAGE = 2
-EXIT_INCOMPLETE = 3
-EXIT_BUSY = 4
 
 MAX_ROUNDS = 3  # executor passes per run: a damaged output found on reduce gets another
 
 
-@dataclass(frozen=True)
-class Params:
-    """The parameters a run store is made for; any difference is a different run."""
+class Interrupted(Exception):
+    """The run was interrupted (SIGINT or SIGTERM); the lease is released and the
+    committed tasks are kept. `signal` is the signal number."""
 
-    eps: float
-    max_dim: int | None = None
-    cover_radius: float | None = None
-    task_cost: float | None = None
-
-    def as_dict(self) -> dict[str, Any]:
-        return {
-            "eps": float(self.eps),
-            "max_dim": self.max_dim,
-            "cover_radius": float(self.cover_radius if self.cover_radius is not None else self.eps),
-            "task_cost": None if self.task_cost is None else float(self.task_cost),
-        }
-
-    @staticmethod
-    def checked(eps: Any, max_dim: Any = None, cover_radius: Any = None, task_cost: Any = None) -> "Params":
-        eps = validate_eps(eps)
-        radius = None if cover_radius is None else validate_eps(cover_radius)
-        cost = None if task_cost is None else validate_eps(task_cost)
-        return Params(eps, validate_max_dim(max_dim), radius, cost)
+    def __init__(self, url: str, done: int, n_tasks: int, signal: int) -> None:
+        super().__init__(f"interrupted: {done} of {n_tasks} tasks committed; "
+                         f"`chitally resume {url}` continues")
+        self.url, self.done, self.n_tasks, self.signal = url, done, n_tasks, signal
 
 
-def plan_points(points: np.ndarray, params: Params) -> tuple[Cover, Plan, np.ndarray]:
-    """Cover and task table for validated points (pure: touches no storage)."""
-    p = params.as_dict()
-    cover = build_cover(points, params.eps, p["cover_radius"])
-    points_sorted = np.ascontiguousarray(points[cover.order])
-    plan = make_plan(points_sorted, cover, params.eps, params.max_dim, task_cost=params.task_cost)
-    return cover, plan, points_sorted
+def open_or_create(url: str, kind: str, params: Mapping[str, Any], fingerprint: Mapping[str, Any],
+                   make_spec: Callable[[], JobSpec], *,
+                   storage_options: Mapping[str, Any] | None = None,
+                   discard: bool = False) -> RunStore:
+    """The run store at `url` for this job: opened if it exists (and must match, else
+    `StoreMismatch` and nothing written), otherwise created from ``make_spec()``.
 
-
-def describe_plan(points: np.ndarray, params: Params) -> dict[str, Any]:
-    """What a run would do, for `chitally plan` / dry runs: figures and the store layout."""
-    points = validate_points(points)
-    cover, plan, _ = plan_points(points, params)
-    summary = summarise_plan(plan, cover)
-    summary["layout"] = describe_layout(plan.n_tasks)
-    return summary
-
-
-def create_or_open(url: str, points: np.ndarray, params: Params) -> RunStore:
-    """The run store for these points and parameters: opened if it exists (and must
-    match, else `StoreMismatch` and nothing written), otherwise planned and created."""
-    points = validate_points(points)
-    fp = fingerprint(points)
+    A store whose completion marker is missing gets it back when its parameters, input
+    fingerprint, task table and inputs verify; committed work is never deleted unless
+    `discard` is given.
+    """
     try:
-        store = RunStore.open(url)
-    except Exception as exc:
-        from .store import IncompleteStore, NotAStore
-
-        if not isinstance(exc, (NotAStore, IncompleteStore)):
-            raise
-    else:
-        store.check_matches(params.as_dict(), fp)
+        store = RunStore.open(url, storage_options=storage_options)
+    except IncompleteStore:
+        store = RunStore.open(url, storage_options=storage_options, allow_incomplete=True)
+        try:
+            store.rebuild_marker(params, fingerprint)
+        except StoreError as exc:
+            logger.info("%s: the marker cannot be rebuilt (%s)", url, exc)
+            return RunStore.create(url, make_spec(), storage_options=storage_options, discard=discard)
         return store
-    cover, plan, points_sorted = plan_points(points, params)
-    return RunStore.create(url, params=params.as_dict(), fingerprint=fp, cover=cover, plan=plan,
-                           points_sorted=points_sorted)
+    except NotAStore as exc:
+        if "is a file" in str(exc):
+            raise
+        return RunStore.create(url, make_spec(), storage_options=storage_options, discard=discard)
+    store.check_matches(kind, params, fingerprint)
+    return store
 
 
 @dataclass
@@ -107,36 +83,40 @@ class RunReport:
     """How a run ended."""
 
     url: str
+    kind: str
     n_tasks: int
     done: int
     failed: dict[int, str] = field(default_factory=dict)
-    curve: Curve | None = None
+    result: Any = None  # the kind's result (a Curve, a FeatureMatrix) when complete
     seconds: float = 0.0
     computed: int = 0  # tasks computed by this invocation
     set_aside: list[int] = field(default_factory=list)
 
     @property
     def complete(self) -> bool:
-        return self.curve is not None
+        return self.result is not None
 
     @property
-    def exit_code(self) -> int:
-        return EXIT_OK if self.complete else EXIT_INCOMPLETE
+    def curve(self) -> Any:
+        """The curve of a complete `cloud` run (None otherwise)."""
+        return self.result if self.kind == "cloud" else None
 
 
 class _Driver(Callbacks):
     """Feeds completed tasks to the reducer and failures to the store, then to the user."""
 
-    def __init__(self, store: RunStore, reducer: Reducer, user: Events | None) -> None:
+    def __init__(self, store: RunStore, reducer: Reducer, user: Events | None, lease: Lease) -> None:
         self.store = store
         self.reducer = reducer
         self.user = user or Callbacks()
+        self.lease = lease
         self.set_aside: list[int] = []
+        self.last_tick = time.monotonic()
 
     def task_started(self, task: int, attempt: str) -> None:
         self.user.task_started(task, attempt)
 
-    def task_done(self, result: TaskResult) -> None:
+    def task_done(self, result: Any) -> None:
         if not self.reducer.add(result.task):
             self.set_aside.append(result.task)
         self.user.task_done(result)
@@ -146,37 +126,38 @@ class _Driver(Callbacks):
         self.user.task_retry(task, attempt, message)
 
     def task_failed(self, task: int, message: str, attempts: int) -> None:
-        self.store.record_failure(task, message, attempts)
+        self.store.commits.record_failure(task, message, attempts)
         self.user.task_failed(task, message, attempts)
+
+    def tick(self) -> None:
+        self.last_tick = time.monotonic()
+        self.lease.check()  # a lost lease stops the run at once
+        getattr(self.user, "tick", lambda: None)()
 
 
 def acquire_lease(store: RunStore, *, takeover: bool = False) -> Lease:
-    """The store's writer lease for this process (raises `LeaseHeld` if another run has it).
-
-    Take it before starting a cluster, so that a refused run costs nothing; then hand it
-    to `execute`, which holds it (heartbeating) and releases it at the end.
-    """
-    lease = store.acquire_lease(f"chitally pid {os.getpid()} on {socket.gethostname()}", takeover=takeover)
-    lease.start()  # beating from now: starting a cluster can take a while
+    """The store's writer lease for this process (raises `LeaseHeld` if another run has
+    it), beating from now on: starting a cluster can take a while."""
+    lease = store.acquire_lease(f"chitally pid {os.getpid()} on {socket.gethostname()}",
+                                takeover=takeover)
+    lease.start()
     return lease
 
 
-def execute(
-    store: RunStore,
-    executor: SerialExecutor | DaskExecutor,
-    *,
-    events: Events | None = None,
-    takeover: bool = False,
-    on_pending: Callable[[RunStore, list[int]], None] | None = None,
-    checkpoint_every: int = 256,
-    lease: Lease | None = None,
-) -> RunReport:
-    """Compute every task not yet committed, reduce, and write the curve if complete.
+def read_result(store: RunStore) -> Any:
+    """The verified result of a complete run (a `Curve` for `cloud`), None before."""
+    return kind_of(store.kind).read_result(store)
 
-    Holds the store's writer lease throughout (a second run is refused with `LeaseHeld`):
-    the one given, taken earlier with `acquire_lease`, or one taken here. Either way it
-    is released when this returns or raises. The reducer writes a checkpoint after every
-    `checkpoint_every` newly reduced tasks (and every 30 s, and at the end).
+
+def execute(store: RunStore, executor: Executor, *, events: Events | None = None,
+            takeover: bool = False, on_pending: Callable[[RunStore, list[int]], None] | None = None,
+            checkpoint_every: int = 256, lease: Lease | None = None) -> RunReport:
+    """Compute every task not yet committed, reduce, and write the result if complete.
+
+    Holds the store's writer lease throughout: the one given (taken earlier with
+    `acquire_lease`) or one taken here; released when this returns or raises. Every
+    write only the holder may make is fenced: if another process takes the lease over,
+    the run stops at once with `LeaseLost`.
     """
     t0 = time.perf_counter()
     if lease is None:
@@ -184,67 +165,130 @@ def execute(
     with lease:
         store.clean_partials()
         reducer = Reducer(store, every_tasks=checkpoint_every)
-        driver = _Driver(store, reducer, events)
+        driver = _Driver(store, reducer, events, lease)
+        # the heartbeat proves this loop is alive, not only that a thread is
+        lease.alive = lambda: time.monotonic() - driver.last_tick < lease.stale_after / 2 \
+            or isinstance(executor, SerialExecutor)
         driver.set_aside.extend(reducer.add_committed())
-        plan = store.read_plan()
         outcome = Outcome()
         computed = 0
         for _ in range(MAX_ROUNDS):
-            committed = store.committed()
+            committed = store.commits.committed()
             pending = [t for t in range(store.n_tasks) if not committed[t] and not reducer.is_covered(t)]
             if not pending:
                 break
             if on_pending is not None:
                 on_pending(store, pending)
-            # the report lists every task set aside, at start-up too; another round
-            # only if this one set aside more
             seen = len(driver.set_aside)
-            outcome = executor.run(store.url, pending, driver, plan.digest())
+            outcome = executor.run(store, pending, driver)
             computed += len(outcome.done)
             if outcome.failed or len(driver.set_aside) == seen:
                 break
         # tasks committed by an earlier, interrupted driver after our first listing
         reducer.add_committed()
-        curve = reducer.finish() if reducer.complete else None
-        if curve is None:
+        result = None
+        if reducer.complete:
+            reducer.finish()
+            result = read_result(store)
+        else:
             reducer.checkpoint()
-    return RunReport(
-        url=store.url,
-        n_tasks=store.n_tasks,
-        done=reducer.n_covered,
-        failed=dict(outcome.failed),
-        curve=curve,
-        seconds=time.perf_counter() - t0,
-        computed=computed,
-        set_aside=list(driver.set_aside),
-    )
+    return RunReport(url=store.url, kind=store.kind, n_tasks=store.n_tasks, done=reducer.n_covered,
+                     failed=dict(outcome.failed), result=result,
+                     seconds=time.perf_counter() - t0, computed=computed,
+                     set_aside=list(driver.set_aside))
+
+
+@dataclass(frozen=True)
+class Where:
+    """Where a run's tasks execute: in this process (`serial`), on an existing Dask
+    scheduler (`scheduler`, `scheduler_file`, or DASK_SCHEDULER_ADDRESS), or on a
+    LocalCluster started here (the default) with `workers` processes of `threads`."""
+
+    scheduler: str | None = None
+    scheduler_file: str | None = None
+    workers: int | None = None
+    threads: int | None = None
+    serial: bool = False
+    retries: int = 2
+    takeover: bool = False
+    lost_after: float = 60.0
+
+
+def run(store: RunStore, where: Where = Where(), *, events: Events | None = None,
+        on_pending: Callable[[RunStore, list[int]], None] | None = None,
+        on_connect: Callable[[Any], None] | None = None) -> RunReport:
+    """Execute `store`'s pending tasks where `where` says, with every check first.
+
+    A complete store is reported as it is, without a lease (a read-only store is fine).
+    Otherwise the lease is taken before any cluster starts, so a refused run costs
+    nothing; the cluster is checked (versions, store access, memory per thread) before
+    dispatch; SIGINT and SIGTERM raise `Interrupted` after the lease is released and the
+    cluster closed.
+    """
+    from .interrupts import signals_as_interrupts
+
+    if store.is_complete():
+        try:
+            result = read_result(store)
+        except ResultDamaged:
+            result = None
+        if result is not None:
+            return RunReport(url=store.url, kind=store.kind, n_tasks=store.n_tasks,
+                             done=store.n_tasks, result=result)
+    lease = acquire_lease(store, takeover=where.takeover)
+    with signals_as_interrupts() as caught:
+        try:
+            with lease:
+                if where.serial:
+                    executor: Executor = SerialExecutor(threads=where.threads or 1, retries=where.retries)
+                    return execute(store, executor, events=events, on_pending=on_pending, lease=lease)
+                from .cluster import check_workers, connect, preflight_memory
+
+                conn = connect(where.scheduler, where.scheduler_file, where.workers, where.threads)
+                try:
+                    if on_connect is not None:
+                        on_connect(conn)
+                    check_workers(conn.client, store)
+                    preflight_memory(conn.client, int(store.task_memory().max(initial=0)))
+                    executor = DaskExecutor(conn.client, retries=where.retries, lost_after=where.lost_after)
+                    return execute(store, executor, events=events, on_pending=on_pending, lease=lease)
+                finally:
+                    conn.close()
+        except KeyboardInterrupt:
+            done = int(store.commits.committed().sum())
+            raise Interrupted(store.url, done, store.n_tasks, caught.signal or 2) from None
 
 
 def status(store: RunStore) -> dict[str, Any]:
-    """Tasks done, pending and failed; cost-weighted progress; time so far and an estimate."""
-    plan = store.read_plan()
-    committed = store.committed()
-    failures = store.failures()
+    """Tasks done, pending and failed; cost-weighted progress; time so far and left;
+    damaged records reported, never raised."""
+    committed = store.commits.committed()
+    failures = store.commits.failures()
     failed = np.zeros(store.n_tasks, dtype=bool)
     for t in failures:
         failed[t] = not committed[t]
-    cost = plan.cost.astype(np.float64)
+    cost = store.task_cost().astype(np.float64)
     done_cost = float(cost[committed].sum())
     total_cost = float(cost.sum()) or 1.0
-    seconds = []
-    stamps = []
+    seconds, stamps, damaged = [], [], []
     for t in np.flatnonzero(committed):
-        rec = store.read_commit(int(t)) or {}
+        try:
+            rec = store.commits.record(int(t)) or {}
+        except CorruptTask:
+            damaged.append(int(t))
+            continue
         seconds.append(float(rec.get("seconds", 0.0)))
         stamps.append(rec.get("committed"))
     compute = float(np.sum(seconds)) if seconds else 0.0
     left = compute * (total_cost - done_cost) / done_cost if done_cost else None
     try:
-        curve, damage = store.read_curve(), None
-    except CurveDamaged as exc:
-        curve, damage = None, str(exc)
+        result, result_damage = read_result(store), None
+    except ResultDamaged as exc:
+        result, result_damage = None, str(exc)
+    holder = store.holder()
     return {
         "store": store.url,
+        "kind": store.kind,
         "tasks": int(store.n_tasks),
         "done": int(committed.sum()),
         "failed": int(failed.sum()),
@@ -254,24 +298,14 @@ def status(store: RunStore) -> dict[str, Any]:
         "task_seconds_left_estimate": None if left is None else round(left, 3),
         "first_commit": min((s for s in stamps if s), default=None),
         "last_commit": max((s for s in stamps if s), default=None),
-        "complete": curve is not None,
-        "curve_damaged": damage,
+        "complete": result is not None,
+        "result_damaged": result_damage,
+        "damaged_commit_records": damaged,
+        "running": None if holder is None else {k: holder.get(k) for k in ("owner", "host", "pid", "verdict")},
         "failures": {int(t): failures[t].get("message", "") for t in failures if not committed[t]},
     }
 
 
-def read_result(store: RunStore) -> Curve | None:
-    """The final curve of a complete run, verified against its record."""
-    rec = store.read_curve()
-    if rec is None:
-        return None
-    curve = Curve(values=rec["values"], chi=rec["chi"], eps=rec["eps"], max_dim=rec["max_dim"],
-                  n_points=rec["n_points"])
-    if curve.digest() != rec["digest"]:
-        raise CurveDamaged(f"the curve in {store.url} does not match its digest")
-    return curve
-
-
-def open_run(url: str) -> RunStore:
+def open_run(url: str, *, storage_options: Mapping[str, Any] | None = None) -> RunStore:
     """Open an existing run store (read-only use needs no lease)."""
-    return RunStore.open(url)
+    return RunStore.open(url, storage_options=storage_options)
