@@ -239,7 +239,7 @@ class ProgressBar:
         if self.bar is not None:
             self.bar.close()
         self.bar = tqdm(total=float(self.cost[pending].sum()), desc=f"{len(pending)} tasks",
-                        file=sys.stderr, dynamic_ncols=True,
+                        file=sys.stderr, dynamic_ncols=True, disable=None,
                         bar_format="{desc}: {percentage:3.0f}%|{bar}| {elapsed}<{remaining}")
 
     def on_connect(self, conn: Any) -> None:
@@ -422,6 +422,41 @@ def run_cmd(input: str, eps: float, max_dim: int | None, key: str | None, out: s
     for w in plan_warnings(read_plan(store)):
         say(f"warning: {w}")
     _report(_run_store(store, where, progress), grid_values)
+
+
+@main.command("batch")
+@input_arg
+@eps_opt
+@click.option("--grid", required=True, help="Sample every curve on START:STOP:COUNT scales in [0, eps].")
+@dim_opt
+@click.option("--normalise", is_flag=True, help="Divide each row by its cloud's number of points.")
+@click.option("--labels", default=None, type=click.Path(exists=True, dir_okay=False),
+              help="CSV of name,label lines; labels travel with the rows.")
+@key_opt
+@cost_opt
+@click.option("--out", "out", required=True, help="The run store: a local path or an fsspec URL all workers reach.")
+@click.option("--discard", is_flag=True, help="Delete committed work of an unfinished store at --out.")
+@_executor_options
+@guarded
+def batch_cmd(input: str, eps: float, grid: str, max_dim: int | None, normalise: bool,
+              labels: str | None, key: str | None, task_cost: float | None, out: str, discard: bool,
+              progress: bool, **how: Any) -> None:
+    """A feature matrix: every cloud of INPUT (a folder of point files, an .npz of
+    arrays, a 3-D .npy or a Zarr group) as its exact curve sampled on the grid."""
+    from .clouds import Collection, read_collection, read_labels
+    from .jobs.batch import BatchParams, create_or_open
+
+    grid_values = _grid(grid)
+    params = BatchParams.checked(eps, grid_values, max_dim, normalise, task_cost,
+                                 names={**_NAMES, "grid": "--grid"})
+    where = _where(**how)
+    col = read_collection(input, key=key)
+    if labels is not None:
+        col = Collection(col.names, col.clouds, read_labels(labels, col.names))
+    store = create_or_open(_store_url(out), col, params, discard=discard)
+    say(f"{len(col)} clouds in R^{col.dim}, {sum(c.shape[0] for c in col.clouds)} points, "
+        f"{store.n_tasks} tasks")
+    _report(_run_store(store, where, progress))
 
 
 @main.command("resume")
