@@ -384,7 +384,8 @@ def _locate_text_error(src: _Source, layout: _TextLayout, usecols: list[int] | N
     return None
 
 
-# Data rows whose first cell decides how the refusal of an unnamed first column is worded.
+# Lines read ahead whose first cells decide how the refusal of an unnamed first column is
+# worded; the refusal itself does not depend on them.
 _INDEX_PEEK_ROWS = 1000
 
 
