@@ -116,9 +116,9 @@ BAD = [
     ("flat", [], ["2-D", "(3,)"]),
     ("empty", [], ["at least one point"]),
     ("missing", [], ["missing.npy", "no such file"]),
-    ("good", ["--eps", "0"], ["eps", "positive"]),
-    ("good", ["--eps", "-0.5"], ["eps", "positive"]),
-    ("good", ["--eps", "nan"], ["eps", "positive"]),
+    ("good", ["--eps", "0"], ["eps", "finite number > 0"]),
+    ("good", ["--eps", "-0.5"], ["eps", "finite number > 0"]),
+    ("good", ["--eps", "nan"], ["eps", "finite number > 0"]),
     ("good", ["--max-dim", "-1"], ["max_dim", ">= 0"]),
 ]
 

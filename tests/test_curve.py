@@ -13,6 +13,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from chitally.curve import (
+    MAX_GRID,
     Curve,
     merge_jumps,
     parse_grid,
@@ -610,6 +611,15 @@ def test_parse_grid_values() -> None:
     assert g.dtype == np.float64 and g.shape == (7,)
     assert g[-1] == 0.3  # the endpoint is exact, so sampling at eps is allowed
     assert parse_grid("-0:1:2").view(np.uint64)[0] == 0
+    assert MAX_GRID == 10**7
+    assert parse_grid("0:1:0000000000000000000000003").tolist() == [0.0, 0.5, 1.0]  # leading zeros
+
+
+def test_parse_grid_limit_is_refused_at_once() -> None:
+    # Refused before anything is allocated: a 10**12-point grid would need 8 TB.
+    with pytest.raises(ValueError) as info:
+        parse_grid("0:1:1000000000000")
+    assert str(info.value) == "grid '0:1:1000000000000': COUNT must be at most 10000000, got 1000000000000"
 
 
 @pytest.mark.parametrize(
@@ -626,6 +636,10 @@ def test_parse_grid_values() -> None:
         ("1:0:3", "greater than STOP"),
         ("-1:1:3", "START must be >= 0"),
         ("", "START:STOP:COUNT"),
+        ("0:1:10000001", "COUNT must be at most 10000000, got 10000001$"),
+        ("0:1:1000000000000", "COUNT must be at most 10000000, got 1000000000000$"),
+        # Too long for int() to parse; refused by its length, not with a parse error.
+        ("0:1:" + "9" * 5000, "COUNT must be at most 10000000, got a 5000-digit number$"),
     ],
 )
 def test_parse_grid_errors(text: str, message: str) -> None:

@@ -21,14 +21,7 @@ import pytest
 import zarr
 
 from chitally import sources
-from chitally.sources import (
-    InputError,
-    describe_source,
-    read_points,
-    validate_eps,
-    validate_max_dim,
-    validate_points,
-)
+from chitally.sources import InputError, describe_source, read_points
 
 POINTS = np.random.default_rng(7).standard_normal((9, 3))
 INTS = np.array([[0, -1, 2**53], [-(2**53), 5, 7]], dtype=np.int64)
@@ -325,6 +318,257 @@ class TestText:
         assert "not UTF-8 text" in refused(read_points, tmp_path / "p.csv")
 
 
+# --------------------------------------------------------------------------- columns
+
+
+def pandas_style_csv(data: np.ndarray, names: list[str], sep: str = ",", index_label: str = "") -> str:
+    """Text laid out as pandas' ``DataFrame.to_csv`` writes a frame with its default
+    RangeIndex (index=True, the default): the header starts with the index's label (empty
+    for an unnamed index), every row with its position 0, 1, 2, ...; floats are written
+    as their shortest repr, which reads back exactly."""
+    lines = [sep.join([index_label, *names])]
+    lines += [sep.join([str(i), *(repr(float(v)) for v in row)]) for i, row in enumerate(data)]
+    return "\n".join(lines) + "\n"
+
+
+PANDAS_HINT = (
+    "pass index_col=0 / --index-col 0 to drop it, "
+    "or columns=['x', 'y', 'z'] / --columns x,y,z to choose the columns to read"
+)
+
+
+class TestColumns:
+    def test_pandas_index_refused_with_hint(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", pandas_style_csv(POINTS, ["x", "y", "z"]))
+        assert refused(read_points, source) == (
+            f"{source}: the first column has no name in the header and holds 0, 1, 2, ...: "
+            f"it looks like a row index written by pandas, not a coordinate; {PANDAS_HINT}"
+        )
+
+    @pytest.mark.parametrize(
+        "choice",
+        [
+            dict(index_col=0),
+            dict(index_col="0"),
+            dict(columns=["x", "y", "z"]),
+            dict(columns="x,y,z"),
+            dict(columns=[1, 2, 3]),
+            dict(columns="1,2,3"),
+            dict(columns=["x", 2, "z"]),
+            dict(columns=["x", "y", "z"], index_col=0),
+        ],
+        ids=repr,
+    )
+    def test_pandas_index_read_right_when_asked(self, tmp_path: Path, choice: dict[str, object]) -> None:
+        source = write_text(tmp_path / "p.csv", pandas_style_csv(POINTS, ["x", "y", "z"]))
+        got = read_points(source, **choice)
+        assert got.dtype == np.float64 and got.flags.c_contiguous
+        np.testing.assert_array_equal(got, POINTS)
+
+    @pytest.mark.parametrize(
+        ("name", "text"),
+        [
+            ("tabs", pandas_style_csv(POINTS, ["x", "y", "z"], sep="\t")),
+            ("unnamed", pandas_style_csv(POINTS, ["x", "y", "z"], index_label="Unnamed: 0")),
+            # pandas with sep=" " and R's write.table leave the index's header cell out.
+            ("header one short", pandas_style_csv(POINTS, ["x", "y", "z"], sep=" ").lstrip(" ")),
+        ],
+    )
+    def test_other_unnamed_first_columns(self, tmp_path: Path, name: str, text: str) -> None:
+        source = write_text(tmp_path / "p.txt", text)
+        message = refused(read_points, source)
+        assert message.endswith(f"it looks like a row index written by pandas, not a coordinate; {PANDAS_HINT}")
+        np.testing.assert_array_equal(read_points(source, index_col=0), POINTS)
+        np.testing.assert_array_equal(read_points(source, columns="x,y,z"), POINTS)
+
+    def test_quoted_header_and_quoted_row_names(self, tmp_path: Path) -> None:
+        # R's write.csv quotes every name and the row names, which count from 1.
+        source = write_text(tmp_path / "p.csv", '"","x","y"\n"1",0.5,1.5\n"2",2.5,3.5\n')
+        message = refused(read_points, source)
+        assert message.startswith(f"{source}: the first column has no name in the header and holds 1, 2: ")
+        assert read_points(source, index_col=0).tolist() == [[0.5, 1.5], [2.5, 3.5]]
+        assert read_points(source, columns=["y", "x"]).tolist() == [[1.5, 0.5], [3.5, 2.5]]
+
+    def test_named_first_column_is_a_coordinate(self, tmp_path: Path) -> None:
+        # Counts up by one like an index, but someone named it: it is read.
+        source = write_text(tmp_path / "p.csv", "t,x\n0,5.5\n1,6.5\n2,7.5\n")
+        assert read_points(source).tolist() == [[0.0, 5.5], [1.0, 6.5], [2.0, 7.5]]
+
+    def test_unnamed_first_column_of_other_values_refused_too(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", ",x,y,z\n0.5,1,2,3\n7,4,5,6\n")
+        assert refused(read_points, source) == (
+            f"{source}: the first column has no name in the header (pandas writes a row index "
+            f"that way), so it is not read as a coordinate unless chosen; {PANDAS_HINT}"
+        )
+        assert read_points(source, columns=[0, 1]).tolist() == [[0.5, 1.0], [7.0, 4.0]]
+
+    def test_hint_names_columns_by_number_when_unnamed(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", ",,b\n0,1,2\n1,3,4\n")
+        assert refused(read_points, source).endswith(
+            "pass index_col=0 / --index-col 0 to drop it, or columns=[1, 2] / --columns 1,2 to choose the columns to read"
+        )
+
+    def test_single_unnamed_column(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", '""\n0\n1\n')
+        assert refused(read_points, source).endswith("; pass columns=[0] / --columns 0 to read it all the same")
+        assert read_points(source, columns=[0]).tolist() == [[0.0], [1.0]]
+
+    def test_columns_in_the_order_given(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", pandas_style_csv(POINTS, ["x", "y", "z"]))
+        np.testing.assert_array_equal(read_points(source, columns=["z", "x"]), POINTS[:, [2, 0]])
+        np.testing.assert_array_equal(read_points(source, columns=[3]), POINTS[:, [2]])
+
+    def test_columns_skip_text_columns(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", "name,x,y\nalpha,1,2\nbeta,3,4\n")
+        assert read_points(source, columns="x,y").tolist() == [[1.0, 2.0], [3.0, 4.0]]
+        assert read_points(source, index_col="name").tolist() == [[1.0, 2.0], [3.0, 4.0]]
+
+    def test_numbers_without_header(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", "10,1,2\n11,3,4\n")
+        assert read_points(source, columns=[2, 1]).tolist() == [[2.0, 1.0], [4.0, 3.0]]
+        assert read_points(source, index_col=0).tolist() == [[1.0, 2.0], [3.0, 4.0]]
+        assert read_points(source).tolist() == [[10.0, 1.0, 2.0], [11.0, 3.0, 4.0]]
+
+    def test_missing_name_lists_the_columns(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", pandas_style_csv(POINTS, ["x", "y", "z"]))
+        assert refused(read_points, source, columns="x,w") == f"{source}: no column 'w'; columns: '', 'x', 'y', 'z'"
+        assert refused(read_points, source, index_col="id") == f"{source}: no column 'id'; columns: '', 'x', 'y', 'z'"
+
+    def test_missing_number_lists_the_columns(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", pandas_style_csv(POINTS, ["x", "y", "z"]))
+        assert refused(read_points, source, columns=[1, 4]) == (
+            f"{source}: no column 4; the rows have 4 columns, numbered 0 to 3: '', 'x', 'y', 'z'"
+        )
+        plain = write_text(tmp_path / "q.csv", "1,2\n3,4\n")
+        assert refused(read_points, plain, index_col=2) == (
+            f"{plain}: no column 2; the rows have 2 columns, numbered 0 to 1"
+        )
+
+    def test_names_need_a_header(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", "1,2\n3,4\n")
+        assert refused(read_points, source, columns=["x"]) == (
+            f"{source}: column 'x' is a name, but the file has no header line; "
+            "choose columns by 0-based number (0 to 1)"
+        )
+
+    def test_names_need_a_header_that_fits(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", "a,b,c,d\n1,2\n")
+        assert refused(read_points, source, columns=["a"]) == (
+            f"{source}: cannot find column 'a': the header has 4 names but the rows have 2 columns; "
+            "choose columns by 0-based number (0 to 1)"
+        )
+
+    def test_header_naming_a_column_twice(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", "x,x,y\n1,2,3\n")
+        assert refused(read_points, source, columns=["x", "y"]) == (
+            f"{source}: the header names 'x' 2 times (columns 0, 1); choose by 0-based number"
+        )
+        assert read_points(source, columns=[1, 2]).tolist() == [[2.0, 3.0]]
+
+    def test_same_column_by_name_and_number(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", "x,y\n1,2\n")
+        assert refused(read_points, source, columns=["x", 0]) == (
+            f"{source}: columns chooses column 0 twice (by name and by number)"
+        )
+
+    def test_chosen_and_dropped(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", "x,y\n1,2\n")
+        assert refused(read_points, source, columns=["x", "y"], index_col="y") == (
+            f"{source}: column 1 is both chosen by columns and dropped by index_col"
+        )
+        one = write_text(tmp_path / "one.csv", "x\n1\n")
+        assert refused(read_points, one, index_col=0) == (
+            f"{one}: no column is left to read once index_col is dropped"
+        )
+
+    def test_bad_cell_in_a_chosen_column_names_the_file_column(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", "id,x,y\na,1,2\nb,3,oops\n")
+        assert refused(read_points, source, columns="x,y") == (
+            f"{source}: row 1 (line 3), column 2: 'oops' is not a number"
+        )
+
+    def test_row_too_short_for_the_choice(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", "1,2,3\n4,5\n")
+        assert refused(read_points, source, columns=[0, 2]) == (
+            f"{source}: row 1 (line 2) has 2 columns, so no column 2"
+        )
+
+    def test_bad_value_named_with_the_choice(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", ",x,y,z\n0,1,2,3\n1,4,5,nan\n")
+        assert refused(read_points, source, columns="x,z") == (
+            f"{source}[x, z]: row 1, column 1 is nan; every coordinate must be finite"
+        )
+        assert refused(read_points, source, index_col=0) == (
+            f"{source}[x, y, z]: row 1, column 2 is nan; every coordinate must be finite"
+        )
+
+    def test_compressed_pandas_csv(self, tmp_path: Path) -> None:
+        with gzip.open(tmp_path / "p.csv.gz", "wt") as f:
+            f.write(pandas_style_csv(POINTS, ["x", "y", "z"]))
+        assert "it looks like a row index written by pandas" in refused(read_points, tmp_path / "p.csv.gz")
+        np.testing.assert_array_equal(read_points(tmp_path / "p.csv.gz", index_col=0), POINTS)
+
+    def test_bad_column_arguments(self, tmp_path: Path) -> None:
+        source = write_text(tmp_path / "p.csv", "x,y\n1,2\n")
+        assert refused(read_points, source, columns=[1.5]) == (
+            "columns must hold column names or 0-based column numbers, got 1.5 (float)"
+        )
+        assert refused(read_points, source, index_col=-1) == "index_col: column numbers are 0-based and >= 0, got -1"
+
+    @pytest.mark.parametrize("writer", [_npy, _npz_single, _zarr_array, _hdf5], ids=str)
+    def test_array_formats_refuse_column_choices(
+        self, tmp_path: Path, writer: Callable[..., tuple[str, str | None]]
+    ) -> None:
+        source, _ = writer(tmp_path, POINTS)
+        assert "columns and index_col choose columns of text tables and Parquet files" in refused(
+            read_points, source, columns=[0, 1]
+        )
+        assert "columns and index_col choose columns" in refused(read_points, source, index_col=0)
+
+
+class TestParquetColumns:
+    def test_columns_by_name_and_number(self, tmp_path: Path) -> None:
+        source, _ = _parquet(tmp_path, POINTS)  # columns: name, c0, c1, c2
+        np.testing.assert_array_equal(read_points(source, columns=["c2", "c0"]), POINTS[:, [2, 0]])
+        np.testing.assert_array_equal(read_points(source, columns="1,2,3"), POINTS)
+        np.testing.assert_array_equal(read_points(source, index_col="c1"), POINTS[:, [0, 2]])
+        np.testing.assert_array_equal(read_points(source, index_col=2), POINTS[:, [0, 2]])
+
+    def test_key_still_chooses_columns(self, tmp_path: Path) -> None:
+        source, key = _parquet_keyed(tmp_path, POINTS)
+        np.testing.assert_array_equal(read_points(source, key=key), POINTS)
+        assert refused(read_points, source, key=key, columns="c0") == (
+            f"{source}: key and columns both choose Parquet columns; give only one"
+        )
+
+    def test_missing_columns_listed(self, tmp_path: Path) -> None:
+        source, _ = _parquet(tmp_path, POINTS)
+        assert refused(read_points, source, columns=[1, 7]) == (
+            f"{source}: no column 7; the file has 4 columns, numbered 0 to 3: 'name', 'c0', 'c1', 'c2'"
+        )
+        assert refused(read_points, source, columns=["c0", "q"]) == (
+            f"{source}: no column 'q'; columns: 'name', 'c0', 'c1', 'c2'"
+        )
+        assert refused(read_points, source, columns=[0, 1]) == (
+            f"{source}: column 'name' has type string, not an integer or float type"
+        )
+        assert refused(read_points, source, columns=["c0", "c1"], index_col="c1") == (
+            f"{source}: column 'c1' is both chosen and dropped by index_col"
+        )
+
+    def test_unnamed_first_column_refused(self, tmp_path: Path) -> None:
+        # A frame read back from a pandas CSV keeps its old index as a column "Unnamed: 0".
+        columns = {"Unnamed: 0": np.arange(len(POINTS))} | {c: POINTS[:, j] for j, c in enumerate("xyz")}
+        pq.write_table(pa.table(columns), tmp_path / "p.parquet")
+        source = str(tmp_path / "p.parquet")
+        assert refused(read_points, source) == (
+            f"{source}: the first column 'Unnamed: 0' has no real name: it looks like a row index "
+            f"written by pandas, not a coordinate; {PANDAS_HINT}"
+        )
+        np.testing.assert_array_equal(read_points(source, index_col=0), POINTS)
+        np.testing.assert_array_equal(read_points(source, columns="x,y,z"), POINTS)
+
+
 # --------------------------------------------------------------------------- containers
 
 
@@ -482,6 +726,10 @@ class TestLocate:
         (tmp_path / "store").mkdir()
         assert describe_source("cloud.npz", key="b") == "cloud.npz (NumPy .npz, array 'b')"
         assert describe_source("g.parquet", key="x,y") == "g.parquet (Parquet, columns x,y)"
+        assert describe_source("g.csv", columns="x,y") == "g.csv (text table, columns x,y)"
+        assert describe_source("g.csv", columns=[2, "b"], index_col="0") == (
+            "g.csv (text table, columns 2,b, without column 0)"
+        )
         assert describe_source("s3://b/snap.hdf5", "pos") == "s3://b/snap.hdf5 (HDF5, dataset 'pos')"
         assert describe_source("p.csv.gz") == "p.csv.gz (text table, gzip)"
         assert describe_source(tmp_path / "store") == f"{tmp_path / 'store'} (Zarr)"
@@ -491,103 +739,7 @@ class TestLocate:
 # --------------------------------------------------------------------------- validation
 
 
-class TestValidatePoints:
-    def test_float64_c_contiguous_is_not_copied(self) -> None:
-        assert validate_points(POINTS) is POINTS
-
-    def test_conversions(self) -> None:
-        assert validate_points([[1, 2], [3, 4]]).tolist() == [[1.0, 2.0], [3.0, 4.0]]
-        big_endian = POINTS.astype(">f8")
-        got = validate_points(big_endian)
-        assert got.dtype == np.dtype("=f8")
-        np.testing.assert_array_equal(got, POINTS)
-        assert validate_points(np.array([[2**53]], dtype=np.uint64)).tolist() == [[2.0**53]]
-        assert validate_points(np.array([[-5]], dtype=np.int8)).tolist() == [[-5.0]]
-
-    @pytest.mark.parametrize(
-        ("data", "shape"),
-        [(np.arange(5.0), "(5,)"), (np.float64(1.0), "()"), (np.zeros((2, 2, 2)), "(2, 2, 2)")],
-    )
-    def test_not_2d(self, data: np.ndarray, shape: str) -> None:
-        message = refused(validate_points, data)
-        assert message.startswith("points: expected a 2-D array of shape (n, m) for n points in R^m")
-        assert f"got shape {shape}" in message
-
-    def test_1d_gets_a_hint(self) -> None:
-        assert "reshape n values to (n, 1)" in refused(validate_points, np.arange(3.0))
-
-    @pytest.mark.parametrize("shape", [(0, 3), (3, 0), (0, 0)])
-    def test_empty(self, shape: tuple[int, int]) -> None:
-        assert refused(validate_points, np.zeros(shape)) == (
-            f"points: expected at least one point with at least one coordinate, got shape {shape}"
-        )
-
-    @pytest.mark.parametrize(
-        ("data", "dtype"),
-        [
-            (np.ones((2, 2), dtype=bool), "bool"),
-            (np.ones((2, 2), dtype=complex), "complex128"),
-            (np.array([["a", "b"]]), "<U1"),
-            (np.array([[1, None]], dtype=object), "object"),
-            (np.zeros((1, 1), dtype="M8[s]"), "datetime64[s]"),
-        ],
-    )
-    def test_non_real_dtype(self, data: np.ndarray, dtype: str) -> None:
-        assert refused(validate_points, data) == (
-            f"points: expected real numbers (a float or integer dtype), got dtype {dtype}"
-        )
-
-    @pytest.mark.skipif(np.finfo(np.longdouble).nmant <= 52, reason="longdouble is float64 here")
-    def test_longdouble_refused(self) -> None:
-        assert "would be rounded to float64" in refused(validate_points, np.ones((1, 1), np.longdouble))
-
-    def test_ragged_list(self) -> None:
-        assert refused(validate_points, [[1.0, 2.0], [3.0]]).startswith("points: not an (n, m) array of numbers")
-
-    @pytest.mark.parametrize(
-        ("value", "text"), [(np.nan, "nan"), (np.inf, "inf"), (-np.inf, "-inf")]
-    )
-    def test_non_finite_first_in_row_order(self, value: float, text: str) -> None:
-        data = np.zeros((5, 3))
-        data[3, 0] = np.nan  # later row: not the first
-        data[2, 2] = value
-        assert refused(validate_points, data, where="cloud.npy") == (
-            f"cloud.npy: row 2, column 2 is {text}; every coordinate must be finite"
-        )
-
-    def test_non_finite_fortran_order_reported_in_row_order(self) -> None:
-        data = np.asfortranarray(np.zeros((4, 3)))
-        data[3, 0] = np.inf
-        data[1, 2] = np.nan
-        assert "row 1, column 2 is nan" in refused(validate_points, data)
-
-    def test_float32_inf(self) -> None:
-        data = np.zeros((2, 2), dtype=np.float32)
-        data[1, 0] = np.float32(-np.inf)
-        assert "row 1, column 0 is -inf" in refused(validate_points, data)
-
-    def test_scan_is_chunked(self, monkeypatch: pytest.MonkeyPatch) -> None:
-        # Tiny chunks so the bad value lies many chunks in: exercises the row offset.
-        monkeypatch.setattr(sources, "_CHUNK_ELEMENTS", 6)
-        data = np.zeros((50, 3))
-        data[37, 1] = np.nan
-        assert "row 37, column 1 is nan" in refused(validate_points, data)
-        ints = np.zeros((50, 3), dtype=np.int64)
-        ints[41, 2] = -(2**53) - 1
-        assert "row 41, column 2 holds the integer -9007199254740993" in refused(validate_points, ints)
-
-    @pytest.mark.parametrize(
-        ("value", "dtype"),
-        [(2**53 + 1, np.int64), (-(2**53) - 1, np.int64), (2**64 - 1, np.uint64)],
-    )
-    def test_integer_beyond_2_53(self, value: int, dtype: type) -> None:
-        data = np.zeros((3, 2), dtype=dtype)
-        data[1, 1] = value
-        assert refused(validate_points, data) == (
-            f"points: row 1, column 1 holds the integer {value}, beyond 2**53 in magnitude, "
-            "which float64 cannot hold exactly"
-        )
-
+class TestValidatedOnRead:
     def test_bad_values_in_files_name_the_file(self, tmp_path: Path) -> None:
         data = POINTS.copy()
         data[4, 1] = np.inf
@@ -600,41 +752,3 @@ class TestValidatePoints:
         with h5py.File(tmp_path / "p.h5", "w") as h5:
             h5.create_dataset("pos", data=data)
         assert refused(read_points, tmp_path / "p.h5").startswith(f"{tmp_path / 'p.h5'}['pos']: row 4, column 1")
-
-
-class TestScalars:
-    @pytest.mark.parametrize(
-        ("eps", "expected"), [(0.25, 0.25), (2, 2.0), (np.float32(0.5), 0.5), (np.int64(3), 3.0), (1e-300, 1e-300)]
-    )
-    def test_eps_accepted(self, eps: object, expected: float) -> None:
-        got = validate_eps(eps)
-        assert type(got) is float and got == expected
-
-    @pytest.mark.parametrize(
-        ("eps", "shown"),
-        [(0, "0"), (-1.5, "-1.5"), (float("nan"), "nan"), (float("inf"), "inf"), (10**400, "1000")],
-    )
-    def test_eps_refused(self, eps: object, shown: str) -> None:
-        message = refused(validate_eps, eps)
-        assert message.startswith(f"eps must be a positive finite number, got {shown}")
-
-    @pytest.mark.parametrize(("eps", "kind"), [(True, "bool"), ("0.5", "str"), (1j, "complex"), (None, "NoneType")])
-    def test_eps_wrong_type(self, eps: object, kind: str) -> None:
-        assert refused(validate_eps, eps) == f"eps must be a positive finite number, got {eps!r} ({kind})"
-
-    @pytest.mark.parametrize(
-        ("max_dim", "expected"), [(None, None), (0, 0), (3, 3), (4.0, 4), (np.int64(2), 2), (np.float64(1.0), 1)]
-    )
-    def test_max_dim_accepted(self, max_dim: object, expected: int | None) -> None:
-        got = validate_max_dim(max_dim)
-        assert got == expected and (got is None or type(got) is int)
-
-    @pytest.mark.parametrize(
-        ("max_dim", "suffix"),
-        [(-1, ""), (2.5, ""), (float("nan"), ""), (float("inf"), ""), (-2.0, ""),
-         (True, " (bool)"), (np.bool_(False), " (bool)"), ("3", " (str)")],
-    )
-    def test_max_dim_refused(self, max_dim: object, suffix: str) -> None:
-        assert refused(validate_max_dim, max_dim) == (
-            f"max_dim must be None or an integer >= 0, got {max_dim!r}{suffix}"
-        )

@@ -16,6 +16,7 @@ import io
 import json
 import math
 import os
+import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -28,6 +29,7 @@ __all__ = [
     "CURVE_FORMAT",
     "CURVE_VERSION",
     "FORMATS",
+    "MAX_GRID",
     "SAMPLES_FORMAT",
     "Curve",
     "merge_jumps",
@@ -40,6 +42,10 @@ CURVE_FORMAT = "chitally-curve"
 SAMPLES_FORMAT = "chitally-samples"
 CURVE_VERSION = 1
 FORMATS = ("npz", "json", "csv")
+
+#: The most scales a grid may hold: 10**7 float64 scales and their int64 samples take
+#: 160 MB, already more than any plot or table needs; a larger COUNT is a typo.
+MAX_GRID = 10**7
 
 _CSV_MAGIC = "# " + CURVE_FORMAT + " "
 _CSV_HEADER = "scale,chi"
@@ -758,7 +764,8 @@ def parse_grid(text: str) -> np.ndarray:
     ----------
     text : str
         ``START`` and ``STOP`` finite reals with ``0 <= START <= STOP``; ``COUNT`` an
-        integer >= 1. Both ends are included; ``COUNT == 1`` gives ``[START]``.
+        integer with ``1 <= COUNT <= MAX_GRID`` (10**7). Both ends are included;
+        ``COUNT == 1`` gives ``[START]``.
 
     Returns
     -------
@@ -786,12 +793,23 @@ def parse_grid(text: str) -> np.ndarray:
         raise ValueError(f"grid {text!r}: START and STOP must be numbers") from None
     if not (math.isfinite(start) and math.isfinite(stop)):
         raise ValueError(f"grid {text!r}: START and STOP must be finite")
+    digits = parts[2].strip()
+    # Checked before int(): Python refuses to parse integers of more than a few thousand
+    # digits, and any COUNT that long is far above the limit anyway.
+    significant = digits.lstrip("+").lstrip("0")
+    if re.fullmatch(r"\+?\d+", digits) and len(significant) > 18:
+        shown = text if len(text) <= 40 else text[:37] + "..."
+        raise ValueError(
+            f"grid {shown!r}: COUNT must be at most {MAX_GRID}, got a {len(significant)}-digit number"
+        )
     try:
         count = int(parts[2])
     except ValueError:
         raise ValueError(f"grid {text!r}: COUNT must be an integer, got {parts[2].strip()!r}") from None
     if count < 1:
         raise ValueError(f"grid {text!r}: COUNT must be >= 1, got {count}")
+    if count > MAX_GRID:
+        raise ValueError(f"grid {text!r}: COUNT must be at most {MAX_GRID}, got {count}")
     if start < 0.0:
         raise ValueError(f"grid {text!r}: START must be >= 0 (scales are distances), got {start!r}")
     if start > stop:

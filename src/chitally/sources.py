@@ -1,24 +1,25 @@
-"""Input readers and parameter validation: the gate every run passes before any work.
+"""Input readers: the gate every point set passes before any work.
 
 This module turns a local path or an fsspec URL (npy, npz, csv/txt/tsv, Zarr, HDF5,
-Parquet) into one C-contiguous float64 array of shape (n, m), and checks eps and the
-dimension cap. Every problem surfaces as an :class:`InputError` whose message is one line
+Parquet) into one C-contiguous float64 array of shape (n, m), choosing table columns
+when asked. Every problem surfaces as an :class:`InputError` whose message is one line
 naming what is wrong and where (file, key, row, column, shape, dtype or value), so the
 command line can print it and exit 2. It must not plan, compute, write anything, or
 know about the run store; it must not silently reinterpret data (no 1-D arrays taken
-as points on a line, no rounding of integers beyond 2**53, no NaN or inf let through).
-h5py and pyarrow are optional and imported only when their format is read.
+as points on a line, no rounding of integers beyond 2**53, no NaN or inf let through,
+no unnamed index column taken for a coordinate). h5py and pyarrow are optional and
+imported only when their format is read. The validators live in :mod:`chitally.validate`
+and are re-exported here, where callers have always found them.
 """
 
 from __future__ import annotations
 
 import importlib
 import itertools
-import numbers
 import os
 import re
 import warnings
-from collections.abc import Iterable, Iterator
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from types import ModuleType
 from typing import Any
@@ -29,8 +30,26 @@ import fsspec.core
 import fsspec.utils
 import numpy as np
 
+from .validate import (
+    MAX_COORDINATE,
+    InputError,
+    _check_shape_and_dtype,
+    _first_inexact_integer,
+    _inexact_message,
+    _listing,
+    _MAX_LISTED,
+    _one_line,
+    _short,
+    validate_column,
+    validate_columns,
+    validate_eps,
+    validate_max_dim,
+    validate_points,
+)
+
 __all__ = [
     "InputError",
+    "MAX_COORDINATE",
     "SUPPORTED_ENDINGS",
     "describe_source",
     "read_points",
@@ -67,51 +86,7 @@ _FORMAT_LABELS = {
     "parquet": "Parquet",
 }
 
-# float64 holds every integer of magnitude <= 2**53 exactly and not all beyond it.
-_EXACT_INT_LIMIT = 2**53
-
-# Rows per finiteness/range check are sized so the boolean temporary stays ~1 MB
-# whatever n is: a 10^9-point input must not need a second full-size array.
-_CHUNK_ELEMENTS = 1 << 20
-
-# Long lists of keys or long cell values would make the one-line message unreadable.
-_MAX_LISTED = 12
-_MAX_VALUE_CHARS = 40
-
-
-class InputError(ValueError):
-    """Invalid input: a bad file, array, key or parameter.
-
-    The message is always a single line that says what is wrong and where; line breaks
-    in the text it is given are folded into spaces so that the guarantee holds even
-    for messages that quote third-party errors.
-    """
-
-    def __init__(self, message: str) -> None:
-        super().__init__(re.sub(r"\s*[\r\n]+\s*", " ", str(message)).strip())
-
-
 # --------------------------------------------------------------------------- helpers
-
-
-def _short(value: object) -> str:
-    text = repr(value)
-    if len(text) > _MAX_VALUE_CHARS:
-        text = text[: _MAX_VALUE_CHARS - 3] + "..."
-    return text
-
-
-def _listing(names: Iterable[str]) -> str:
-    names = list(names)
-    shown = ", ".join(repr(n) for n in names[:_MAX_LISTED])
-    if len(names) > _MAX_LISTED:
-        shown += f", ... ({len(names)} in all)"
-    return shown or "none"
-
-
-def _one_line(exc: BaseException) -> str:
-    text = " ".join(str(exc).split())
-    return text or type(exc).__name__
 
 
 def _require(module: str, extra: str, what: str, where: str) -> ModuleType:
@@ -122,202 +97,6 @@ def _require(module: str, extra: str, what: str, where: str) -> ModuleType:
             f"{where}: reading {what} files needs the optional package {module.split('.')[0]}: "
             f'install it with pip install "chitally[{extra}]"'
         ) from exc
-
-
-# --------------------------------------------------------------------------- validation
-
-
-def _check_shape_and_dtype(shape: tuple[int, ...] | None, dtype: np.dtype, where: str) -> None:
-    # Used both on in-memory arrays and on array metadata (Zarr, HDF5, memory-mapped npy),
-    # so a wrong file is refused before its data is read.
-    shape = () if shape is None else tuple(shape)
-    if len(shape) != 2:
-        hint = "; reshape n values to (n, 1) for points on a line" if len(shape) == 1 else ""
-        raise InputError(
-            f"{where}: expected a 2-D array of shape (n, m) for n points in R^m, "
-            f"got shape {shape}{hint}"
-        )
-    if shape[0] == 0 or shape[1] == 0:
-        raise InputError(
-            f"{where}: expected at least one point with at least one coordinate, got shape {shape}"
-        )
-    kind = dtype.kind
-    if kind not in "fiu":
-        raise InputError(
-            f"{where}: expected real numbers (a float or integer dtype), got dtype {dtype}"
-        )
-    if kind == "f" and np.finfo(dtype).nmant > np.finfo(np.float64).nmant:
-        raise InputError(
-            f"{where}: dtype {dtype} would be rounded to float64; convert it to float64 first"
-        )
-
-
-def _first_bad(a: np.ndarray, test: Any) -> tuple[int, int] | None:
-    """First (row, column) in C order where ``test(block)`` is true, scanning in row blocks."""
-    n, m = a.shape
-    step = max(1, _CHUNK_ELEMENTS // m)
-    for start in range(0, n, step):
-        bad = test(a[start : start + step])
-        if bad.any():
-            row, col = divmod(int(np.argmax(bad)), m)
-            return start + row, col
-    return None
-
-
-def _first_inexact_integer(a: np.ndarray) -> tuple[int, int] | None:
-    """First (row, column) of a 2-D integer array whose value float64 would round."""
-    if a.dtype.itemsize * 8 <= 53:
-        return None
-    if a.dtype.kind == "u":
-        return _first_bad(a, lambda b: b > _EXACT_INT_LIMIT)
-    return _first_bad(a, lambda b: (b > _EXACT_INT_LIMIT) | (b < -_EXACT_INT_LIMIT))
-
-
-def _inexact_message(value: Any) -> str:
-    return f"holds the integer {int(value)}, beyond 2**53 in magnitude, which float64 cannot hold exactly"
-
-
-def validate_points(points: Any, *, where: str = "points") -> np.ndarray:
-    """Check a point array and return it as C-contiguous float64 of shape (n, m).
-
-    Parameters
-    ----------
-    points : array_like
-        n points in R^m as an (n, m) array of floats or integers.
-    where : str, optional
-        How error messages name the input (a file name, say). Default ``"points"``.
-
-    Returns
-    -------
-    numpy.ndarray
-        ``points`` itself when it already is a C-contiguous native float64 array (a
-        read-only input stays read-only), otherwise a float64 copy. Integers and
-        float16/float32 are converted exactly.
-
-    Raises
-    ------
-    InputError
-        If the array is not 2-D, has no rows or no columns, has a dtype that is not a
-        real number type (bool, complex, strings, objects, and floats wider than
-        float64 are refused), holds an integer beyond 2**53 in magnitude, holds NaN
-        or an infinity, or a coordinate beyond +-1e150 (squared distances would overflow). Row and column indices in the message are 0-based.
-
-    Examples
-    --------
-    >>> validate_points([[0, 1], [2, 3]]).dtype
-    dtype('float64')
-    """
-    try:
-        a = np.asarray(points)
-    except (ValueError, TypeError) as exc:
-        raise InputError(f"{where}: not an (n, m) array of numbers: {_one_line(exc)}") from exc
-    _check_shape_and_dtype(a.shape, a.dtype, where)
-    if a.dtype.kind in "iu":
-        hit = _first_inexact_integer(a)
-        if hit is not None:
-            row, col = hit
-            raise InputError(f"{where}: row {row}, column {col} {_inexact_message(a[row, col])}")
-    out = np.ascontiguousarray(a, dtype=np.float64)
-    if a.dtype.kind != "f":
-        return out  # integers are always finite
-    hit = _first_bad(out, lambda b: ~np.isfinite(b))
-    if hit is not None:
-        row, col = hit
-        raise InputError(
-            f"{where}: row {row}, column {col} is {float(out[row, col])!r}; "
-            f"every coordinate must be finite"
-        )
-    _check_magnitude(out, where)
-    return out
-
-
-# Squared differences of coordinates beyond this overflow float64 (and the KD-tree's
-# arithmetic): such input cannot follow the distance rule, so it is refused up front.
-MAX_COORDINATE = 1e150
-
-
-def _check_magnitude(out: np.ndarray, where: str) -> None:
-    hit = _first_bad(out, lambda b: np.abs(b) > MAX_COORDINATE)
-    if hit is not None:
-        row, col = hit
-        raise InputError(
-            f"{where}: row {row}, column {col} is {float(out[row, col])!r}; coordinates must lie "
-            f"within +-{MAX_COORDINATE:g} so that squared distances do not overflow (rescale the input)"
-        )
-
-
-def validate_eps(eps: Any) -> float:
-    """Check the scale eps: a real number, finite and > 0.
-
-    Parameters
-    ----------
-    eps : float
-        The largest filtration value; integers and numpy scalars are accepted.
-
-    Returns
-    -------
-    float
-
-    Raises
-    ------
-    InputError
-        If eps is not a real number (bool and strings included), is not finite or is <= 0.
-
-    Examples
-    --------
-    >>> validate_eps(1)
-    1.0
-    """
-    if isinstance(eps, (bool, np.bool_)) or not isinstance(eps, numbers.Real):
-        raise InputError(f"eps must be a positive finite number, got {_short(eps)} ({type(eps).__name__})")
-    try:
-        value = float(eps)
-    except OverflowError:
-        value = float("inf")
-    if not (np.isfinite(value) and value > 0):
-        raise InputError(f"eps must be a positive finite number, got {_short(eps)}")
-    return value
-
-
-def validate_max_dim(max_dim: Any) -> int | None:
-    """Check the simplex dimension cap D: ``None`` (no cap) or an integer >= 0.
-
-    Parameters
-    ----------
-    max_dim : int or None
-        Floats are accepted only when integral (``3.0``); bools are refused.
-
-    Returns
-    -------
-    int or None
-
-    Raises
-    ------
-    InputError
-        If the value is a bool, a non-integral or non-finite float, negative, or not a number.
-
-    Examples
-    --------
-    >>> validate_max_dim(3.0), validate_max_dim(None)
-    (3, None)
-    """
-    if max_dim is None:
-        return None
-    problem = f"max_dim must be None or an integer >= 0, got {_short(max_dim)}"
-    if isinstance(max_dim, (bool, np.bool_)):
-        raise InputError(f"{problem} (bool)")
-    if isinstance(max_dim, numbers.Integral):
-        value = int(max_dim)
-    elif isinstance(max_dim, numbers.Real):
-        as_float = float(max_dim)
-        if not (np.isfinite(as_float) and as_float.is_integer()):
-            raise InputError(problem)
-        value = int(as_float)
-    else:
-        raise InputError(f"{problem} ({type(max_dim).__name__})")
-    if value < 0:
-        raise InputError(problem)
-    return value
 
 
 # --------------------------------------------------------------------------- locating
@@ -495,31 +274,76 @@ def _delimiter_of(line: str) -> str | None:
     return None  # runs of spaces
 
 
+# pandas names a column it read without a header "Unnamed: 0" (or "Unnamed: 0_level_0"
+# under a MultiIndex); writing the frame again keeps that name.
+_UNNAMED = re.compile(r"Unnamed: \d+(_level_\d+)?")
+
+
+def _header_name(cell: str) -> str:
+    # Spreadsheets and R quote every name; a quoted name is the same name.
+    cell = cell.strip()
+    if len(cell) >= 2 and cell[0] == cell[-1] == '"':
+        cell = cell[1:-1].strip()
+    return cell
+
+
+def _is_unnamed(name: str) -> bool:
+    return not name or _UNNAMED.fullmatch(name) is not None
+
+
 @dataclass(frozen=True)
 class _TextLayout:
     delimiter: str | None
     header_line: int | None  # 0-based index of the header line among all lines
+    width: int  # cells in the first data row
+    # One name per data column when the header lines up with the rows, else None. A
+    # header one cell short (R's write.table, pandas with sep=" ") lines up with an
+    # unnamed first column.
+    names: tuple[str, ...] | None = None
+    header_cells: int = 0
+
+
+def _header_names(line: str, delimiter: str | None, width: int) -> tuple[tuple[str, ...] | None, int]:
+    """Header names aligned with ``width`` data columns (or None) and the header's cell count."""
+    raw = _content(line)
+    # Split by the data's delimiter first (a leading empty cell survives only there),
+    # then by the header's own, for headers such as "x y" over tab-separated rows.
+    tried: list[list[str]] = []
+    for delim in dict.fromkeys([delimiter, _delimiter_of(raw.strip())]):
+        text = raw if delim is not None else raw.strip()
+        tried.append([_header_name(c) for c in _split(text, delim)])
+    for cells in tried:
+        if len(cells) == width:
+            return tuple(cells), len(cells)
+    for cells in tried:
+        if len(cells) == width - 1:
+            return ("", *cells), len(cells)
+    return None, len(tried[0])
 
 
 def _sniff(lines: Iterator[str], buffered: list[str]) -> _TextLayout | None:
-    """Find the delimiter and whether a header comes first; consumed lines go to ``buffered``."""
+    """Find the delimiter, the header and the row width; consumed lines go to ``buffered``."""
     first: tuple[int, str] | None = None
     for index, line in enumerate(lines):
         buffered.append(line)
         body = _content(line).strip()
         if not body:
             continue
+        delimiter = _delimiter_of(body)
+        width = len(_split(body, delimiter))
         if first is None:
-            cells = [c.strip() for c in _split(body, _delimiter_of(body))]
+            cells = [c.strip() for c in _split(body, delimiter)]
             # A header is a line with no number in it; a line mixing numbers and words is
             # a bad data row, reported as such rather than silently skipped.
             if any(_is_number(c) for c in cells):
-                return _TextLayout(_delimiter_of(body), None)
-            first = (index, body)
+                return _TextLayout(delimiter, None, width)
+            first = (index, line)
             continue
-        return _TextLayout(_delimiter_of(body), first[0])
+        names, header_cells = _header_names(first[1], delimiter, width)
+        return _TextLayout(delimiter, first[0], width, names, header_cells)
     if first is not None:
-        return _TextLayout(_delimiter_of(first[1]), first[0])
+        body = _content(first[1]).strip()
+        return _TextLayout(_delimiter_of(body), first[0], 0)
     return None
 
 
@@ -528,7 +352,7 @@ def _open_text(src: _Source) -> Any:
     return fsspec.open(src.text, "rt", compression=src.compression, encoding="utf-8-sig")
 
 
-def _locate_text_error(src: _Source, layout: _TextLayout) -> str | None:
+def _locate_text_error(src: _Source, layout: _TextLayout, usecols: list[int] | None) -> str | None:
     """Describe the first bad cell or ragged row; run only after the parser has failed."""
     width: int | None = None
     row = -1
@@ -539,6 +363,14 @@ def _locate_text_error(src: _Source, layout: _TextLayout) -> str | None:
                 continue
             row += 1
             cells = [c.strip() for c in _split(body, layout.delimiter)]
+            if usecols is not None:
+                # Only the chosen columns are parsed; the others may hold anything.
+                for col in usecols:
+                    if col >= len(cells):
+                        return f"row {row} (line {index + 1}) has {len(cells)} columns, so no column {col}"
+                    if not _is_number(cells[col]):
+                        return f"row {row} (line {index + 1}), column {col}: {_short(cells[col])} is not a number"
+                continue
             for col, cell in enumerate(cells):
                 if not _is_number(cell):
                     return f"row {row} (line {index + 1}), column {col}: {_short(cell)} is not a number"
@@ -552,39 +384,173 @@ def _locate_text_error(src: _Source, layout: _TextLayout) -> str | None:
     return None
 
 
-def _read_text(src: _Source, key: str | None) -> np.ndarray:
+# Lines read ahead whose first cells decide how the refusal of an unnamed first column is
+# worded; the refusal itself does not depend on them.
+_INDEX_PEEK_ROWS = 1000
+
+
+def _looks_like_row_index(lines: list[str], layout: _TextLayout) -> tuple[int, ...] | None:
+    """The first cells of ``lines`` as integers when they count up by one, else None."""
+    values: list[int] = []
+    for index, line in enumerate(lines):
+        body = _content(line)
+        if not body.strip() or index == layout.header_line:
+            continue
+        cell = _header_name(_split(body.strip() if layout.delimiter is None else body, layout.delimiter)[0])
+        if not re.fullmatch(r"[+-]?\d+", cell):
+            return None
+        values.append(int(cell))
+    if not values or any(b - a != 1 for a, b in zip(values, values[1:])):
+        return None
+    return tuple(values)
+
+
+def _choice_hint(names: tuple[str, ...] | None, width: int) -> str:
+    """How to say which columns to read when the first one is not a coordinate."""
+    if width <= 1:
+        return "pass columns=[0] / --columns 0 to read it all the same"
+    rest = list(names[1:]) if names is not None else []
+    if rest and len(rest) <= _MAX_LISTED and all(not _is_unnamed(n) and "," not in n for n in rest):
+        api, cli = repr(rest), ",".join(rest)
+    elif width - 1 <= _MAX_LISTED:
+        numbers = [str(i) for i in range(1, width)]
+        api, cli = "[" + ", ".join(numbers) + "]", ",".join(numbers)
+    else:
+        api, cli = "[...]", "..."
+    return (
+        "pass index_col=0 / --index-col 0 to drop it, "
+        f"or columns={api} / --columns {cli} to choose the columns to read"
+    )
+
+
+def _refuse_unnamed_first_column(src: _Source, layout: _TextLayout, peeked: list[str]) -> None:
+    hint = _choice_hint(layout.names, layout.width)
+    index = _looks_like_row_index(peeked, layout)
+    if index is not None:
+        shown = ", ".join(str(v) for v in index[:3]) + (", ..." if len(index) > 3 else "")
+        raise InputError(
+            f"{src.display}: the first column has no name in the header and holds {shown}: "
+            f"it looks like a row index written by pandas, not a coordinate; {hint}"
+        )
+    raise InputError(
+        f"{src.display}: the first column has no name in the header (pandas writes a row "
+        f"index that way), so it is not read as a coordinate unless chosen; {hint}"
+    )
+
+
+def _text_column(src: _Source, layout: _TextLayout, column: int | str) -> int:
+    """The 0-based file column that ``column`` (a number or a header name) names."""
+    width = layout.width
+    if isinstance(column, int):
+        if column >= width:
+            listed = f": {_listing(layout.names)}" if layout.names is not None else ""
+            raise InputError(
+                f"{src.display}: no column {column}; the rows have {width} columns, "
+                f"numbered 0 to {width - 1}{listed}"
+            )
+        return column
+    if layout.header_line is None:
+        raise InputError(
+            f"{src.display}: column {column!r} is a name, but the file has no header "
+            f"line; choose columns by 0-based number (0 to {width - 1})"
+        )
+    if layout.names is None:
+        raise InputError(
+            f"{src.display}: cannot find column {column!r}: the header has "
+            f"{layout.header_cells} names but the rows have {width} columns; choose columns "
+            f"by 0-based number (0 to {width - 1})"
+        )
+    hits = [i for i, n in enumerate(layout.names) if n == column]
+    if not hits:
+        raise InputError(f"{src.display}: no column {column!r}; columns: {_listing(layout.names)}")
+    if len(hits) > 1:
+        raise InputError(
+            f"{src.display}: the header names {column!r} {len(hits)} times "
+            f"(columns {', '.join(map(str, hits))}); choose by 0-based number"
+        )
+    return hits[0]
+
+
+def _text_selection(
+    src: _Source,
+    layout: _TextLayout,
+    columns: tuple[int | str, ...] | None,
+    index_col: int | str | None,
+) -> tuple[list[int] | None, str]:
+    """The file columns to read (None: all) and how messages name the selection."""
+    if columns is None and index_col is None:
+        return None, src.display
+    usecols = (
+        list(range(layout.width))
+        if columns is None
+        else [_text_column(src, layout, c) for c in columns]
+    )
+    twice = [c for i, c in enumerate(usecols) if c in usecols[:i]]
+    if twice:
+        raise InputError(f"{src.display}: columns chooses column {twice[0]} twice (by name and by number)")
+    if index_col is not None:
+        drop = _text_column(src, layout, index_col)
+        if columns is not None and drop in usecols:
+            raise InputError(
+                f"{src.display}: column {drop} is both chosen by columns and dropped by index_col"
+            )
+        usecols = [c for c in usecols if c != drop]
+    if not usecols:
+        raise InputError(f"{src.display}: no column is left to read once index_col is dropped")
+    labels = [layout.names[c] for c in usecols] if layout.names is not None else []
+    if not labels or any(_is_unnamed(n) for n in labels):
+        labels = [str(c) for c in usecols]
+    return usecols, f"{src.display}[{', '.join(labels)}]"
+
+
+def _read_text(
+    src: _Source,
+    key: str | None,
+    columns: tuple[int | str, ...] | None,
+    index_col: int | str | None,
+) -> tuple[np.ndarray, str]:
     _reject_key(src, key, "a text table holds one array")
     layout: _TextLayout | None = None
+    usecols: list[int] | None = None
+    where = src.display
     try:
         with _open_text(src) as f:
             buffered: list[str] = []
-            layout = _sniff(iter(f), buffered)
-            if layout is None:
+            lines = iter(f)
+            layout = _sniff(lines, buffered)
+            if layout is None or layout.width == 0:
                 raise InputError(f"{src.display}: holds no data rows")
+            if columns is None and index_col is None and layout.names is not None and _is_unnamed(layout.names[0]):
+                # Never guess: an unnamed first column is refused, and only its wording
+                # depends on the values, so a bounded peek is enough.
+                peeked = buffered + list(itertools.islice(lines, _INDEX_PEEK_ROWS))
+                _refuse_unnamed_first_column(src, layout, peeked)
+            usecols, where = _text_selection(src, layout, columns, index_col)
             if layout.header_line is not None:
                 del buffered[layout.header_line]
             with warnings.catch_warnings():
                 # An input with a header only is reported below, not warned about.
                 warnings.simplefilter("ignore", UserWarning)
                 data = np.loadtxt(
-                    itertools.chain(buffered, f),
+                    itertools.chain(buffered, lines),
                     dtype=np.float64,
                     delimiter=layout.delimiter,
                     comments="#",
                     ndmin=2,
+                    usecols=usecols,
                 )
     except InputError:
         raise
     except ValueError as exc:
         if isinstance(exc, UnicodeDecodeError):
             raise InputError(f"{src.display}: not UTF-8 text: {_one_line(exc)}") from exc
-        where = _locate_text_error(src, layout) if layout is not None else None
-        raise InputError(f"{src.display}: {where or _one_line(exc)}") from exc
+        located = _locate_text_error(src, layout, usecols) if layout is not None else None
+        raise InputError(f"{src.display}: {located or _one_line(exc)}") from exc
     except (OSError, EOFError) as exc:
         raise InputError(f"{src.display}: cannot read: {_one_line(exc)}") from exc
     if data.shape[0] == 0:
         raise InputError(f"{src.display}: holds no data rows")
-    return data
+    return data, where
 
 
 # ---- Zarr
@@ -678,21 +644,48 @@ def _pandas_index_columns(schema: Any) -> set[str]:
     return {c for c in meta.get("index_columns", []) if isinstance(c, str)}
 
 
-def _read_parquet(src: _Source, key: str | None) -> tuple[np.ndarray, str]:
+def _read_parquet(
+    src: _Source,
+    key: str | None,
+    columns: tuple[int | str, ...] | None,
+    index_col: int | str | None,
+) -> tuple[np.ndarray, str]:
     pa = _require("pyarrow", "parquet", "Parquet", src.display)
     pq = _require("pyarrow.parquet", "parquet", "Parquet", src.display)
+    if key is not None and columns is not None:
+        raise InputError(f"{src.display}: key and columns both choose Parquet columns; give only one")
     try:
         if src.is_url:
             with fsspec.open(src.text, "rb") as f:
-                return _read_parquet_columns(pa, pq.ParquetFile(f), src, key)
-        return _read_parquet_columns(pa, pq.ParquetFile(src.text), src, key)
+                return _read_parquet_columns(pa, pq.ParquetFile(f), src, key, columns, index_col)
+        return _read_parquet_columns(pa, pq.ParquetFile(src.text), src, key, columns, index_col)
     except InputError:
         raise
     except (OSError, ValueError, pa.ArrowException) as exc:
         raise InputError(f"{src.display}: cannot read as Parquet: {_one_line(exc)}") from exc
 
 
-def _read_parquet_columns(pa: ModuleType, pf: Any, src: _Source, key: str | None) -> tuple[np.ndarray, str]:
+def _parquet_column(src: _Source, all_names: list[str], column: int | str) -> str:
+    if isinstance(column, int):
+        if column >= len(all_names):
+            raise InputError(
+                f"{src.display}: no column {column}; the file has {len(all_names)} columns, "
+                f"numbered 0 to {len(all_names) - 1}: {_listing(all_names)}"
+            )
+        return all_names[column]
+    if column not in all_names:
+        raise InputError(f"{src.display}: no column {column!r}; columns: {_listing(all_names)}")
+    return column
+
+
+def _read_parquet_columns(
+    pa: ModuleType,
+    pf: Any,
+    src: _Source,
+    key: str | None,
+    columns: tuple[int | str, ...] | None,
+    index_col: int | str | None,
+) -> tuple[np.ndarray, str]:
     schema = pf.schema_arrow
     all_names = list(schema.names)
 
@@ -700,19 +693,46 @@ def _read_parquet_columns(pa: ModuleType, pf: Any, src: _Source, key: str | None
         t = schema.field(name).type
         return bool(pa.types.is_integer(t) or pa.types.is_floating(t))
 
-    if key is None:
+    drop = None if index_col is None else _parquet_column(src, all_names, index_col)
+    if columns is not None:
+        names = [_parquet_column(src, all_names, c) for c in columns]
+        twice = [n for i, n in enumerate(names) if n in names[:i]]
+        if twice:
+            raise InputError(f"{src.display}: columns chooses column {twice[0]!r} twice (by name and by number)")
+    elif key is not None:
+        names = [n.strip() for n in key.split(",")]
+        for name in names:
+            _parquet_column(src, all_names, name)
+    else:
+        names = None
+    if names is None:
         skip = _pandas_index_columns(schema)
-        names = [n for n in all_names if n not in skip and numeric(n)]
+        first = all_names[0] if all_names else None
+        if (
+            drop is None
+            and first is not None
+            and first not in skip
+            and _is_unnamed(first)
+            and numeric(first)
+        ):
+            # A frame read from a CSV with its index and written again keeps the index as
+            # a column named "Unnamed: 0": never taken for a coordinate without being asked.
+            rest = tuple(n for n in all_names[1:] if n not in skip and numeric(n))
+            raise InputError(
+                f"{src.display}: the first column {first!r} has no real name: it looks like a "
+                f"row index written by pandas, not a coordinate; "
+                f"{_choice_hint((first, *rest), len(all_names))}"
+            )
+        names = [n for n in all_names if n not in skip and n != drop and numeric(n)]
         if not names:
             raise InputError(
                 f"{src.display}: no integer or float columns; columns: {_listing(all_names)}"
             )
-        where = src.display
+        where = src.display if drop is None else f"{src.display}[{', '.join(names)}]"
     else:
-        names = [n.strip() for n in key.split(",")]
+        if drop is not None and drop in names:
+            raise InputError(f"{src.display}: column {drop!r} is both chosen and dropped by index_col")
         for name in names:
-            if name not in all_names:
-                raise InputError(f"{src.display}: no column {name!r}; columns: {_listing(all_names)}")
             if not numeric(name):
                 raise InputError(
                     f"{src.display}: column {name!r} has type {schema.field(name).type}, "
@@ -739,7 +759,13 @@ def _read_parquet_columns(pa: ModuleType, pf: Any, src: _Source, key: str | None
 # --------------------------------------------------------------------------- public
 
 
-def read_points(source: str | os.PathLike[str], *, key: str | None = None) -> np.ndarray:
+def read_points(
+    source: str | os.PathLike[str],
+    *,
+    key: str | None = None,
+    columns: str | Sequence[int | str] | None = None,
+    index_col: int | str | None = None,
+) -> np.ndarray:
     """Read a point set and validate it.
 
     Parameters
@@ -755,6 +781,15 @@ def read_points(source: str | os.PathLike[str], *, key: str | None = None) -> np
         comma-separated column names in a Parquet file. By default the only array
         (or, for Parquet, every integer and float column in order, a stored pandas
         index excepted). Giving a key for a single-array format is an error.
+    columns : str or sequence of (str or int), optional
+        Text tables and Parquet only: the columns to read, in that order, as header
+        names or 0-based column numbers, or a comma-separated string of them
+        (``"x,y,z"``, ``"1,2,3"``; a token of decimal digits is a number). Names need
+        a header line. The other columns are not parsed and may hold anything, text
+        included. For Parquet, give ``columns`` or ``key``, not both.
+    index_col : str or int, optional
+        Text tables and Parquet only: a column (name or 0-based number) to leave out,
+        typically a row index written by pandas. It may not also be in ``columns``.
 
     Returns
     -------
@@ -766,16 +801,29 @@ def read_points(source: str | os.PathLike[str], *, key: str | None = None) -> np
     ------
     InputError
         If the source is missing, has an unknown ending, cannot be parsed, the key is
-        missing or ambiguous, or the data fail :func:`validate_points`. 1-D arrays are
-        refused (a one-column text table loads as (n, 1) and is fine).
+        missing or ambiguous, a chosen column does not exist (the message lists those
+        that do), the first column of a table has no name and neither ``columns`` nor
+        ``index_col`` says what to do with it, or the data fail :func:`validate_points`.
+        1-D arrays are refused (a one-column text table loads as (n, 1) and is fine).
 
     Notes
     -----
     Text tables: the delimiter (comma, else tab, else runs of spaces) is taken from the
     first data line; lines starting with ``#`` are comments; a first line with no number
-    in it is a header and is skipped. Errors give 0-based data row and column indices
-    and the 1-based line number. HDF5 needs ``pip install "chitally[hdf5]"``, Parquet
-    ``pip install "chitally[parquet]"``.
+    in it is a header (names may be quoted). Errors give 0-based data row and column
+    indices and the 1-based line number; once columns are chosen, the point array's
+    column ``j`` is the ``j``-th chosen column, as the message's ``file[x, y, z]`` says.
+
+    An unnamed first column, i.e. a header whose first cell is empty or ``Unnamed: N``
+    (or a header one name short of the rows), is what pandas writes for a frame's row
+    index. It is never read silently: without ``columns`` or ``index_col`` it is
+    refused with a hint, whether or not its values count up by one (the values only
+    change the wording), because a column nobody named is no evidence of a coordinate.
+    A named first column is read like any other. The same holds for a Parquet file
+    whose first integer or float column is named ``""`` or ``Unnamed: N``; a pandas
+    index recorded as such in the Parquet metadata is left out without asking.
+
+    HDF5 needs ``pip install "chitally[hdf5]"``, Parquet ``pip install "chitally[parquet]"``.
 
     Examples
     --------
@@ -784,32 +832,49 @@ def read_points(source: str | os.PathLike[str], *, key: str | None = None) -> np
     ...     np.save(f, np.array([[0.0, 1.0], [2.0, 3.0]]))
     >>> read_points("memory://doc-example.npy").shape
     (2, 2)
+    >>> with fsspec.open("memory://doc-example.csv", "w") as f:
+    ...     _ = f.write(",x,y\\n0,0.5,1.5\\n1,2.5,3.5\\n")
+    >>> read_points("memory://doc-example.csv", index_col=0).tolist()
+    [[0.5, 1.5], [2.5, 3.5]]
     """
+    chosen = validate_columns(columns, name="columns")
+    drop = validate_column(index_col, name="index_col")
     src = _locate(source)
     where = src.display
+    if (chosen is not None or drop is not None) and src.fmt not in ("text", "parquet"):
+        raise InputError(
+            f"{src.display}: columns and index_col choose columns of text tables and Parquet "
+            f"files; a {_FORMAT_LABELS[src.fmt or '']} input holds arrays (choose one with key)"
+        )
     if src.fmt == "npy":
         data = _read_npy(src, key)
     elif src.fmt == "npz":
         data, where = _read_npz(src, key)
     elif src.fmt == "text":
-        data = _read_text(src, key)
+        data, where = _read_text(src, key, chosen, drop)
     elif src.fmt == "zarr":
         data, where = _read_zarr(src, key)
     elif src.fmt == "hdf5":
         data, where = _read_hdf5(src, key)
     else:
-        data, where = _read_parquet(src, key)
+        data, where = _read_parquet(src, key, chosen, drop)
     return validate_points(data, where=where)
 
 
-def describe_source(source: str | os.PathLike[str], key: str | None = None) -> str:
+def describe_source(
+    source: str | os.PathLike[str],
+    key: str | None = None,
+    *,
+    columns: str | Sequence[int | str] | None = None,
+    index_col: int | str | None = None,
+) -> str:
     """A short human description of an input, for summaries; reads no data.
 
     Parameters
     ----------
     source : str or os.PathLike
         As for :func:`read_points`.
-    key : str, optional
+    key, columns, index_col : optional
         As for :func:`read_points`.
 
     Returns
@@ -821,6 +886,8 @@ def describe_source(source: str | os.PathLike[str], key: str | None = None) -> s
     --------
     >>> describe_source("galaxies.parquet", key="x,y,z")
     'galaxies.parquet (Parquet, columns x,y,z)'
+    >>> describe_source("frame.csv", index_col=0)
+    'frame.csv (text table, without column 0)'
     """
     text = _coerce_source(source)
     is_url = _is_url(text)
@@ -834,4 +901,10 @@ def describe_source(source: str | os.PathLike[str], key: str | None = None) -> s
         noun = {"hdf5": "dataset", "parquet": "columns"}.get(fmt or "", "array")
         quoted = key if noun == "columns" else repr(key)
         label += f", {noun} {quoted}"
+    chosen = validate_columns(columns, name="columns")
+    if chosen is not None:
+        label += ", columns " + ",".join(str(c) for c in chosen)
+    drop = validate_column(index_col, name="index_col")
+    if drop is not None:
+        label += f", without column {drop}"
     return f"{_display(text)} ({label})"
