@@ -165,8 +165,25 @@ eps_opt = click.option("--eps", type=float, required=True,
                        help="Largest scale (> 0): edges join points at distance <= eps.")
 dim_opt = click.option("--max-dim", type=int, default=None,
                        help="Count simplices up to this dimension (default: all).")
-key_opt = click.option("--key", default=None,
-                       help="Array, dataset or columns inside INPUT (npz, zarr, hdf5, parquet).")
+_key_opt = click.option("--key", default=None,
+                        help="Array, dataset or columns inside INPUT (npz, zarr, hdf5, parquet).")
+_columns_opt = click.option("--columns", default=None,
+                            help="Columns of a CSV/TSV/Parquet INPUT to read, by name or 0-based number: x,y,z or 1,2,3.")
+_index_col_opt = click.option("--index-col", default=None,
+                              help="A column of a CSV/TSV INPUT to drop (a row index), by name or number.")
+
+
+def key_opt(fn: Callable[..., Any]) -> Callable[..., Any]:
+    """--key, --columns and --index-col: which data inside INPUT to read."""
+    return _key_opt(_columns_opt(_index_col_opt(fn)))
+
+
+def _read(input: str, key: str | None, columns: str | None, index_col: str | None) -> Any:
+    from .sources import read_points
+    from .validate import validate_column, validate_columns
+
+    return read_points(input, key=key, columns=validate_columns(columns, name="--columns"),
+                       index_col=validate_column(index_col, name="--index-col"))
 radius_opt = click.option("--cover-radius", type=float, default=None,
                           help="Ball radius of the cover (default: eps).")
 cost_opt = click.option("--task-cost", type=float, default=None,
@@ -330,16 +347,16 @@ def _report(report: Any, grid: Any = None, out: str | None = None, fmt: str | No
 @click.option("--grid", default=None, help=GRID_HELP + " With --out, the file holds the samples.")
 @click.option("--threads", type=int, default=None, help="Kernel threads (default: by size).")
 @guarded
-def curve_cmd(input: str, eps: float, max_dim: int | None, key: str | None, out: str | None,
-              fmt: str | None, grid: str | None, threads: int | None) -> None:
+def curve_cmd(input: str, eps: float, max_dim: int | None, key: str | None, columns: str | None,
+              index_col: str | None, out: str | None, fmt: str | None, grid: str | None,
+              threads: int | None) -> None:
     """Compute the curve of INPUT in this process."""
     params = _cloud_params(eps, max_dim)
     grid_values = _grid(grid)
     fmt = check_output(out, fmt)
     from .inprocess import euler_curve
-    from .sources import read_points
 
-    points = read_points(input, key=key)
+    points = _read(input, key, columns, index_col)
     curve, stats = euler_curve(points, params.eps, params.max_dim, threads=threads, return_stats=True)
     say(f"{points.shape[0]} points in R^{points.shape[1]}, eps {params.eps:g}, max_dim "
         f"{params.max_dim if params.max_dim is not None else 'none'}: {stats.edges} edges; "
@@ -372,14 +389,14 @@ def format_figure(name: str, value: Any) -> str:
 @cost_opt
 @click.option("--json", "as_json", is_flag=True, help="Print the figures as JSON.")
 @guarded
-def plan_cmd(input: str, eps: float, max_dim: int | None, key: str | None, cover_radius: float | None,
-             task_cost: float | None, as_json: bool) -> None:
+def plan_cmd(input: str, eps: float, max_dim: int | None, key: str | None, columns: str | None,
+             index_col: str | None, cover_radius: float | None, task_cost: float | None,
+             as_json: bool) -> None:
     """Show what a run would do (balls, tasks, halos, cost, memory, store layout); writes nothing."""
     from .jobs.cloud import describe
-    from .sources import read_points
 
     params = _cloud_params(eps, max_dim, cover_radius, task_cost)
-    summary = describe(read_points(input, key=key), params)
+    summary = describe(_read(input, key, columns, index_col), params)
     if as_json:
         click.echo(json.dumps(summary, indent=2))
         return
@@ -405,17 +422,17 @@ def plan_cmd(input: str, eps: float, max_dim: int | None, key: str | None, cover
 @click.option("--discard", is_flag=True, help="Delete committed work of an unfinished store at --out.")
 @_executor_options
 @guarded
-def run_cmd(input: str, eps: float, max_dim: int | None, key: str | None, out: str,
+def run_cmd(input: str, eps: float, max_dim: int | None, key: str | None, columns: str | None,
+            index_col: str | None, out: str,
             cover_radius: float | None, task_cost: float | None, grid: str | None, discard: bool,
             progress: bool, **how: Any) -> None:
     """Plan, execute and reduce: the exact curve of INPUT on a Dask cluster."""
     from .jobs.cloud import create_or_open, plan_warnings
-    from .sources import read_points
 
     params = _cloud_params(eps, max_dim, cover_radius, task_cost)
     grid_values = _grid(grid)
     where = _where(**how)
-    points = read_points(input, key=key)  # validated before any store exists
+    points = _read(input, key, columns, index_col)  # validated before any store exists
     store = create_or_open(_store_url(out), points, params, discard=discard)
     from .jobs.cloud import read_plan
 
@@ -439,7 +456,8 @@ def run_cmd(input: str, eps: float, max_dim: int | None, key: str | None, out: s
 @_executor_options
 @guarded
 def batch_cmd(input: str, eps: float, grid: str, max_dim: int | None, normalise: bool,
-              labels: str | None, key: str | None, task_cost: float | None, out: str, discard: bool,
+              labels: str | None, key: str | None, columns: str | None, index_col: str | None,
+              task_cost: float | None, out: str, discard: bool,
               progress: bool, **how: Any) -> None:
     """A feature matrix: every cloud of INPUT (a folder of point files, an .npz of
     arrays, a 3-D .npy or a Zarr group) as its exact curve sampled on the grid."""
@@ -450,6 +468,8 @@ def batch_cmd(input: str, eps: float, grid: str, max_dim: int | None, normalise:
     params = BatchParams.checked(eps, grid_values, max_dim, normalise, task_cost,
                                  names={**_NAMES, "grid": "--grid"})
     where = _where(**how)
+    if columns is not None or index_col is not None:
+        fail("--columns and --index-col apply to one file, not to a collection (use --key)", EXIT_USAGE)
     col = read_collection(input, key=key)
     if labels is not None:
         col = Collection(col.names, col.clouds, read_labels(labels, col.names))

@@ -39,7 +39,9 @@ class Params:
         return {
             "eps": float(self.eps),
             "max_dim": self.max_dim,
-            "cover_radius": float(self.cover_radius if self.cover_radius is not None else self.eps),
+            # None when left at its default (eps), so a store made for another eps does
+            # not list a radius the user never set among the differences
+            "cover_radius": None if self.cover_radius is None else float(self.cover_radius),
             "task_cost": None if self.task_cost is None else float(self.task_cost),
         }
 
@@ -60,8 +62,8 @@ class Params:
 
 def plan_points(points: np.ndarray, params: Params) -> tuple[Cover, Plan, np.ndarray]:
     """Cover and task table for validated points (pure: touches no storage)."""
-    p = params.as_dict()
-    cover = build_cover(points, params.eps, p["cover_radius"])
+    radius = params.eps if params.cover_radius is None else params.cover_radius
+    cover = build_cover(points, params.eps, radius)
     points_sorted = np.ascontiguousarray(points[cover.order])
     plan = make_plan(points_sorted, cover, params.eps, params.max_dim, task_cost=params.task_cost)
     return cover, plan, points_sorted
