@@ -21,7 +21,8 @@ import numpy as np
 from chitally import euler_curve
 from chitally.cluster import connect
 from chitally.execute import DaskExecutor
-from chitally.runs import Params, create_or_open, execute
+from chitally.jobs.cloud import Params, create_or_open, read_plan
+from chitally.runs import execute
 
 
 def sphere4(n: int, seed: int = 0) -> np.ndarray:
@@ -102,7 +103,7 @@ def main() -> None:
     few = np.random.default_rng(3).random((4000, 3)) * 100.0  # eps 0.01: almost no edges
     params = Params.checked(0.01, None, None, 1.0)  # task_cost 1: one task per tiny group
     report, store, t_plan, t_exec = timed_run(client, few, params, tmp / "overhead.zarr")
-    kernel = sum(float(store.read_commit(t)["seconds"]) for t in range(store.n_tasks))
+    kernel = sum(float(store.commits.record(t)["seconds"]) for t in range(store.n_tasks))
     print(f"{store.n_tasks} tasks in {t_exec:.2f} s on 2 workers: {1000 * (2 * t_exec - kernel) / store.n_tasks:.1f} ms "
           f"of Dask + store per task (worker-time), {1000 * t_exec / store.n_tasks:.1f} ms wall per task")
 
@@ -110,8 +111,8 @@ def main() -> None:
     for n in (200_000, 1_000_000):
         pts = cube_at_density(n)
         report, store, t_plan, t_exec = timed_run(client, pts, Params.checked(0.05, 3), tmp / f"mem{n}.zarr")
-        peaks = [int(store.read_commit(t)["peak_memory"]) for t in range(store.n_tasks)]
-        plan = store.read_plan()
+        peaks = [int(store.commits.record(t)["peak_memory"]) for t in range(store.n_tasks)]
+        plan = read_plan(store)
         print(f"N={n}: {store.n_tasks} tasks, largest halo {int(plan.halo_sizes().max())} rows, "
               f"worker peak RSS max {max(peaks) / 2**20:.0f} MiB, replication {plan.replication():.2f}, "
               f"plan+store {t_plan:.1f} s, execute {t_exec:.1f} s")
