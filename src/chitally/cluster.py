@@ -41,7 +41,36 @@ class Connection:
         from urllib.parse import urlparse
 
         port = urlparse(self.dashboard).port or 8787
-        return f"ssh -N -L {port}:127.0.0.1:{port} {getpass.getuser()}@{socket.getfqdn()}"
+        return f"ssh -N -L {port}:127.0.0.1:{port} {getpass.getuser()}@{reachable_host_name()}"
+
+
+def reachable_host_name() -> str:
+    """A name another machine can use for this one, or a placeholder saying what to put.
+
+    ``getfqdn`` answers "localhost" on machines whose name resolves to the loopback
+    address, which is useless in an ssh line typed elsewhere.
+    """
+    for name in (socket.getfqdn(), socket.gethostname()):
+        if name and not name.startswith("localhost") and name not in ("127.0.0.1", "::1"):
+            try:
+                if socket.gethostbyname(name).startswith("127."):
+                    continue
+            except OSError:
+                continue
+            return name
+    return "<this-machine's-address>"
+
+
+def free_port(host: str = "127.0.0.1", preferred: int = 8787) -> int:
+    """`preferred` if nothing listens there, else a free port the system picks."""
+    for port in (preferred, 0):
+        with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as sock:
+            try:
+                sock.bind((host, port))
+            except OSError:
+                continue
+            return int(sock.getsockname()[1])
+    return 0
 
 
 def _dashboard_of(client: Any) -> str | None:
@@ -73,11 +102,14 @@ def connect(
     workers: int | None = None,
     threads: int | None = None,
     memory_limit: str | None = None,
-    dashboard_address: str = "127.0.0.1:8787",
+    dashboard_address: str | None = None,
 ) -> Connection:
     """A Dask client: to `scheduler` / `scheduler_file` / DASK_SCHEDULER_ADDRESS if given,
     else to a new LocalCluster sized to this machine (one single-threaded worker process
-    per core by default: the kernel holds no GIL, but the store I/O around it does)."""
+    per core by default: the kernel holds no GIL, but the store I/O around it does).
+
+    The LocalCluster and its dashboard listen on 127.0.0.1 only; the dashboard takes port
+    8787 when it is free, else another free port (the link printed says which)."""
     from distributed import Client, LocalCluster
 
     scheduler = scheduler or os.environ.get("DASK_SCHEDULER_ADDRESS") or None
@@ -92,7 +124,7 @@ def connect(
         threads_per_worker=threads,
         processes=True,
         host="127.0.0.1",
-        dashboard_address=dashboard_address,
+        dashboard_address=dashboard_address or f"127.0.0.1:{free_port()}",
         memory_limit=memory_limit or "auto",
         silence_logs=logging.WARNING,
     )

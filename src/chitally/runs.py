@@ -11,8 +11,6 @@ and prints.
 from __future__ import annotations
 
 import logging
-import os
-import socket
 import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
@@ -138,8 +136,8 @@ class _Driver(Callbacks):
 def acquire_lease(store: RunStore, *, takeover: bool = False) -> Lease:
     """The store's writer lease for this process (raises `LeaseHeld` if another run has
     it), beating from now on: starting a cluster can take a while."""
-    lease = store.acquire_lease(f"chitally pid {os.getpid()} on {socket.gethostname()}",
-                                takeover=takeover)
+    # the lease records host and pid itself: the owner names only what is running
+    lease = store.acquire_lease(f"chitally {store.kind} run", takeover=takeover)
     lease.start()
     return lease
 

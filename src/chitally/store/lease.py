@@ -102,8 +102,9 @@ def _verdict(io: StoreIO, g: int, rec: dict[str, Any], stale_after: float) -> tu
 
 
 def _holder_text(rec: dict[str, Any], age: float) -> str:
-    return (f"{rec.get('owner')} (host {rec.get('host')}, pid {rec.get('pid')}, "
-            f"last heartbeat {age:.0f} s ago)")
+    beat = "never" if age == math.inf else f"{age:.0f} s ago"
+    return (f"{rec.get('owner')} (pid {rec.get('pid')} on {rec.get('host')}, last heartbeat "
+            f"{beat})")
 
 
 def acquire(io: StoreIO, owner: str, *, takeover: bool = False,
