@@ -369,15 +369,38 @@ def curve_cmd(input: str, eps: float, max_dim: int | None, key: str | None, colu
         _print_samples(curve, grid_values)
 
 
-def format_figure(name: str, value: Any) -> str:
-    """One figure of a plan summary as `chitally plan` prints it."""
-    if name.endswith("memory"):
-        return f"{value / 2**20:.1f} MiB (estimate)"
-    if isinstance(value, dict):
-        return ", ".join(f"{k} {v:g}" for k, v in value.items())
-    if isinstance(value, float):
-        return f"{value:.4g}"
-    return str(value)
+_PLAN_LABELS = {
+    "points": "points",
+    "dim": "coordinates per point",
+    "eps": "eps (largest scale)",
+    "max_dim": "simplex dimension cap",
+    "radius": "ball radius of the cover",
+    "balls": "balls in the cover",
+    "tasks": "tasks",
+    "owned_rows": "points owned per task",
+    "halo_rows": "points read per task",
+    "replication": "points read / points",
+}
+
+
+def plan_lines(summary: dict[str, Any]) -> list[str]:
+    """A plan summary in plain words, one figure a line."""
+    lines = []
+    for key, label in _PLAN_LABELS.items():
+        value = summary[key]
+        if isinstance(value, dict):
+            text = f"{value['min']:g} to {value['max']:g} (median {value['median']:g})"
+        elif value is None:
+            text = "none"
+        elif isinstance(value, float):
+            text = f"{value:.4g}"
+        else:
+            text = str(value)
+        lines.append(f"{label:>28}: {text}")
+    share = summary["heaviest_task_cost"] / summary["total_cost"] if summary["total_cost"] else 0.0
+    lines.append(f"{'largest task':>28}: {share:.1%} of the work")
+    lines.append(f"{'peak memory of a task':>28}: {summary['max_task_memory'] / 2**20:.1f} MiB (estimate)")
+    return lines
 
 
 @main.command("plan")
@@ -400,14 +423,12 @@ def plan_cmd(input: str, eps: float, max_dim: int | None, key: str | None, colum
     if as_json:
         click.echo(json.dumps(summary, indent=2))
         return
-    layout = summary.pop("layout")
-    warnings = summary.pop("warnings")
-    for name, value in summary.items():
-        click.echo(f"{name:>22}: {format_figure(name, value)}")
-    for w in warnings:
+    for line in plan_lines(summary):
+        click.echo(line)
+    for w in summary["warnings"]:
         click.echo(f"warning: {w}")
     click.echo("store layout:")
-    click.echo(layout)
+    click.echo(summary["layout"])
 
 
 @main.command("run")
