@@ -1,7 +1,8 @@
 """The exact Euler characteristic curve and the jump tables it is made of.
 
 This module owns the curve as a mathematical object: a right-continuous integer step
-function on ``[0, eps]`` stored as its distinct change points, together with the exact
+function on a domain ``[start, eps]`` (``start`` is 0 for distance filtrations and may be
+negative for vertex-value filtrations) stored as its distinct change points, together with the exact
 merge of jump tables that the reducer relies on, evaluation and grid sampling, addition
 of partial curves, exact comparison, a platform-stable digest and the curve's own file
 formats (``.npz``, ``.json``, ``.csv``). It is pure numpy: it must not import Dask or
@@ -18,7 +19,7 @@ import math
 import os
 import re
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, overload
 
@@ -98,13 +99,30 @@ def _is_single_table(obj: Any) -> bool:
     return False
 
 
-def _check_eps(eps: Any) -> float:
+def _check_start(start: Any) -> float:
+    if isinstance(start, (bool, np.bool_)) or not isinstance(start, (int, float, np.integer, np.floating)):
+        raise ValueError(f"start must be a real number, got {start!r}")
+    value = float(start)
+    if not math.isfinite(value):
+        raise ValueError(f"start must be finite, got {start!r}")
+    return value + 0.0  # -0.0 -> 0.0, so equal curves have equal bytes
+
+
+def _check_eps(eps: Any, start: float = 0.0) -> float:
     if isinstance(eps, (bool, np.bool_)) or not isinstance(eps, (int, float, np.integer, np.floating)):
         raise ValueError(f"eps must be a real number, got {eps!r}")
     value = float(eps)
-    if not math.isfinite(value) or value < 0.0:
-        raise ValueError(f"eps must be finite and >= 0, got {eps!r}")
+    if not math.isfinite(value) or value < start:
+        # With the default start this reads "eps must be finite and >= 0.0".
+        raise ValueError(f"eps must be finite and >= {start!r} (the domain's start), got {eps!r}")
     return value + 0.0  # -0.0 -> 0.0, so equal curves have equal bytes
+
+
+def _domain_text(start: float, eps: float) -> str:
+    # Distance curves keep their familiar wording; others name both ends of the domain.
+    if start == 0.0:
+        return f"[0, eps] = [0, {eps!r}]"
+    return f"[start, eps] = [{start!r}, {eps!r}]"
 
 
 def _check_max_dim(max_dim: Any) -> int | None:
@@ -265,22 +283,28 @@ def merge_jumps(
 class Curve:
     """An exact Euler characteristic curve: a right-continuous integer step function.
 
-    The curve equals ``chi[i]`` on ``[values[i], values[i+1])`` and ``chi[-1]`` on
-    ``[values[-1], eps]``. ``values[0]`` is always ``0.0`` (even when ``chi[0] == 0``)
-    and every later entry is a scale where the curve really changes.
+    The curve is defined on its domain ``[start, eps]``. It equals ``chi[i]`` on
+    ``[values[i], values[i+1])`` and ``chi[-1]`` on ``[values[-1], eps]``. ``values[0]``
+    is always ``start`` (even when ``chi[0] == 0``, e.g. the empty complex before the
+    first vertex of a vertex-value filtration) and every later entry is a scale where
+    the curve really changes.
 
     Parameters
     ----------
     values : array_like of float64
-        Strictly increasing finite scales in ``[0, eps]``, starting at ``0.0``.
+        Strictly increasing finite scales in ``[start, eps]``, starting at ``start``.
     chi : array_like of int
         The curve's value from each scale on; consecutive entries differ.
     eps : float
-        The largest scale of the filtration; the curve is defined on ``[0, eps]``.
+        The upper end of the domain (the largest scale of the filtration); the name is
+        kept from distance filtrations, where the domain is ``[0, eps]``.
     max_dim : int or None
         Simplex dimension cap, or None for none.
     n_points : int
         Number of points (vertices) the curve counts; partial curves count theirs.
+    start : float, keyword only, default 0.0
+        The lower end of the domain: 0 for distance filtrations, the smallest value of a
+        vertex-value or edge-weight filtration otherwise (may be negative).
 
     Raises
     ------
@@ -299,9 +323,11 @@ class Curve:
     eps: float
     max_dim: int | None
     n_points: int
+    start: float = field(default=0.0, kw_only=True)
 
     def __post_init__(self) -> None:
-        eps = _check_eps(self.eps)
+        start = _check_start(self.start)
+        eps = _check_eps(self.eps, start)
         max_dim = _check_max_dim(self.max_dim)
         n_points = _check_n_points(self.n_points)
         values = _as_scales(self.values, "values")
@@ -309,10 +335,10 @@ class Curve:
         if values.shape != chi.shape:
             raise ValueError(f"values has {values.shape[0]} entries but chi has {chi.shape[0]}")
         if values.size == 0:
-            raise ValueError("a curve needs at least the entry at scale 0.0")
-        if values[0] != 0.0:
-            raise ValueError(f"values[0] must be 0.0, got {values[0]!r}")
-        if np.signbit(values[0]):
+            raise ValueError(f"a curve needs at least the entry at scale {start!r} (the domain's start)")
+        if values[0] != start:
+            raise ValueError(f"values[0] must be {start!r} (the domain's start), got {values[0]!r}")
+        if np.signbit(values[0]) and start == 0.0:
             values = np.array(values, copy=True)
             values[0] = 0.0
         if values.size > 1:
@@ -337,6 +363,12 @@ class Curve:
         object.__setattr__(self, "eps", eps)
         object.__setattr__(self, "max_dim", max_dim)
         object.__setattr__(self, "n_points", n_points)
+        object.__setattr__(self, "start", start)
+
+    @property
+    def domain(self) -> tuple[float, float]:
+        """The interval ``(start, eps)`` on which the curve is defined (both ends included)."""
+        return (self.start, self.eps)
 
     # ------------------------------------------------------------------ building
 
@@ -349,19 +381,20 @@ class Curve:
         eps: float,
         max_dim: int | None,
         n_points: int,
+        start: float = 0.0,
     ) -> Curve:
         """Build a curve from a jump table (unsorted, duplicates allowed).
 
-        The table already holds the vertex count as a jump at ``0.0``; the curve is its
-        cumulative sum.
+        The curve is the table's cumulative sum from ``start`` on (0 before the first
+        jump); a distance filtration's table holds the vertex count as a jump at ``0.0``.
 
         Parameters
         ----------
         values : array_like of float
-            Scale of each jump, each in ``[0, eps]``.
+            Scale of each jump, each in ``[start, eps]``.
         jumps : array_like of int
             Integer jump at each scale.
-        eps, max_dim, n_points
+        eps, max_dim, n_points, start
             As for `Curve`.
 
         Returns
@@ -371,19 +404,20 @@ class Curve:
         Raises
         ------
         ValueError
-            If a scale is negative, above ``eps`` or not finite.
+            If a scale lies outside ``[start, eps]`` or is not finite.
 
         Examples
         --------
         >>> Curve.from_jumps([0.5, 0.0], [-1, 2], eps=1.0, max_dim=1, n_points=2).chi.tolist()
         [2, 1]
         """
-        eps_f = _check_eps(eps)
+        start_f = _check_start(start)
+        eps_f = _check_eps(eps, start_f)
         v = _as_scales(values, "scales")
-        if v.size and (v.min() < 0.0 or v.max() > eps_f):
-            bad = v[(v < 0.0) | (v > eps_f)][0]
+        if v.size and (v.min() < start_f or v.max() > eps_f):
+            bad = v[(v < start_f) | (v > eps_f)][0]
             raise ValueError(
-                f"jump at scale {bad!r} lies outside the allowed range [0, eps] = [0, {eps_f!r}]"
+                f"jump at scale {float(bad)!r} lies outside the allowed range {_domain_text(start_f, eps_f)}"
             )
         j = _as_counts(jumps, "jumps")
         if v.shape == j.shape and (v.size < 2 or (v[1:] > v[:-1]).all()) and j.all():
@@ -391,24 +425,26 @@ class Curve:
             merged_v, merged_j = v + 0.0, j  # + 0.0 folds -0.0 into 0.0 (and copies)
         else:
             merged_v, merged_j = merge_jumps(v, j)
-        if merged_v.size == 0 or merged_v[0] != 0.0:
-            merged_v = np.concatenate(([0.0], merged_v))
+        if merged_v.size == 0 or merged_v[0] != start_f:
+            merged_v = np.concatenate(([start_f], merged_v))
             merged_j = np.concatenate((np.zeros(1, np.int64), merged_j))
         chi = np.cumsum(merged_j, dtype=np.int64)
         merged_v.setflags(write=False)
         chi.setflags(write=False)
-        return cls(merged_v, chi, eps_f, max_dim, n_points)
+        return cls(merged_v, chi, eps_f, max_dim, n_points, start=start_f)
 
     @classmethod
-    def zero(cls, *, eps: float, max_dim: int | None) -> Curve:
-        """The curve of no points: 0 everywhere, the neutral element of ``+``."""
-        return cls(np.zeros(1, np.float64), np.zeros(1, np.int64), eps, max_dim, 0)
+    def zero(cls, *, eps: float, max_dim: int | None, start: float = 0.0) -> Curve:
+        """The curve of no points on ``[start, eps]``: 0 everywhere, the neutral element of ``+``."""
+        start_f = _check_start(start)
+        return cls(np.full(1, start_f, np.float64), np.zeros(1, np.int64), eps, max_dim, 0, start=start_f)
 
     def jumps(self) -> tuple[np.ndarray, np.ndarray]:
         """Return the curve's jump table ``(values, jumps)`` with ``jumps[0] == chi[0]``.
 
         ``Curve.from_jumps(*c.jumps(), eps=c.eps, max_dim=c.max_dim,
-        n_points=c.n_points) == c`` always holds. The arrays are fresh and writable.
+        n_points=c.n_points, start=c.start) == c`` always holds. The arrays are fresh
+        and writable.
         """
         jumps = np.empty_like(self.chi)
         jumps[0] = self.chi[0]
@@ -424,7 +460,7 @@ class Curve:
 
     @property
     def n_jumps(self) -> int:
-        """Number of scales where the curve changes (``0.0`` counts iff ``chi[0] != 0``)."""
+        """Number of scales where the curve changes (``start`` counts iff ``chi[0] != 0``)."""
         return int(self.values.shape[0]) - (1 if self.chi[0] == 0 else 0)
 
     def _checked_scales(self, t: Any) -> np.ndarray:
@@ -433,7 +469,7 @@ class Curve:
             raise ValueError(f"scales must be real numbers, got dtype {arr.dtype}")
         arr = arr.astype(np.float64, copy=False)
         # NaN fails both comparisons, so it is caught by the negated range test.
-        bad = ~((arr >= 0.0) & (arr <= self.eps))
+        bad = ~((arr >= self.start) & (arr <= self.eps))
         if bad.any():
             if arr.ndim == 0:
                 value, where = arr[()], ""
@@ -443,7 +479,7 @@ class Curve:
                 where = f" (at index {first[0] if len(first) == 1 else first})"
             raise ValueError(
                 f"scale {float(value)!r}{where} is outside the allowed range "
-                f"[0, eps] = [0, {self.eps!r}]"
+                f"{_domain_text(self.start, self.eps)}"
             )
         return arr
 
@@ -459,7 +495,7 @@ class Curve:
         Parameters
         ----------
         t : float or array_like of float
-            Scale(s) in ``[0, eps]``.
+            Scale(s) in the domain ``[start, eps]``.
 
         Returns
         -------
@@ -469,7 +505,8 @@ class Curve:
         Raises
         ------
         ValueError
-            If any scale is NaN, negative or above ``eps``; the message names it.
+            If any scale is NaN or outside ``[start, eps]``; the message names it
+            and the domain.
         """
         arr = self._checked_scales(t)
         idx = np.searchsorted(self.values, arr, side="right") - 1
@@ -478,7 +515,7 @@ class Curve:
         return self.chi[idx]
 
     def sample(self, grid: npt.ArrayLike) -> np.ndarray:
-        """Evaluate the curve on a 1-D grid of scales in ``[0, eps]``.
+        """Evaluate the curve on a 1-D grid of scales in its domain ``[start, eps]``.
 
         Parameters
         ----------
@@ -498,6 +535,11 @@ class Curve:
     # ------------------------------------------------------------------ algebra
 
     def _require_compatible(self, other: Curve) -> None:
+        if self.start != other.start:
+            raise ValueError(
+                f"cannot add curves with different domains: [{self.start!r}, {self.eps!r}] "
+                f"!= [{other.start!r}, {other.eps!r}]"
+            )
         if self.eps != other.eps:
             raise ValueError(f"cannot add curves with different eps: {self.eps!r} != {other.eps!r}")
         if self.max_dim != other.max_dim:
@@ -514,7 +556,12 @@ class Curve:
         v2, j2 = other.jumps()
         values, jumps = merge_jumps([v1, v2], [j1, j2])
         return Curve.from_jumps(
-            values, jumps, eps=self.eps, max_dim=self.max_dim, n_points=self.n_points + other.n_points
+            values,
+            jumps,
+            eps=self.eps,
+            max_dim=self.max_dim,
+            n_points=self.n_points + other.n_points,
+            start=self.start,
         )
 
     def __radd__(self, other: object) -> Curve:
@@ -527,7 +574,8 @@ class Curve:
         if not isinstance(other, Curve):
             return NotImplemented
         return (
-            self.eps == other.eps
+            self.start == other.start
+            and self.eps == other.eps
             and self.max_dim == other.max_dim
             and self.n_points == other.n_points
             and self.values.shape == other.values.shape
@@ -540,15 +588,26 @@ class Curve:
         return hash(self.digest())
 
     def __repr__(self) -> str:
+        if self.start == 0.0:
+            return (
+                f"Curve(eps={self.eps!r}, max_dim={self.max_dim!r}, n_points={self.n_points}, "
+                f"steps={self.values.shape[0]}, chi(0)={int(self.chi[0])}, final={self.final})"
+            )
         return (
-            f"Curve(eps={self.eps!r}, max_dim={self.max_dim!r}, n_points={self.n_points}, "
-            f"steps={self.values.shape[0]}, chi(0)={int(self.chi[0])}, final={self.final})"
+            f"Curve(start={self.start!r}, eps={self.eps!r}, max_dim={self.max_dim!r}, "
+            f"n_points={self.n_points}, steps={self.values.shape[0]}, "
+            f"chi({self.start!r})={int(self.chi[0])}, final={self.final})"
         )
 
     # ------------------------------------------------------------------ identity
 
     def _metadata(self) -> dict[str, Any]:
-        return {"eps": self.eps, "max_dim": self.max_dim, "n_points": self.n_points}
+        meta: dict[str, Any] = {"eps": self.eps, "max_dim": self.max_dim, "n_points": self.n_points}
+        # Written only when it says something: files and digests of distance curves stay
+        # exactly what they were before curves had a start, and readers default it to 0.
+        if self.start != 0.0:
+            meta["start"] = self.start
+        return meta
 
     def digest(self) -> str:
         """Hex SHA-256 of a canonical little-endian encoding of the whole curve.
@@ -557,8 +616,10 @@ class Curve:
         changes it (barring a SHA-256 collision). The encoding does not depend on the
         platform's byte order or on how the arrays are laid out in memory: the 8-byte
         little-endian length of a compact, key-sorted ASCII JSON header (format,
-        version, ``eps`` as ``float.hex``, max_dim, n_points, length), the header, then
-        ``values`` as ``<f8`` and ``chi`` as ``<i8`` bytes.
+        version, ``eps`` as ``float.hex``, max_dim, n_points, length, and ``start`` as
+        ``float.hex`` only when it is not 0), the header, then ``values`` as ``<f8`` and
+        ``chi`` as ``<i8`` bytes. Leaving a zero start out keeps the digests recorded
+        for distance curves valid.
 
         Returns
         -------
@@ -568,16 +629,19 @@ class Curve:
         cached = self.__dict__.get("_digest")
         if cached is not None:
             return str(cached)
+        fields: dict[str, Any] = {
+            "format": CURVE_FORMAT,
+            "version": CURVE_VERSION,
+            # float.hex is exact and locale-free, unlike any decimal rendering.
+            "eps": float(self.eps).hex(),
+            "max_dim": self.max_dim,
+            "n_points": self.n_points,
+            "length": int(self.values.shape[0]),
+        }
+        if self.start != 0.0:
+            fields["start"] = float(self.start).hex()
         header = json.dumps(
-            {
-                "format": CURVE_FORMAT,
-                "version": CURVE_VERSION,
-                # float.hex is exact and locale-free, unlike any decimal rendering.
-                "eps": float(self.eps).hex(),
-                "max_dim": self.max_dim,
-                "n_points": self.n_points,
-                "length": int(self.values.shape[0]),
-            },
+            fields,
             sort_keys=True,
             separators=(",", ":"),
         ).encode("ascii")
@@ -595,6 +659,7 @@ class Curve:
     def to_dict(self) -> dict[str, Any]:
         """A JSON-ready dict: format, version, eps, max_dim, n_points, values, chi.
 
+        ``start`` is present when it is not 0 (a missing ``start`` reads as 0).
         ``json.dumps`` of it round-trips every float exactly.
         """
         return {
@@ -626,7 +691,14 @@ class Curve:
             raise ValueError(f"{source}: lacks {', '.join(missing)}")
         # Element types are left to the validators: a float in chi must be refused, not
         # truncated by a dtype= conversion here.
-        return cls(np.asarray(values), np.asarray(chi), meta["eps"], meta["max_dim"], meta["n_points"])
+        return cls(
+            np.asarray(values),
+            np.asarray(chi),
+            meta["eps"],
+            meta["max_dim"],
+            meta["n_points"],
+            start=meta.get("start", 0.0),
+        )
 
     def save(self, path: PathLike, format: str | None = None) -> Path:
         """Write the curve to ``path``, atomically.
@@ -637,7 +709,7 @@ class Curve:
             Target file; its ending picks the format unless ``format`` is given.
         format : {"npz", "json", "csv"}, optional
             ``npz``: little-endian arrays ``values``, ``chi`` and a JSON ``metadata``
-            string. ``json``: the `to_dict` document. ``csv``: a first line
+            string (``eps``, ``max_dim``, ``n_points``, and ``start`` unless it is 0). ``json``: the `to_dict` document. ``csv``: a first line
             ``# chitally-curve {metadata json}``, the header ``scale,chi``, then one row
             per step (the scale where the curve changes, its value from there on).
 
@@ -757,20 +829,27 @@ def _parse_rows(rows: list[str], name: str, first_line: int) -> tuple[np.ndarray
 # ----------------------------------------------------------------------- grids
 
 
+#: Grids up to this many points are spaced in decimal arithmetic (see `parse_grid`).
+_DECIMAL_GRID = 100_000
+
+
 def parse_grid(text: str) -> np.ndarray:
     """Parse a grid written ``START:STOP:COUNT`` into ``COUNT`` evenly spaced scales.
 
     Parameters
     ----------
     text : str
-        ``START`` and ``STOP`` finite reals with ``0 <= START <= STOP``; ``COUNT`` an
+        ``START`` and ``STOP`` finite reals with ``START <= STOP``; ``COUNT`` an
         integer with ``1 <= COUNT <= MAX_GRID`` (10**7). Both ends are included;
-        ``COUNT == 1`` gives ``[START]``.
+        ``COUNT == 1`` gives ``[START]``. ``START`` may be negative (vertex-value
+        filtrations); whether the grid lies in a curve's domain is checked where the
+        grid meets the curve (`Curve.sample`).
 
     Returns
     -------
     ndarray of float64
-        ``np.linspace(START, STOP, COUNT)``; its last entry is exactly ``STOP``.
+        ``COUNT`` evenly spaced scales from ``START`` to exactly ``STOP``, each the float
+        nearest the decimal value (``np.linspace`` beyond 100,000 points).
 
     Raises
     ------
@@ -810,10 +889,18 @@ def parse_grid(text: str) -> np.ndarray:
         raise ValueError(f"grid {text!r}: COUNT must be >= 1, got {count}")
     if count > MAX_GRID:
         raise ValueError(f"grid {text!r}: COUNT must be at most {MAX_GRID}, got {count}")
-    if start < 0.0:
-        raise ValueError(f"grid {text!r}: START must be >= 0 (scales are distances), got {start!r}")
     if start > stop:
         raise ValueError(f"grid {text!r}: START {start!r} is greater than STOP {stop!r}")
+    if count <= _DECIMAL_GRID:
+        # In decimal arithmetic, so that 0:0.3:4 gives 0.1 and 0.2 (what was typed
+        # means), not the 0.09999999999999999 of a binary step; the ends are exact.
+        from decimal import Decimal, localcontext
+
+        with localcontext() as ctx:
+            ctx.prec = 50
+            a, b = Decimal(parts[0].strip()), Decimal(parts[1].strip())
+            step = (b - a) / (count - 1) if count > 1 else Decimal(0)
+            return np.array([float(a + step * i) for i in range(count)], dtype=np.float64) + 0.0
     return np.linspace(start, stop, count, dtype=np.float64) + 0.0
 
 
