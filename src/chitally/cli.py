@@ -306,7 +306,16 @@ def _print_samples(curve: Any, grid: Any) -> None:
         click.echo(f"{float(t)!r},{int(v)}")
 
 
-def _report(report: Any, grid: Any = None, out: str | None = None, fmt: str | None = None) -> None:
+def _emit_curve(curve: Any, grid: Any, out: str | None, fmt: str | None) -> None:
+    """Write a curve (or its samples on `grid`) to `out`, or print the samples."""
+    if out is not None:
+        _save(curve, out, fmt, grid)
+        say(f"wrote {out}")
+    elif grid is not None:
+        _print_samples(curve, grid)
+
+
+def _report(report: Any, grid: Any = None) -> None:
     say(f"{report.url}: {report.done}/{report.n_tasks} tasks done, {report.computed} computed now, "
         f"{len(report.failed)} failed, {report.seconds:.1f} s")
     if report.set_aside:
@@ -320,17 +329,10 @@ def _report(report: Any, grid: Any = None, out: str | None = None, fmt: str | No
         c = report.result
         say(f"curve: {c.n_jumps} jumps, chi(0) = {c.at(0.0)}, chi(eps) = {c.final}, "
             f"digest {c.digest()[:16]}")
-        if out is not None:
-            c.save_samples(out, grid, format=fmt) if grid is not None else c.save(out, format=fmt)
-            say(f"wrote {out}")
-        elif grid is not None:
-            _print_samples(c, grid)
+        _emit_curve(c, grid, None, None)
     else:
         m = report.result
         say(f"feature matrix: {m.values.shape[0]} rows x {m.values.shape[1]} grid points")
-        if out is not None:
-            m.save(out, format=fmt)
-            say(f"wrote {out}")
     say(f"export: chitally export {report.url} --out FILE")
 
 
@@ -362,11 +364,7 @@ def curve_cmd(input: str, eps: float, max_dim: int | None, key: str | None, colu
         f"{params.max_dim if params.max_dim is not None else 'none'}: {stats.edges} edges; "
         f"{curve.n_jumps} jumps, chi(0) = {curve.at(0.0)}, chi(eps) = {curve.final}; "
         f"{stats.seconds_graph + stats.seconds_count:.2f} s")
-    if out is not None:
-        curve.save_samples(out, grid_values, format=fmt) if grid_values is not None else curve.save(out, format=fmt)
-        say(f"wrote {out}")
-    elif grid_values is not None:
-        _print_samples(curve, grid_values)
+    _emit_curve(curve, grid_values, out, fmt)
 
 
 _PLAN_LABELS = {
@@ -594,7 +592,7 @@ def export_cmd(run: str, fmt: str | None, grid: str | None, out: str | None) -> 
     say(f"wrote {out}")
 
 
-def _save(result: Any, path: Any, fmt: str, grid: Any) -> None:
+def _save(result: Any, path: Any, fmt: str | None, grid: Any) -> None:
     from .curve import Curve
 
     if isinstance(result, Curve):
