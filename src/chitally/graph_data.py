@@ -204,7 +204,8 @@ def _vertex_ids(arr: np.ndarray, where: str) -> np.ndarray:
         value = float(arr[row, col])
         if math.isfinite(value) and value == math.floor(value) and value > MAX_VERTICES:
             raise InputError(f"{where}: row {row} has vertex id {value!r}, beyond the {MAX_VERTICES} one graph may hold")
-        raise InputError(f"{where}: row {row} has vertex id {value!r}; vertex ids must be integers >= 0")
+        shown = int(value) if math.isfinite(value) and value == math.floor(value) else value
+        raise InputError(f"{where}: row {row} has vertex id {shown!r}; vertex ids must be integers >= 0")
     return arr.astype(np.int64)
 
 

@@ -336,7 +336,7 @@ def read_tu(folder: str | os.PathLike[str], name: str | None = None) -> GraphCol
     indicator = _one_column(indicator_t, p("graph_indicator"))
     if (np.floor(indicator) != indicator).any() or (indicator < 1).any():
         row = int(np.argmax((np.floor(indicator) != indicator) | (indicator < 1)))
-        raise InputError(f"{p('graph_indicator')}: line {row + 1} is {indicator[row]!r}; graph ids are integers from 1")
+        raise InputError(f"{p('graph_indicator')}: line {row + 1} is {indicator[row]:g}; graph ids are integers from 1")
     indicator = indicator.astype(np.int64) - 1
     N = indicator.shape[0]
     G = int(indicator.max()) + 1 if N else 0
@@ -353,8 +353,12 @@ def read_tu(folder: str | os.PathLike[str], name: str | None = None) -> GraphCol
         bad = (np.floor(A) != A) | (A < 1) | (A > N)
         if bad.any():
             row, col = (int(x) for x in np.argwhere(bad)[0])
-            raise InputError(f"{p('A')}: line {row + 1} has node id {A[row, col]!r}; node ids are integers 1..{N}")
+            raise InputError(f"{p('A')}: line {row + 1} has node id {A[row, col]:g}; node ids are integers 1..{N}")
     ends = A.astype(np.int64) - 1 if A.shape[0] else np.empty((0, 2), dtype=np.int64)
+    loops = ends[:, 0] == ends[:, 1]
+    if loops.any():
+        row = int(np.argmax(loops))
+        raise InputError(f"{p('A')}: line {row + 1} is a self-loop at node {int(ends[row, 0]) + 1}; a clique complex has no loops")
     g_of_edge = indicator[ends[:, 0]]
     across = g_of_edge != indicator[ends[:, 1]]
     if across.any():
