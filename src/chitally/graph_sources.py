@@ -109,7 +109,7 @@ def _text_source(source: Any) -> _Source:
 
 
 def _table(src: _Source) -> np.ndarray:
-    return _read_text(src, None, None, None)
+    return _read_text(src, None, None, None)[0]
 
 
 def read_edge_list(source: str | os.PathLike[str], *, n: int | None = None) -> GraphData:
