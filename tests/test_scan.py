@@ -1,4 +1,4 @@
-"""`chitally.scan.scan_eps`: sampled degrees, estimates, bad input.
+"""`chitally.scan.scan_eps` and `chitally scan`: sampled degrees, estimates, bad input.
 
 Sampled figures are checked exactly against numpy brute force by the distance rule
 (`references.pair_lengths`: squared differences summed in coordinate order, sqrt); the
@@ -14,9 +14,11 @@ import math
 import networkx as nx
 import numpy as np
 import pytest
+from click.testing import CliRunner
 from references import pair_lengths
 from scipy.spatial import cKDTree
 
+from chitally.cli import main
 from chitally.cover import build_cover
 from chitally.planner import make_plan
 from chitally.scan import DEGREE_TARGETS, ScanReport, default_eps_range, scan_eps
@@ -234,3 +236,35 @@ def test_bad_input_is_one_line(points, eps, kwargs):
 def test_no_default_range_for_coincident_points():
     with pytest.raises(InputError, match="coincides"):
         scan_eps(np.zeros((10, 2)), timing_seconds=0)
+
+
+# --------------------------------------------------------------------------- the command
+
+
+def _untimed(d: dict) -> dict:
+    """A scan's JSON without the figures that depend on the kernel's speed."""
+    for row in d["rows"]:
+        row["runs"] = [{k: v for k, v in run.items() if k in ("max_dim", "cost")} for run in row["runs"]]
+    return d
+
+
+def test_cli_scan(tmp_path):
+    pts = torus(3000, seed=8)
+    src = tmp_path / "points.npy"
+    np.save(src, pts)
+    runner = CliRunner()
+    res = runner.invoke(main, ["scan", str(src), "--eps", "0.05,0.1", "--max-dim", "2", "--sample", "400",
+                               "--seed", "3", "--json"])
+    assert res.exit_code == 0, res.output
+    expected = scan_eps(pts, [0.05, 0.1], max_dim=2, sample=400, seed=3, timing_seconds=0).as_dict()
+    assert _untimed(json.loads(res.output)) == _untimed(expected)
+
+    res = runner.invoke(main, ["scan", str(src), "--eps-range", "0.05:0.2:3", "--sample", "400"])
+    assert res.exit_code == 0, res.output
+    assert "0.05 " in res.output and "0.1 " in res.output and "0.2 " in res.output
+    assert "time, no cap" in res.output
+
+    for bad in (["--eps", "0,0.1"], ["--eps-range", "0.1:0.05:3"], ["--eps-range", "0.1:0.2"],
+                ["--eps", "0.1", "--eps-range", "0.1:0.2:2"], ["--sample", "0", "--eps", "0.1"]):
+        res = runner.invoke(main, ["scan", str(src), *bad])
+        assert res.exit_code == 2, (bad, res.output)

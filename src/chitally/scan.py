@@ -82,8 +82,8 @@ _TIMING_DEGREE_LIMIT = 2000
 _MEMORY_CENTRES = 4
 
 # Triangles are counted at the sampled rows only while the pairs of neighbours to test
-# (sum of d(d-1)/2 over the sample) stay below this: about a tenth of a second.
-_TRIANGLE_PAIR_LIMIT = 5e7
+# (sum of d(d-1)/2 over the sample) stay below this: well under a second.
+_TRIANGLE_PAIR_LIMIT = 2e7
 
 # A cKDTree count at eps * (1 - QUERY_SLACK) never holds a pair the rule refuses, and one
 # at metric.query_radius(eps) never misses one the rule accepts.
@@ -312,15 +312,15 @@ def _sample_degrees(tree: cKDTree, x: np.ndarray, rows: np.ndarray, eps: float, 
 
 
 def _neighbour_lists(tree: cKDTree, x: np.ndarray, rows: np.ndarray, eps: float, workers: int):
-    """CSR (offsets, ids) of each row's neighbours within eps by the rule, self excluded."""
+    """Each row's neighbours within eps by the rule, self excluded, as flat arrays:
+    (owner: index into rows, neighbour id, distance)."""
     lists = tree.query_ball_point(x[rows], query_radius(eps), workers=workers)
     sizes = np.array([len(c) for c in lists], dtype=np.int64)
     owner = np.repeat(np.arange(rows.shape[0]), sizes)
-    cand = np.fromiter((j for c in lists for j in c), dtype=np.int64, count=int(sizes.sum()))
-    keep = (lengths(pair_squared_distances(x, rows[owner], x, cand)) <= eps) & (cand != rows[owner])
-    offsets = np.zeros(rows.shape[0] + 1, dtype=np.int64)
-    np.cumsum(np.bincount(owner[keep], minlength=rows.shape[0]), out=offsets[1:])
-    return offsets, cand[keep]
+    cand = np.concatenate([np.asarray(c, dtype=np.int64) for c in lists]) if sizes.sum() else sizes[:0]
+    dist = lengths(pair_squared_distances(x, rows[owner], x, cand))
+    keep = (dist <= eps) & (cand != rows[owner])
+    return owner[keep], cand[keep], dist[keep]
 
 
 @nb.njit(nogil=True, cache=True)
@@ -338,14 +338,24 @@ def _link_edges(x, offsets, nbrs, eps):
     return out
 
 
-def _triangles(tree, x, rows, deg, eps, n_points, workers) -> float | None:
-    pairs = float(np.sum(deg.astype(np.float64) * (deg - 1) / 2))
-    if pairs > _TRIANGLE_PAIR_LIMIT:
-        return None
-    offsets, nbrs = _neighbour_lists(tree, x, rows, eps, workers)
-    t = _link_edges(x, offsets, nbrs, eps)
-    # sum, then scale: exactly the triangle count when every row is sampled
-    return float(t.sum()) * (n_points / rows.shape[0]) / 3.0
+def _triangles(tree, x, rows, eps_list, degrees, n_points, workers) -> list[float | None]:
+    """``N * mean(t) / 3`` per eps, t the triangles at each sampled row; None where the
+    pairs of neighbours to test exceed `_TRIANGLE_PAIR_LIMIT`. The neighbour lists are
+    fetched once, at the densest scale counted, and cut down for the others."""
+    pairs = [float(np.sum(d.astype(np.float64) * (d - 1) / 2)) for d in degrees]
+    counted = [i for i, p in enumerate(pairs) if p <= _TRIANGLE_PAIR_LIMIT]
+    out: list[float | None] = [None] * len(eps_list)
+    if not counted:
+        return out
+    owner, nbrs, dist = _neighbour_lists(tree, x, rows, float(eps_list[counted[-1]]), workers)
+    for i in counted:
+        keep = dist <= eps_list[i]
+        offsets = np.zeros(rows.shape[0] + 1, dtype=np.int64)
+        np.cumsum(np.bincount(owner[keep], minlength=rows.shape[0]), out=offsets[1:])
+        t = _link_edges(x, offsets, np.ascontiguousarray(nbrs[keep]), float(eps_list[i]))
+        # sum, then scale: exactly the triangle count when every row is sampled
+        out[i] = float(t.sum()) * (n_points / rows.shape[0]) / 3.0
+    return out
 
 
 # --------------------------------------------------------------------------- nearest neighbours
@@ -421,12 +431,17 @@ class _Timer:
         # cap -> (seconds/unit, seconds/edge, eps): the densest scale timed so far
         self.rate: dict[int | None, tuple[float, float, float]] = {}
         self.warm: set[int | None] = set()
+        self.nearest: dict[int, tuple[np.ndarray, np.ndarray]] = {}
 
     def _patch(self, centre: int, eps: float, k: int):
         x = self.x
-        dist, owned = self.tree.query(x[centre], k=k)
-        owned = np.atleast_1d(np.asarray(owned, dtype=np.int64))
-        reach = float(np.max(dist)) + eps
+        if centre not in self.nearest:
+            # the nearest rows once per centre, as many as any patch may own
+            dist, idx = self.tree.query(x[centre], k=min(x.shape[0], _MAX_PATCH_ROWS))
+            self.nearest[centre] = (np.atleast_1d(dist), np.atleast_1d(np.asarray(idx, dtype=np.int64)))
+        dist, idx = self.nearest[centre]
+        owned = idx[:k]
+        reach = float(dist[k - 1]) + eps
         halo = np.asarray(self.tree.query_ball_point(x[centre], query_radius(reach)), dtype=np.int64)
         rest = np.setdiff1d(halo, owned)
         own_xyz = x[owned]
@@ -435,11 +450,11 @@ class _Timer:
             rest_xyz = x[rest]
             parts.append(rest_xyz[leaf_order(rest_xyz)])
         coords = np.ascontiguousarray(np.concatenate(parts))
-        # Rates need no exact rule: cKDTree's own counts are close enough here.
-        deg = self.tree.query_ball_point(own_xyz, query_radius(eps), return_length=True, workers=self.workers) - 1
-        sub = cKDTree(coords)
-        edges = (int(sub.count_neighbors(sub, query_radius(eps))) - coords.shape[0]) // 2
-        return coords, owned.shape[0], deg, edges
+        # Rates need no exact rule: cKDTree's own pairs are close enough here. The halo
+        # holds every neighbour of an owned row, so their degrees in it are exact.
+        pairs = cKDTree(coords).query_pairs(query_radius(eps), output_type="ndarray")
+        deg = np.bincount(pairs.ravel(), minlength=coords.shape[0])[:k]
+        return coords, k, deg, pairs.shape[0]
 
     @staticmethod
     def _run(coords: np.ndarray, eps: float, cap: int | None, owned: int) -> tuple[float, float]:
@@ -461,8 +476,10 @@ class _Timer:
         guess = max(known[0], known[1]) * 4.0 if known else _PRIOR_SECONDS_PER_UNIT
         k = int(min(top, max(_MIN_PATCH_ROWS, budget / 4.0 / (guess * per_row))))
         if cap not in self.warm:
-            # the first call loads the compiled kernel: not part of any rate
-            count_jumps(np.ascontiguousarray(self.x[:min(n, 8)]), eps, cap, threads=1)
+            # The first calls load the compiled kernel, which is not part of any rate: a
+            # small clique near the centre takes every path a patch will.
+            offsets = np.random.default_rng(0).uniform(-0.2 * eps, 0.2 * eps, (12, self.x.shape[1]))
+            count_jumps(np.ascontiguousarray(self.x[centre] + offsets), eps, cap, owned=(0, 6), threads=1)
             self.warm.add(cap)
         spent = 0.0
         for _ in range(3):
@@ -607,11 +624,18 @@ def scan_eps(
     centres = rows[rng.permutation(n_s)[:_MEMORY_CENTRES]]
     if task_rows < n:
         patch_radius = [float(np.max(tree.query(x[c], k=task_rows)[0])) for c in centres]
-    timer = _Timer(tree, x, timing_seconds, len(eps_list) * len(caps), threads)
 
+    degrees = []
+    for eps in eps_list:
+        degrees.append(_sample_degrees(tree, x, rows, float(eps), threads))
+        if given is None and degrees[-1].mean() > DEFAULT_DEGREE_LIMIT:
+            break
+    eps_list = eps_list[: len(degrees)]
+    triangles = _triangles(tree, x, rows, eps_list, degrees, n, threads)
+
+    timer = _Timer(tree, x, timing_seconds, len(eps_list) * len(caps), threads)
     out: list[ScaleEstimate] = []
-    for eps in (float(e) for e in eps_list):
-        deg = _sample_degrees(tree, x, rows, eps, threads)
+    for eps, deg, tri in zip((float(e) for e in eps_list), degrees, triangles):
         mean = float(deg.mean())
         se = _standard_error(deg, n)
         max_deg = int(deg.max())
@@ -645,13 +669,11 @@ def scan_eps(
             eps=eps, mean_degree=mean, mean_degree_se=se, max_degree=max_deg,
             isolated=float(np.count_nonzero(deg == 0)) / n_s,
             edges=float(deg.sum()) * (n / n_s) / 2.0, edges_se=None if se is None else n * se / 2.0,
-            triangles=_triangles(tree, x, rows, deg, eps, n, threads),
+            triangles=tri,
             task_rows=task_rows, task_halo_rows=halo,
             task_memory=task_memory, process_memory=process_memory,
             runs=tuple(runs), degrees=deg,
         ))
-        if given is None and mean > DEFAULT_DEGREE_LIMIT:
-            break
     return ScanReport(
         n_points=int(n), dim=int(m), seed=seed, sample_rows=rows, nn_quantiles=quantiles,
         degree_reached=reached, default_range=given is None, rows=tuple(out),
