@@ -29,7 +29,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import math
 import os
 import subprocess
 import sys
@@ -42,10 +41,10 @@ from scipy.spatial import cKDTree
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "src"))
 
-from chitally.cover import build_cover  # noqa: E402
-from chitally.kernel import count_jumps  # noqa: E402
-from chitally.planner import make_plan  # noqa: E402
-from chitally.scan import scan_eps  # noqa: E402
+from chitally.cover import build_cover
+from chitally.kernel import count_jumps
+from chitally.planner import make_plan
+from chitally.scan import scan_eps
 
 
 def torus(n: int, rng: np.random.Generator, big: float = 1.0, small: float = 0.3) -> np.ndarray:
@@ -186,7 +185,7 @@ def main() -> None:
                              "timed_rows": est.timed_rows, "tasks": n_tasks, "tasks_seconds": cut,
                              "in_process": got, "estimated_memory": r.process_memory})
                 mib = 2**20
-                print(f"{r.eps:9.4g} {str(cap):>6} {est.seconds:9.3g}s {n_tasks:6d} {cut:8.3g}s "
+                print(f"{r.eps:9.4g} {cap!s:>6} {est.seconds:9.3g}s {n_tasks:6d} {cut:8.3g}s "
                       f"{est.seconds / cut:6.2f} {got['seconds']:9.3g}s "
                       f"{est.seconds / got['seconds']:6.2f} {r.process_memory / mib:9.0f}Mi "
                       f"{got['peak_above_start'] / mib:7.0f}Mi "

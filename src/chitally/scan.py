@@ -16,7 +16,6 @@ Pure: numpy, scipy and the project's compiled rule; no files, no Dask, no Zarr.
 from __future__ import annotations
 
 import math
-import time
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -27,7 +26,15 @@ from scipy.spatial import cKDTree
 
 from .inprocess import leaf_order
 from .kernel import count_jumps
-from .metric import QUERY_SLACK, lengths, pair_squared_distances, query_radius, squared_distance, within
+from .metric import (
+    QUERY_SLACK,
+    lengths,
+    pair_squared_distances,
+    query_radius,
+    squared_distance,
+    within,
+)
+
 # The planner's models are private functions of planner.py; they are imported, not
 # copied, so the scan predicts exactly what `chitally plan` would charge per row.
 from .planner import (
@@ -72,8 +79,9 @@ DEFAULT_TIMING_SECONDS = 2.0
 # A timing patch owns at most one typical task's rows, at least a few rows.
 _MIN_PATCH_ROWS = 16
 _MAX_PATCH_ROWS = DEFAULT_TASK_ROWS
-# First guess of the kernel's seconds per cost unit, before anything was timed: about
-# 4x the slowest rate measured (uncapped, small patches), so the first patch is small.
+# First guess of the kernel's seconds per cost unit and per edge, before anything was
+# timed: about the slowest rates measured (edges, 1e-7 to 2e-7 s), so that the first
+# patch is small rather than long.
 _PRIOR_SECONDS_PER_UNIT = 2e-7
 # Above this degree a single row's halo holds millions of edges: not timed, scaled from
 # the densest scale that was.
@@ -103,9 +111,10 @@ class RunEstimate:
         ``d + 1`` with ``max_dim <= 1``), N times the sampled rows' mean.
     seconds : float or None
         Estimated time on one core of the whole run cut into the planner's tasks:
-        ``cost * seconds_per_unit + edges * (task_halo_rows / task_rows) *
+        ``cost * seconds_per_unit + max(edges, N) * (task_halo_rows / task_rows) *
         seconds_per_edge`` (every task finds the edges of its halo); None when nothing
-        was timed.
+        was timed. A run of a large cloud in one process (`euler_curve`) is slower per
+        edge: measured up to about twice this at 10^6 points.
     seconds_per_unit : float or None
         The kernel's measured counting time per cost unit.
     seconds_per_edge : float or None
@@ -382,7 +391,7 @@ def _degree_reached(tree, x, rows, dist, target, workers) -> float:
     is the T-th smallest such distance, T = ceil(target * n). The k nearest distances
     hold them all unless a row has all k of them <= v; such rows get their full list.
     """
-    n, k = dist.shape
+    n = dist.shape[0]
     need = math.ceil(target * n)
     v = float(np.partition(dist.ravel(), need - 1)[need - 1])
     full = np.flatnonzero(dist[:, -1] <= v)
@@ -765,9 +774,11 @@ def _table(report: ScanReport) -> str:
         "sampled rows. alone: sampled points with no neighbour. ±: one standard error of the estimate.",
         "edges, triangles: estimated for the whole cloud (k, M, G: thousand, million, billion;",
         "- where too dense to count quickly).",
-        "time: estimated time of the whole run on one core, from timing the counting on a patch of",
-        "these points at that eps (divide by the cores you will use); ~ when that eps was too dense",
-        "to time and the rate of a smaller eps was used (likely too low); - when nothing was timed.",
+        "time: estimated time of the whole run on one core (divide by the cores you will use), from",
+        "timing the counting on a patch of these points at that eps; for a run cut into tasks, as",
+        "`chitally run` does (one process, `chitally curve`, may take up to twice as long on a large",
+        "cloud). ~: that eps was too dense to time and the rate of a smaller eps was used (likely",
+        "too low). -: not timed.",
     ]
     if report.rows:
         lines.append(
