@@ -201,6 +201,18 @@ def test_timing_gives_seconds_from_the_measured_rates():
     assert all(r.seconds is None and r.timed_rows == 0 for r in untimed.rows[0].runs)
 
 
+def test_too_dense_to_time_uses_the_rate_of_a_smaller_eps():
+    pts = torus(3000, seed=7)
+    # eps 3 exceeds the torus's diameter (2.6): every point is a neighbour of every other
+    rep = scan_eps(pts, [0.05, 3.0], sample=300, timing_seconds=0.3)
+    timed, dense = rep.rows
+    assert dense.mean_degree == 2999 and dense.triangles is None
+    for a, b in zip(timed.runs, dense.runs):
+        assert a.timed_at == 0.05 and a.timed_rows > 0
+        assert (b.timed_at, b.timed_rows, b.seconds_per_unit) == (0.05, 0, a.seconds_per_unit)
+    assert "~" in rep.table()
+
+
 def test_table_and_json(report):
     text = report.table()
     for row in report.rows:
