@@ -601,6 +601,54 @@ def _save(result: Any, path: Any, fmt: str | None, grid: Any) -> None:
         result.save(path, format=fmt)
 
 
+def _scan_eps_values(eps: str | None, eps_range: str | None) -> list[float] | None:
+    """The scales `chitally scan` was given: a comma list, LO:HI:COUNT, or None for its default."""
+    if eps is not None and eps_range is not None:
+        raise click.UsageError("give --eps or --eps-range, not both")
+    if eps is not None:
+        try:
+            return [float(part) for part in eps.split(",")]
+        except ValueError:
+            raise click.BadParameter(f"{eps!r} is not a comma-separated list of numbers", param_hint="--eps") from None
+    if eps_range is None:
+        return None
+    parts = eps_range.split(":")
+    try:
+        lo, hi, count = float(parts[0]), float(parts[1]), int(parts[2])
+        if len(parts) != 3:
+            raise ValueError
+    except (ValueError, IndexError):
+        raise click.BadParameter(f"{eps_range!r} is not LO:HI:COUNT", param_hint="--eps-range") from None
+    if not (0 < lo <= hi < float("inf")) or count < 1 or (count > 1 and lo == hi):
+        raise click.BadParameter(f"{eps_range!r}: need 0 < LO < HI and COUNT >= 1", param_hint="--eps-range")
+    return [float(v) for v in np.geomspace(lo, hi, count)]
+
+
+@main.command("scan")
+@input_arg
+@click.option("--eps", "eps", default=None, help="Scales to scan, comma-separated, e.g. 0.1,0.2,0.4.")
+@click.option("--eps-range", default=None,
+              help="LO:HI:COUNT: COUNT scales from LO to HI, evenly spaced on a log scale "
+                   "(default: around the median distance to the nearest neighbour).")
+@click.option("--max-dim", type=int, default=None,
+              help="Also estimate a run counting simplices up to this dimension (a run without cap is always estimated).")
+@click.option("--sample", type=int, default=None, help="Rows to sample; their degrees are exact (default 2000).")
+@click.option("--seed", type=int, default=0, show_default=True, help="Seed of the sample.")
+@key_opt
+@click.option("--json", "as_json", is_flag=True, help="Print the figures as JSON.")
+@_guarded
+def scan_cmd(input: str, eps: str | None, eps_range: str | None, max_dim: int | None, sample: int | None,
+             seed: int, key: str | None, as_json: bool) -> None:
+    """Which eps? Degrees, edges, time and memory of a run at several scales, estimated from a sample; writes nothing."""
+    from .scan import scan_eps
+
+    values = _scan_eps_values(eps, eps_range)
+    more = {} if sample is None else {"sample": sample}
+    report = scan_eps(read_points(input, key=key), values, max_dim=max_dim, seed=seed,
+                      threads=os.cpu_count() or 1, **more)
+    click.echo(json.dumps(report.as_dict(), indent=2) if as_json else report.table())
+
+
 @main.command("demo")
 @click.option("--points", "n_points", type=int, default=20000, show_default=True, help="Points to generate.")
 @click.option("--out", "out", default="chitally-demo.run", show_default=True, help="Run store of the demo.")

@@ -207,6 +207,32 @@ def _task_halo(x, ball_offsets, centre_xyz, nb_offsets, nb_balls, row_start, row
     return halo
 
 
+def _row_cost(deg: np.ndarray, max_dim: int | None) -> np.ndarray:
+    """The cost model: float64 cost of each row from its eps-degree (see `make_plan`).
+
+    ``d**2 + 1``, or ``d + 1`` when ``max_dim <= 1``. Costs are integers below 2**53, so
+    every sum of them is exact in float64.
+    """
+    row_cost = np.asarray(deg).astype(np.float64)
+    if max_dim is None or max_dim > 1:
+        row_cost *= row_cost
+    row_cost += 1.0
+    return row_cost
+
+
+def _task_memory(halo_rows, dim: int, halo_edges, owned_edges, max_degree):
+    """The memory model: estimated peak bytes of a task's kernel (see `make_plan`).
+
+    Works elementwise on int64 arrays or on Python ints.
+    """
+    return (
+        halo_rows * (dim * 8 + 8)
+        + halo_edges * 24
+        + owned_edges * 16
+        + 2 * ((max_degree * max_degree + 7) // 8)
+    )
+
+
 def _validate(x: np.ndarray, cover: Cover, eps: float, max_dim: int | None) -> None:
     if x.ndim != 2 or x.shape[0] < 1 or x.shape[1] < 1:
         raise ValueError(f"points_sorted must be a non-empty (N, m) array, got shape {x.shape}")
@@ -304,11 +330,7 @@ def make_plan(
     reach = query_radius(float(cover.radius) + eps)
 
     deg, up = _degrees(x, ball_offsets, centre_xyz, nb_offsets, nb_balls, reach, eps)
-    # Costs are integers below 2**53, so every sum of them is exact in float64.
-    row_cost = deg.astype(np.float64)
-    if max_dim is None or max_dim > 1:
-        row_cost *= row_cost
-    row_cost += 1.0
+    row_cost = _row_cost(deg, max_dim)
     total = float(row_cost.sum())
     if task_cost is None:
         target = max(total / DEFAULT_MIN_TASKS, total * DEFAULT_TASK_ROWS / n)
@@ -337,12 +359,7 @@ def make_plan(
     del up
     halo_edges = np.array([int(deg[h].sum()) for h in results], dtype=np.int64)
     max_deg = np.maximum.reduceat(deg, starts)
-    memory = (
-        halo_len * (dim * 8 + 8)
-        + halo_edges * 24
-        + owned_edges * 16
-        + 2 * ((max_deg * max_deg + 7) // 8)
-    ).astype(np.int64)
+    memory = _task_memory(halo_len, dim, halo_edges, owned_edges, max_deg).astype(np.int64)
 
     # Heaviest first so the long tasks start early and the tail of the run is short.
     rank = np.lexsort((starts, -cost))
