@@ -601,7 +601,7 @@ def _save(result: Any, path: Any, fmt: str | None, grid: Any) -> None:
         result.save(path, format=fmt)
 
 
-def _scan_eps_values(eps: str | None, eps_range: str | None) -> list[float] | None:
+def _scan_eps_values(eps: str | None, eps_range: str | None) -> Any:
     """The scales `chitally scan` was given: a comma list, LO:HI:COUNT, or None for its default."""
     if eps is not None and eps_range is not None:
         raise click.UsageError("give --eps or --eps-range, not both")
@@ -621,6 +621,8 @@ def _scan_eps_values(eps: str | None, eps_range: str | None) -> list[float] | No
         raise click.BadParameter(f"{eps_range!r} is not LO:HI:COUNT", param_hint="--eps-range") from None
     if not (0 < lo <= hi < float("inf")) or count < 1 or (count > 1 and lo == hi):
         raise click.BadParameter(f"{eps_range!r}: need 0 < LO < HI and COUNT >= 1", param_hint="--eps-range")
+    import numpy as np
+
     return [float(v) for v in np.geomspace(lo, hi, count)]
 
 
@@ -636,15 +638,15 @@ def _scan_eps_values(eps: str | None, eps_range: str | None) -> list[float] | No
 @click.option("--seed", type=int, default=0, show_default=True, help="Seed of the sample.")
 @key_opt
 @click.option("--json", "as_json", is_flag=True, help="Print the figures as JSON.")
-@_guarded
+@guarded
 def scan_cmd(input: str, eps: str | None, eps_range: str | None, max_dim: int | None, sample: int | None,
-             seed: int, key: str | None, as_json: bool) -> None:
+             seed: int, key: str | None, columns: str | None, index_col: str | None, as_json: bool) -> None:
     """Which eps? Degrees, edges, time and memory of a run at several scales, estimated from a sample; writes nothing."""
     from .scan import scan_eps
 
     values = _scan_eps_values(eps, eps_range)
     more = {} if sample is None else {"sample": sample}
-    report = scan_eps(read_points(input, key=key), values, max_dim=max_dim, seed=seed,
+    report = scan_eps(_read(input, key, columns, index_col), values, max_dim=max_dim, seed=seed,
                       threads=os.cpu_count() or 1, **more)
     click.echo(json.dumps(report.as_dict(), indent=2) if as_json else report.table())
 
