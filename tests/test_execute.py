@@ -1,50 +1,81 @@
-"""Executors: one conformance suite run on every executor (serial and Dask).
+"""Executors: one conformance suite run on every executor and every job kind.
 
-Every executor must give, through `runs.execute`, the curve that `euler_curve` gives in
-process and that two outside references give: networkx ``enumerate_all_cliques`` on the
-eps-graph (brute force) and gudhi's ``RipsComplex``/``SimplexTree`` (an independent Rips
-implementation), both from ``tests/references.py``. The cases cover clouds in R^2, R^3
-and R^5 (uniform, clustered, with coincident points, an integer lattice with exact ties),
-cover radii 0.5, 1 and 2 times eps, three task splits (one task per row, a few rows per
-task, one task) and caps None, 1, 2, 3: every cloud meets every cap, and every pair of
-factor levels appears in some case. The events an executor calls (started, done, retry,
-failed) are checked with the fault-injection hook of `chitally.tasks` (``CHITALLY_FAULTS``),
-so retry and failure tests are exact, not timing-dependent.
+`TestExecutorConformance` is parametrised over the executors (serial; Dask on a
+LocalCluster of 2 worker processes x 1 thread on 127.0.0.1, started once per module) and,
+through `JOB_KINDS`, over job kinds. A kind enters the suite with one `JobKindCase`: how
+to make a run store of it from a store input, the inputs to run, and a reference giving
+the expected result of an input from outside the engine, by source. Adding a kind is
+adding one entry.
 
-Dask tests share one LocalCluster per module (2 worker processes x 1 thread on
-127.0.0.1) and local-path run stores: ``memory://`` stores do not cross processes.
+The `cloud` kind's inputs are clouds in R^2, R^3 and R^5 (uniform, clustered, with
+coincident points, an integer lattice with exact ties), cover radii 0.5, 1 and 2 times eps,
+three task splits (one task per row, a few rows per task, one task) and caps None, 1, 2, 3:
+every cloud meets every cap, and every pair of factor levels appears in some case. Each
+result must equal `chitally.euler_curve` and two outside references: networkx
+``enumerate_all_cliques`` on the eps-graph (brute force) and gudhi's ``RipsComplex`` /
+``SimplexTree`` (``tests/references.py``).
+
+Faults come from the test side: `FailingTask` wraps the engine's task function, fails
+chosen tasks on chosen attempts and counts every attempt in files, so retry tests are
+exact, not timing-dependent. Stores are local paths (``memory://`` does not cross
+processes).
 """
 
 from __future__ import annotations
 
-import contextlib
 import functools
-import json
+import hashlib
 import os
 import threading
+import time
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
+from engine_fixtures import wait_for
 from references import brute_force_curve, gudhi_curve
 
-from chitally import euler_curve
-from chitally import runs
-from chitally.execute import Callbacks, DaskExecutor, SerialExecutor
-from chitally.tasks import FAULTS_ENV, TaskResult
+from chitally import engine, euler_curve, runs
+from chitally.engine import TaskResult
+from chitally.execute import (
+    FATAL,
+    NOT_RETRIED,
+    Callbacks,
+    DaskExecutor,
+    SchedulerLost,
+    SerialExecutor,
+)
+from chitally.jobs import cloud
+from chitally.store import (
+    CommitConflict,
+    CommitLog,
+    InputsDamaged,
+    LeaseLost,
+    RunStore,
+    StoreMismatch,
+)
+from chitally.validate import InputError
 
-# ------------------------------------------------------------------------- clouds
+HOST = "127.0.0.1"
+# With the dashboard off the scheduler still serves its health routes over HTTP, on 8787
+# unless told otherwise: a free port on 127.0.0.1 instead.
+QUIET_HTTP = {"dashboard_address": f"{HOST}:0"}
+
+# ===================================================================== the cloud kind
 
 TINY = 1e-9  # below any row's cost (>= 1): every row is a task of its own
 HUGE = 1e18  # above the whole cloud's cost: a single task
 SPLITS = ("tiny", "medium", "huge")  # medium: a sixth of the whole cost, a few rows per task
 RADII = (0.5, 1.0, 2.0)  # cover radius as a multiple of eps
 CAPS = (None, 1, 2, 3)
+CLOUDS = ("uniform-R2", "clustered-R3", "uniform-R5", "duplicates-R2", "lattice-R2")
 
 
-@functools.lru_cache(maxsize=None)
-def cloud(name: str) -> tuple[np.ndarray, float]:
+@functools.cache
+def points_of(name: str) -> tuple[np.ndarray, float]:
     """A named test cloud and its eps (deterministic)."""
     if name == "uniform-R2":
         return np.random.default_rng(11).random((40, 2)), 0.25
@@ -69,21 +100,10 @@ def cloud(name: str) -> tuple[np.ndarray, float]:
     raise KeyError(name)
 
 
-CLOUDS = ("uniform-R2", "clustered-R3", "uniform-R5", "duplicates-R2", "lattice-R2")
-
-
-@functools.lru_cache(maxsize=None)
-def references(name: str, cap: int | None):
-    """(in-process, brute force, gudhi) curves of a named cloud; they must agree."""
-    pts, eps = cloud(name)
-    inproc = euler_curve(pts, eps, cap)
-    brute = brute_force_curve(pts, eps, cap)
-    rips = gudhi_curve(pts, eps, cap)
-    return inproc, brute, rips
-
-
 @dataclass(frozen=True)
-class Case:
+class CloudInput:
+    """A cloud run store's input: a named cloud, a cover radius (in eps), a split, a cap."""
+
     cloud: str
     radius: float
     split: str
@@ -94,113 +114,173 @@ class Case:
         return f"{self.cloud}-R{self.radius:g}eps-{self.split}-cap{self.cap}"
 
 
-def _cases() -> list[Case]:
+def split_cost(split: str, pts: np.ndarray, eps: float, cap, radius) -> float:
+    """The task_cost that makes `split` of this cloud (planning is pure: no store)."""
+    if split == "tiny":
+        return TINY
+    if split == "huge":
+        return HUGE
+    _, plan, _ = cloud.plan_points(pts, cloud.Params.checked(eps, cap, radius, HUGE))
+    return float(plan.cost.sum()) / 6
+
+
+def cloud_store(tmp_path: Path, inp: CloudInput, name: str = "run") -> RunStore:
+    pts, eps = points_of(inp.cloud)
+    radius = inp.radius * eps
+    params = cloud.Params.checked(eps, inp.cap, radius, split_cost(inp.split, pts, eps, inp.cap, radius))
+    store = cloud.create_or_open(str(tmp_path / f"{name}.zarr"), pts, params)
+    if inp.split == "tiny":
+        assert store.n_tasks == pts.shape[0]
+    elif inp.split == "huge":
+        assert store.n_tasks == 1
+    else:
+        assert 1 < store.n_tasks < pts.shape[0]
+    return store
+
+
+@functools.cache
+def cloud_curves(name: str, cap: int | None) -> dict[str, Any]:
+    pts, eps = points_of(name)
+    return {
+        "chitally.euler_curve (in process, no store)": euler_curve(pts, eps, cap),
+        "networkx enumerate_all_cliques on the eps-graph (brute force)": brute_force_curve(pts, eps, cap),
+        "gudhi RipsComplex / SimplexTree": gudhi_curve(pts, eps, cap),
+    }
+
+
+def cloud_reference(inp: CloudInput) -> dict[str, Any]:
+    # the curve depends on the cloud and the cap only, never on the cover or the split
+    return cloud_curves(inp.cloud, inp.cap)
+
+
+def _cloud_inputs() -> tuple[CloudInput, ...]:
     # Every (cloud, cap) once; radius index (i + j) % 3 and split index (i + 2j) % 3 make
     # every pair of levels of any two factors appear (the map is invertible mod 3).
-    out = []
-    splits = SPLITS
-    for i, name in enumerate(CLOUDS):
-        for j, cap in enumerate(CAPS):
-            out.append(Case(name, RADII[(i + j) % 3], splits[(i + 2 * j) % 3], cap))
-    return out
+    return tuple(CloudInput(name, RADII[(i + j) % 3], SPLITS[(i + 2 * j) % 3], cap)
+                 for i, name in enumerate(CLOUDS) for j, cap in enumerate(CAPS))
 
 
-CASES = _cases()
+# ==================================================================== the kind registry
 
 
-def test_the_cases_cover_every_pair_of_levels():
-    pairs = {
-        ("cloud", "radius"): {(c.cloud, c.radius) for c in CASES},
-        ("cloud", "split"): {(c.cloud, c.split) for c in CASES},
-        ("cap", "radius"): {(c.cap, c.radius) for c in CASES},
-        ("cap", "split"): {(c.cap, c.split) for c in CASES},
-        ("radius", "split"): {(c.radius, c.split) for c in CASES},
-    }
-    sizes = {"cloud": len(CLOUDS), "cap": len(CAPS), "radius": len(RADII), "split": len(SPLITS)}
-    for (a, b), seen in pairs.items():
-        assert len(seen) == sizes[a] * sizes[b], (a, b)
-    assert len({(c.cloud, c.cap) for c in CASES}) == len(CLOUDS) * len(CAPS)
+@dataclass(frozen=True)
+class JobKindCase:
+    """How the conformance suite runs one job kind.
 
-
-# ------------------------------------------------------------------------ fixtures
-
-
-@pytest.fixture(scope="module")
-def client():
-    distributed = pytest.importorskip("distributed")
-    cluster = distributed.LocalCluster(
-        n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-        dashboard_address=":0",
-    )
-    c = distributed.Client(cluster)
-    try:
-        yield c
-    finally:
-        c.close()
-        cluster.close()
-
-
-@pytest.fixture(params=["serial", "dask"])
-def kind(request) -> str:
-    return request.param
-
-
-@pytest.fixture
-def make_executor(kind, request):
-    """`make_executor(retries=...)` builds an executor of this test's kind."""
-    if kind == "serial":
-        return lambda **kw: SerialExecutor(**kw)
-    client = request.getfixturevalue("client")
-    return lambda **kw: DaskExecutor(client, **kw)
-
-
-@pytest.fixture
-def faults(kind, request, monkeypatch, tmp_path):
-    """`faults(spec)` arms the CHITALLY_FAULTS hook where this kind's tasks run.
-
-    Serial tasks run here (monkeypatch the environment). Dask workers are running
-    processes that read the variable at each task, so it is set and removed in them with
-    ``client.run`` (a variable set here now would not reach them).
+    Attributes
+    ----------
+    name : str
+        The kind's name (as `RunStore.kind`).
+    inputs : tuple
+        Store inputs (each with an ``id``) whose results must be exact.
+    small : object
+        One input of several tasks, quick to run, for the event, retry and cache tests.
+    make_store : callable
+        ``make_store(tmp_path, input) -> RunStore``.
+    reference : callable
+        ``reference(input) -> {source: expected result}`` from outside the engine.
     """
-    log = tmp_path / "fault-log"
-    log.mkdir()
-    path = tmp_path / "faults.json"
-    armed = []
 
-    def arm(spec: dict) -> Path:
-        path.write_text(json.dumps({"log": str(log), **spec}))
-        if kind == "serial":
-            monkeypatch.setenv(FAULTS_ENV, str(path))
-        else:
-            client = request.getfixturevalue("client")
-            client.run(lambda: os.environ.__setitem__(FAULTS_ENV, str(path)))
-            armed.append(client)
-        return log
-
-    yield arm
-    for client in armed:
-        client.run(lambda: os.environ.pop(FAULTS_ENV, None))
+    name: str
+    inputs: tuple[Any, ...]
+    small: Any
+    make_store: Callable[[Path, Any], RunStore]
+    reference: Callable[[Any], dict[str, Any]]
 
 
-@contextlib.contextmanager
-def dask_faults(client, tmp_path: Path, spec: dict):
-    """Arms CHITALLY_FAULTS in the running Dask workers for the block; yields the log."""
-    log = tmp_path / "dask-fault-log"
-    log.mkdir()
-    path = tmp_path / "dask-faults.json"
-    path.write_text(json.dumps({"log": str(log), **spec}))
-    client.run(lambda: os.environ.__setitem__(FAULTS_ENV, str(path)))
-    try:
-        yield log
-    finally:
-        client.run(lambda: os.environ.pop(FAULTS_ENV, None))
+JOB_KINDS: dict[str, JobKindCase] = {
+    "cloud": JobKindCase(
+        name="cloud",
+        inputs=_cloud_inputs(),
+        small=CloudInput("duplicates-R2", 1.0, "medium", 3),
+        make_store=cloud_store,
+        reference=cloud_reference,
+    ),
+}
+
+KIND_PARAMS = [pytest.param(k, id=k.name) for k in JOB_KINDS.values()]
+RESULT_PARAMS = [pytest.param(k, inp, id=f"{k.name}-{inp.id}") for k in JOB_KINDS.values() for inp in k.inputs]
 
 
-def disarm(kind, request, monkeypatch) -> None:
-    if kind == "serial":
-        monkeypatch.delenv(FAULTS_ENV, raising=False)
-    else:
-        request.getfixturevalue("client").run(lambda: os.environ.pop(FAULTS_ENV, None))
+def test_the_cloud_inputs_cover_every_pair_of_levels():
+    inputs = JOB_KINDS["cloud"].inputs
+    factors = {"cloud": CLOUDS, "radius": RADII, "split": SPLITS, "cap": CAPS}
+    for a, levels_a in factors.items():
+        for b, levels_b in factors.items():
+            if a < b:
+                seen = {(getattr(c, a), getattr(c, b)) for c in inputs}
+                assert len(seen) == len(levels_a) * len(levels_b), (a, b)
+
+
+def test_the_references_agree():
+    # the three routes to each expected curve must agree before they judge anything
+    for name in CLOUDS:
+        for cap in CAPS:
+            curves = list(cloud_curves(name, cap).values())
+            assert curves[0] == curves[1] == curves[2], (name, cap)
+
+
+# ============================================================= the faulty task function
+
+
+class FailingTask:
+    """The engine's task function, wrapped: fails chosen tasks on chosen attempts.
+
+    Every call counts as an attempt, numbered from 1 per task by create-exclusive files
+    ``task-<i>-attempt-<n>`` in `folder` (so the count is exact across processes and
+    holds the attempt's name and pid). Attempt numbers in ``fail[task]`` raise
+    ``error("injected failure in task <i>, attempt <n>")``. With `gate`, every attempt
+    waits (bounded) for that file before running; `exit_after_commit` tasks end their
+    process right after their first attempt committed. Picklable, so Dask workers run it.
+    """
+
+    def __init__(self, folder: Path, fail: dict[int, Any] | None = None,
+                 error: type[BaseException] = RuntimeError, gate: Path | None = None,
+                 exit_after_commit: tuple[int, ...] = ()) -> None:
+        self.folder = str(folder)
+        os.makedirs(self.folder, exist_ok=True)
+        self.fail = {int(t): tuple(int(a) for a in at) for t, at in (fail or {}).items()}
+        self.error = error
+        self.gate = None if gate is None else str(gate)
+        self.exit_after_commit = tuple(exit_after_commit)
+
+    def _count(self, task: int, attempt: str) -> int:
+        for n in range(1, 1000):
+            try:
+                fd = os.open(os.path.join(self.folder, f"task-{task}-attempt-{n}"),
+                             os.O_CREAT | os.O_EXCL | os.O_WRONLY)
+            except FileExistsError:
+                continue
+            with os.fdopen(fd, "w") as f:
+                f.write(f"{attempt} {os.getpid()}\n")
+            return n
+        raise RuntimeError(f"task {task}: more than 999 attempts")
+
+    def __call__(self, store: RunStore, task: int, attempt: str, *, threads: int = 1) -> TaskResult:
+        n = self._count(task, attempt)
+        if self.gate is not None:
+            deadline = time.monotonic() + 120
+            while not os.path.exists(self.gate):
+                if time.monotonic() > deadline:
+                    raise TimeoutError(f"task {task}: the gate {self.gate} never opened")
+                time.sleep(0.01)
+        if n in self.fail.get(task, ()):
+            raise self.error(f"injected failure in task {task}, attempt {n}")
+        result = engine.run_task(store, task, attempt, threads=threads)
+        if task in self.exit_after_commit and n == 1:
+            os._exit(1)  # the worker dies after the commit, before the driver hears of it
+        return result
+
+    def attempts(self, task: int) -> list[tuple[str, int]]:
+        """(attempt name, pid) of every attempt of `task`, in order."""
+        out = []
+        for n in range(1, 1000):
+            path = Path(self.folder, f"task-{task}-attempt-{n}")
+            if not path.exists():
+                return out
+            name, pid = path.read_text().split()
+            out.append((name, int(pid)))
+        return out
 
 
 class Recorder(Callbacks):
@@ -208,6 +288,7 @@ class Recorder(Callbacks):
 
     def __init__(self) -> None:
         self.events: list[tuple] = []
+        self.ticks = 0
 
     def task_started(self, task, attempt):
         self.events.append(("started", task, attempt))
@@ -221,219 +302,369 @@ class Recorder(Callbacks):
     def task_failed(self, task, message, attempts):
         self.events.append(("failed", task, message, attempts))
 
+    def tick(self):
+        self.ticks += 1
+
     def of(self, kind: str, task: int | None = None) -> list[tuple]:
         return [e for e in self.events if e[0] == kind and (task is None or e[1] == task)]
 
-
-def split_cost(split: str, points, eps, cap=None, radius=None) -> float:
-    """The task_cost that makes `split` of this cloud (the planner is pure: no store)."""
-    if split == "tiny":
-        return TINY
-    if split == "huge":
-        return HUGE
-    _, plan, _ = runs.plan_points(points, runs.Params.checked(eps, cap, radius, HUGE))
-    return float(plan.cost.sum()) / 6
+    def kinds(self, task: int) -> list[str]:
+        return [e[0] for e in self.events if e[1] == task]
 
 
-def new_store(tmp_path: Path, name: str, points, eps, cap=None, radius=None, split="medium"):
-    cost = split_cost(split, points, eps, cap, radius)
-    params = runs.Params.checked(eps, cap, radius, cost)
-    return runs.create_or_open(str(tmp_path / f"{name}.zarr"), points, params)
+# ============================================================================ Dask
 
 
-def log_lines(log: Path, task: int) -> list[str]:
-    f = log / f"task-{task}"
-    return f.read_text().splitlines() if f.exists() else []
+@pytest.fixture(scope="module")
+def cluster():
+    from distributed import LocalCluster
+
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host=HOST,
+                      dashboard_address=None, scheduler_kwargs=QUIET_HTTP) as c:
+        yield c
 
 
-# --------------------------------------------------------------- conformance suite
+@pytest.fixture(scope="module")
+def client(cluster):
+    from distributed import Client
+
+    with Client(cluster) as c:
+        yield c
 
 
+@pytest.fixture
+def make_executor(executor, request):
+    """`make_executor(**kw)` builds an executor of this test's kind."""
+    if executor == "serial":
+        return lambda **kw: SerialExecutor(**kw)
+    client = request.getfixturevalue("client")
+    return lambda **kw: DaskExecutor(client, **kw)
+
+
+def committed_records(store: RunStore) -> dict[int, bytes]:
+    return {t: store.io.get(CommitLog.commit_key(t)) for t in np.flatnonzero(store.commits.committed())}
+
+
+# ============================================================== the conformance suite
+
+
+@pytest.mark.parametrize("executor", ["serial", "dask"])
 class TestExecutorConformance:
-    """What every executor must do; parametrised over serial and Dask by `kind`."""
+    """What every executor must do for every job kind."""
 
-    @pytest.mark.parametrize("case", CASES, ids=[c.id for c in CASES])
-    def test_curve_is_exact(self, case, make_executor, tmp_path):
-        pts, eps = cloud(case.cloud)
-        inproc, brute, rips = references(case.cloud, case.cap)
-        store = new_store(tmp_path, "run", pts, eps, case.cap, case.radius * eps, case.split)
-        if case.split == "tiny":
-            assert store.n_tasks == pts.shape[0]
-        elif case.split == "huge":
-            assert store.n_tasks == 1
-        else:
-            assert 1 < store.n_tasks < pts.shape[0]
+    @pytest.mark.parametrize("job, inp", RESULT_PARAMS)
+    def test_the_result_is_exact(self, job, inp, make_executor, tmp_path):
+        store = job.make_store(tmp_path, inp)
 
         report = runs.execute(store, make_executor())
 
-        assert report.failed == {}
+        assert report.failed == {} and report.complete
         assert report.done == store.n_tasks == report.computed
-        assert report.complete and report.exit_code == runs.EXIT_OK
-        curve = report.curve
-        assert curve == inproc, "distributed curve differs from chitally.euler_curve"
-        assert curve == brute, "differs from networkx enumerate_all_cliques on the eps-graph"
-        assert curve == rips, "differs from gudhi RipsComplex / SimplexTree"
-        assert runs.read_result(store) == curve
-        assert curve.n_points == pts.shape[0] and curve.max_dim == case.cap and curve.eps == eps
+        for source, expected in job.reference(inp).items():
+            assert report.result == expected, f"the {job.name} result differs from {source}"
+        assert runs.read_result(store) == report.result
 
-    def test_every_task_reports_done_once(self, make_executor, tmp_path):
-        pts, eps = cloud("uniform-R2")
-        store = new_store(tmp_path, "events", pts, eps, 2)
-        plan = store.read_plan()
-        rec = Recorder()
+    @pytest.mark.parametrize("job", KIND_PARAMS)
+    def test_every_task_reports_done_once(self, job, make_executor, tmp_path):
+        store = job.make_store(tmp_path, job.small)
         tasks = list(range(store.n_tasks))
+        assert len(tasks) >= 3
+        rec = Recorder()
 
-        outcome = make_executor().run(store.url, tasks, rec, plan.digest())
+        outcome = make_executor().run(store, tasks, rec)
 
         assert sorted(outcome.done) == tasks and outcome.failed == {}
         assert sorted(e[1] for e in rec.of("started")) == tasks
         assert sorted(e[1] for e in rec.of("done")) == tasks
         assert rec.of("retry") == [] and rec.of("failed") == []
         for _, task, result in rec.of("done"):
-            assert isinstance(result, TaskResult)
-            assert result.digest == store.read_commit(task)["digest"]
-            assert result.n_owned == int(plan.row_stop[task] - plan.row_start[task])
-            started = [i for i, e in enumerate(rec.events) if e[:2] == ("started", task)]
-            done = [i for i, e in enumerate(rec.events) if e[:2] == ("done", task)]
-            assert started[0] < done[0]
-        assert store.committed().all()
+            record = store.commits.verified_record(task)
+            assert isinstance(result, TaskResult) and not result.cached
+            assert result.digest == record["digest"] and result.counters == record["counters"]
+            assert round(result.seconds, 6) == record["seconds"]
+            assert rec.kinds(task) == ["started", "done"]
+        assert store.commits.committed().all()
 
-    def test_a_task_failing_once_is_retried_then_done(self, make_executor, faults, tmp_path):
-        pts, eps = cloud("duplicates-R2")
-        store = new_store(tmp_path, "retry", pts, eps, 3)
+    @pytest.mark.parametrize("job", KIND_PARAMS)
+    def test_a_task_failing_once_is_retried_then_done(self, job, make_executor, tmp_path):
+        store = job.make_store(tmp_path, job.small)
         victim = store.n_tasks - 1
-        log = faults({"fail": {str(victim): 1}})
+        fn = FailingTask(tmp_path / "attempts", fail={victim: [1]})
         rec = Recorder()
 
-        report = runs.execute(store, make_executor(retries=2), events=rec)
+        report = runs.execute(store, make_executor(retries=2, task_function=fn), events=rec)
 
         assert report.failed == {} and report.done == store.n_tasks
         mine = [e for e in rec.events if e[1] == victim]
         assert [e[0] for e in mine] == ["started", "retry", "started", "done"]
-        _, _, first_attempt, message = mine[1]
+        first_attempt, message = mine[1][2], mine[1][3]
         assert first_attempt == mine[0][2] != mine[2][2]
-        assert f"injected failure in task {victim}, attempt 1" in message
-        assert len(log_lines(log, victim)) == 2
-        for task in range(store.n_tasks):
-            if task != victim:
-                assert [e[0] for e in rec.events if e[1] == task] == ["started", "done"]
-                assert len(log_lines(log, task)) == 1
-        assert report.curve == references("duplicates-R2", 3)[0]
+        assert message == f"RuntimeError: injected failure in task {victim}, attempt 1"
+        assert [a for a, _ in fn.attempts(victim)] == [mine[0][2], mine[2][2]]
+        for task in range(store.n_tasks - 1):
+            assert rec.kinds(task) == ["started", "done"]
+            assert len(fn.attempts(task)) == 1
+        for source, expected in job.reference(job.small).items():
+            assert report.result == expected, f"differs from {source}"
 
     @pytest.mark.parametrize("retries", [0, 2])
-    def test_a_task_that_keeps_failing_is_reported_with_its_message(
-        self, make_executor, faults, tmp_path, retries, kind, request, monkeypatch
-    ):
-        pts, eps = cloud("lattice-R2")
-        store = new_store(tmp_path, "poison", pts, eps, None)
+    @pytest.mark.parametrize("job", KIND_PARAMS)
+    def test_a_task_that_keeps_failing_is_reported_with_its_message(self, job, make_executor,
+                                                                     tmp_path, retries):
+        store = job.make_store(tmp_path, job.small)
         victim = 0
-        log = faults({"poison": [victim]})
+        fn = FailingTask(tmp_path / "attempts", fail={victim: range(1, retries + 2)})
         rec = Recorder()
 
-        report = runs.execute(store, make_executor(retries=retries), events=rec)
+        report = runs.execute(store, make_executor(retries=retries, task_function=fn), events=rec)
 
-        message = f"RuntimeError: injected poison in task {victim}"
-        assert report.failed == {victim: message}
-        assert report.curve is None and report.exit_code == runs.EXIT_INCOMPLETE
+        last = f"RuntimeError: injected failure in task {victim}, attempt {retries + 1}"
+        assert report.failed == {victim: last}
+        assert report.result is None and not report.complete
         assert report.done == store.n_tasks - 1
-        assert [e[0] for e in rec.events if e[1] == victim] == (
-            ["started", "retry"] * retries + ["started", "failed"]
-        )
-        assert rec.of("failed") == [("failed", victim, message, retries + 1)]
-        assert all(e[3] == message for e in rec.of("retry"))
-        assert len(log_lines(log, victim)) == retries + 1
-        recorded = store.failures()
+        assert rec.kinds(victim) == ["started", "retry"] * retries + ["started", "failed"]
+        assert rec.of("failed") == [("failed", victim, last, retries + 1)]
+        assert [e[3] for e in rec.of("retry")] == [
+            f"RuntimeError: injected failure in task {victim}, attempt {n}" for n in range(1, retries + 1)]
+        assert len(fn.attempts(victim)) == retries + 1
+        recorded = store.commits.failures()
         assert list(recorded) == [victim]
-        assert recorded[victim]["message"] == message and recorded[victim]["attempts"] == retries + 1
+        assert recorded[victim]["message"] == last and recorded[victim]["attempts"] == retries + 1
         st = runs.status(store)
         assert (st["done"], st["failed"], st["pending"]) == (store.n_tasks - 1, 1, 0)
-        assert st["failures"] == {victim: message} and not st["complete"]
+        assert st["failures"] == {victim: last} and not st["complete"]
         assert runs.read_result(store) is None
 
-        # resume once the cause is gone: only the failed task is computed again
-        disarm(kind, request, monkeypatch)
+        # resume with the plain task function: only the failed task is computed again
         again = runs.execute(store, make_executor(retries=retries))
         assert again.computed == 1 and again.failed == {}
-        assert again.curve == references("lattice-R2", None)[0]
-        assert store.failures() == {}
-        assert runs.status(store)["complete"]
-        assert len(log_lines(log, victim)) == retries + 1  # the hook was off for the resume
+        assert store.commits.failures() == {} and runs.status(store)["complete"]
+        assert len(fn.attempts(victim)) == retries + 1  # the wrapper was not used
+        for source, expected in job.reference(job.small).items():
+            assert again.result == expected, f"differs from {source}"
 
-    def test_a_resume_right_after_exhausted_retries_runs_the_task_afresh(
-        self, make_executor, faults, tmp_path
-    ):
-        # the hook fails the first 3 attempts: the first run exhausts its retries, the
-        # resume (submitted at once, reusing the task's names) succeeds on attempt 4
-        pts, eps = cloud("uniform-R5")
-        store = new_store(tmp_path, "resume", pts, eps, 1)
-        victim = 0
-        log = faults({"fail": {str(victim): 3}})
-        ex = make_executor(retries=2)
+    @pytest.mark.parametrize("job", KIND_PARAMS)
+    def test_a_resume_right_after_exhausted_retries_runs_the_task_afresh(self, job, make_executor,
+                                                                         tmp_path):
+        # attempts 1-3 fail: the first run exhausts its retries; the resume, submitted at
+        # once under the same task names, succeeds on attempt 4
+        store = job.make_store(tmp_path, job.small)
+        victim = 1
+        fn = FailingTask(tmp_path / "attempts", fail={victim: [1, 2, 3]})
+        ex = make_executor(retries=2, task_function=fn)
         first = runs.execute(store, ex)
         assert first.failed == {victim: f"RuntimeError: injected failure in task {victim}, attempt 3"}
         second = runs.execute(store, ex)
         assert second.failed == {} and second.computed == 1
-        assert len(log_lines(log, victim)) == 4
-        assert second.curve == references("uniform-R5", 1)[0]
+        assert len(fn.attempts(victim)) == 4
+        for source, expected in job.reference(job.small).items():
+            assert second.result == expected, f"differs from {source}"
 
-    def test_tasks_already_committed_are_not_computed_again(self, make_executor, tmp_path):
-        pts, eps = cloud("uniform-R5")
-        store = new_store(tmp_path, "again", pts, eps, 2)
-        first = runs.execute(store, make_executor())
-        second = runs.execute(store, make_executor())
-        assert first.computed == store.n_tasks and second.computed == 0
-        assert first.curve == second.curve == references("uniform-R5", 2)[0]
+    @pytest.mark.parametrize("error", [InputError, CommitConflict, StoreMismatch])
+    @pytest.mark.parametrize("job", KIND_PARAMS)
+    def test_errors_another_attempt_cannot_cure_are_not_retried(self, job, error, make_executor,
+                                                                tmp_path):
+        assert issubclass(error, NOT_RETRIED) and not issubclass(error, FATAL)
+        store = job.make_store(tmp_path, job.small)
+        victim = 1
+        fn = FailingTask(tmp_path / "attempts", fail={victim: [1, 2, 3]}, error=error)
+        rec = Recorder()
 
-    def test_running_a_committed_task_again_is_harmless(self, make_executor, tmp_path):
-        pts, eps = cloud("clustered-R3")
-        store = new_store(tmp_path, "dup", pts, eps, 2)
+        outcome = make_executor(retries=2, task_function=fn).run(store, list(range(store.n_tasks)), rec)
+
+        message = f"{error.__name__}: injected failure in task {victim}, attempt 1"
+        assert outcome.failed == {victim: message}
+        assert sorted(outcome.done) == [t for t in range(store.n_tasks) if t != victim]
+        assert rec.kinds(victim) == ["started", "failed"]
+        assert rec.of("failed") == [("failed", victim, message, 1)] and rec.of("retry") == []
+        assert len(fn.attempts(victim)) == 1
+
+    @pytest.mark.parametrize("error", [InputsDamaged, LeaseLost])
+    @pytest.mark.parametrize("job", KIND_PARAMS)
+    def test_fatal_errors_end_the_run_and_keep_what_was_committed(self, job, error, make_executor,
+                                                                  executor, tmp_path):
+        assert issubclass(error, FATAL)
+        store = job.make_store(tmp_path, job.small)
+        victim = 1
+        fn = FailingTask(tmp_path / "attempts", fail={victim: [1]}, error=error)
+        rec = Recorder()
+
+        with pytest.raises(error, match=f"injected failure in task {victim}, attempt 1"):
+            make_executor(retries=2, task_function=fn).run(store, list(range(store.n_tasks)), rec)
+
+        assert len(fn.attempts(victim)) == 1 and rec.of("retry") == [] and rec.of("failed") == []
+        for task in np.flatnonzero(store.commits.committed()):
+            assert store.commits.verified_record(int(task)) is not None
+        if executor == "serial":  # one after the other: nothing after the victim started
+            assert [e[1] for e in rec.of("started")] == [0, 1]
+            assert store.commits.committed().tolist() == [True] + [False] * (store.n_tasks - 1)
+
+    @pytest.mark.parametrize("job", KIND_PARAMS)
+    def test_a_task_already_committed_returns_at_once(self, job, make_executor, tmp_path):
+        store = job.make_store(tmp_path, job.small)
         tasks = list(range(store.n_tasks))
-        ex = make_executor()
-        first = ex.run(store.url, tasks, Callbacks(), "")
-        digests = [store.read_commit(t)["digest"] for t in tasks]
-        second = ex.run(store.url, tasks[:3], Callbacks(), "")
-        assert sorted(first.done) == tasks and sorted(second.done) == tasks[:3]
-        assert [store.read_commit(t)["digest"] for t in tasks] == digests
-        assert runs.execute(store, ex).curve == references("clustered-R3", 2)[0]
+        fn = FailingTask(tmp_path / "attempts")
+        ex = make_executor(task_function=fn)
+        first, again = Recorder(), Recorder()
+        ex.run(store, tasks, first)
+        records = committed_records(store)
+
+        outcome = ex.run(store, tasks, again)
+
+        assert sorted(outcome.done) == tasks and outcome.failed == {}
+        before = {e[1]: e[2] for e in first.of("done")}
+        for _, task, result in again.of("done"):
+            assert result.cached and result.seconds == 0.0
+            assert not before[task].cached
+            assert (result.digest, result.counters) == (before[task].digest, before[task].counters)
+            assert len(fn.attempts(task)) == 2  # called twice, computed once
+        assert committed_records(store) == records  # byte for byte
+        report = runs.execute(store, ex)
+        assert report.computed == 0
+        for source, expected in job.reference(job.small).items():
+            assert report.result == expected, f"differs from {source}"
 
 
-# ------------------------------------------------------------------- Dask specifics
+# =================================================================== Dask specifics
 
 
-@pytest.mark.parametrize("window", [1, 3])
+class Window(Recorder):
+    """Tracks how many tasks are in flight (started, not yet done) at most."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.in_flight = 0
+        self.peak = 0
+
+    def task_started(self, task, attempt):
+        super().task_started(task, attempt)
+        self.in_flight += 1
+        self.peak = max(self.peak, self.in_flight)
+
+    def task_done(self, result):
+        super().task_done(result)
+        self.in_flight -= 1
+
+
+def tiny_store(tmp_path: Path, name: str = "run", cap: int | None = 1) -> RunStore:
+    return cloud_store(tmp_path, CloudInput("uniform-R2", 1.0, "tiny", cap), name)
+
+
+@pytest.mark.parametrize("window", [1, 2])
 def test_a_window_smaller_than_the_task_count_runs_every_task(client, tmp_path, window):
-    pts, eps = cloud("uniform-R2")
-    store = new_store(tmp_path, "window", pts, eps, 1, split="tiny")
-    n = store.n_tasks
-    assert n > 10 * window
-    in_flight = [0]
-    peak = [0]
+    store = tiny_store(tmp_path)
+    tasks = list(range(10))
+    ex = DaskExecutor(client, window=window)
+    assert ex.window() == window
+    rec = Window()
 
-    class Watch(Recorder):
+    outcome = ex.run(store, tasks, rec)
+
+    assert sorted(outcome.done) == tasks and outcome.failed == {}
+    assert sorted(e[1] for e in rec.of("done")) == tasks
+    assert 1 <= rec.peak <= window
+    assert store.commits.committed().tolist() == [True] * 10 + [False] * (store.n_tasks - 10)
+
+
+def test_the_window_follows_the_live_cluster(tmp_path):
+    from distributed import Client, LocalCluster
+
+    store = tiny_store(tmp_path)
+    gate = tmp_path / "gate"
+    fn = FailingTask(tmp_path / "attempts", gate=gate)
+    tasks = list(range(12))
+    four, eight = threading.Event(), threading.Event()
+
+    class Watch(Window):
         def task_started(self, task, attempt):
             super().task_started(task, attempt)
-            in_flight[0] += 1
-            peak[0] = max(peak[0], in_flight[0])
-
-        def task_done(self, result):
-            super().task_done(result)
-            in_flight[0] -= 1
+            n = len(self.of("started"))
+            if n >= 4:
+                four.set()
+            if n >= 8:
+                eight.set()
 
     rec = Watch()
-    report = runs.execute(store, DaskExecutor(client, window=window), events=rec)
+    outcome: list[Any] = []
+    # in-process workers (threads, inproc:// comms): quick to start and to add
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=False,
+                      dashboard_address=None, scheduler_kwargs=QUIET_HTTP) as lc, Client(lc) as c:
+        ex = DaskExecutor(c, task_function=fn)
+        assert ex.window() == 4  # four per worker thread: one worker of one thread
+        runner = threading.Thread(target=lambda: outcome.append(ex.run(store, tasks, rec)))
+        runner.start()
+        try:
+            assert four.wait(60)
+            # every task waits at the gate: the executor ticks each second and recounts
+            # the cluster; two ticks later it still holds four in flight
+            ticks = rec.ticks
+            wait_for(lambda: rec.ticks >= ticks + 2, 30, "two ticks of the executor")
+            assert len(rec.of("started")) == 4
 
-    assert report.done == report.computed == n and report.failed == {}
-    assert sorted(e[1] for e in rec.of("done")) == list(range(n))
-    assert 1 <= peak[0] <= window
+            lc.scale(2)
+            c.wait_for_workers(2, timeout=60)
+            assert eight.wait(60), "the window did not grow with the second worker"
+            assert ex.window() == 8
+            assert len(rec.of("started")) == 8 and rec.of("done") == []
+        finally:
+            gate.touch()
+            runner.join(120)
+    assert not runner.is_alive()
+    assert sorted(outcome[0].done) == tasks and outcome[0].failed == {}
+    assert rec.peak == 8
+
+
+@pytest.mark.parametrize("window, close_on", [(2, 4), (2, 1), (None, 6)])
+def test_scheduler_lost_when_the_client_closes_mid_run(cluster, tmp_path, window, close_on):
+    from distributed import Client
+
+    store = tiny_store(tmp_path)
+    own = Client(cluster)  # closed by the test: the module's client stays open
+    closed_at: list[float] = []
+
+    class Closer(Recorder):
+        def task_started(self, task, attempt):
+            super().task_started(task, attempt)
+            if len(self.of("started")) == close_on:
+                closed_at.append(time.monotonic())
+                own.close()
+
+    rec = Closer()
+    ex = DaskExecutor(own, window=window)
+    try:
+        with pytest.raises(SchedulerLost, match="scheduler was lost"):
+            ex.run(store, list(range(store.n_tasks)), rec)
+    finally:
+        own.close()
+    assert time.monotonic() - closed_at[0] < 30  # promptly, not after a timeout
+    done = [e[1] for e in rec.of("done")]
+    assert len(done) <= close_on
+    for task in done:  # what was committed stays committed and verified
+        assert store.commits.verified_record(task) is not None
+    report = runs.execute(store, SerialExecutor())
+    assert report.complete
+    pts, eps = points_of("uniform-R2")
     assert report.curve == euler_curve(pts, eps, 1)
 
 
-def test_dask_keys_name_the_run_and_the_task(client, tmp_path, monkeypatch):
-    pts, eps = cloud("uniform-R2")
-    store = new_store(tmp_path, "keys", pts, eps, 2)
-    digest = store.read_plan().digest()
+def test_scheduler_lost_when_no_worker_joins(tmp_path):
+    from distributed import Client, LocalCluster
+
+    store = tiny_store(tmp_path)
+    with LocalCluster(n_workers=0, processes=False, dashboard_address=None,
+                      scheduler_kwargs=QUIET_HTTP) as lc, \
+            Client(lc) as c:
+        t0 = time.monotonic()
+        with pytest.raises(SchedulerLost, match="no Dask worker for 1 s"):
+            DaskExecutor(c, lost_after=1.0).run(store, [0, 1], Callbacks())
+        assert time.monotonic() - t0 < 30
+    assert not store.commits.committed().any()
+
+
+def test_dask_keys_name_the_run_the_task_and_the_retry(client, tmp_path, monkeypatch):
+    store = tiny_store(tmp_path, cap=2)
+    fn = FailingTask(tmp_path / "attempts", fail={0: [1]})
     seen: list[str] = []
-    # the executor releases each future once done: watch the keys as they are submitted
     submit = client.submit
 
     def spy(*args, **kwargs):
@@ -441,52 +672,58 @@ def test_dask_keys_name_the_run_and_the_task(client, tmp_path, monkeypatch):
         return submit(*args, **kwargs)
 
     monkeypatch.setattr(client, "submit", spy)
-    DaskExecutor(client).run(store.url, list(range(store.n_tasks)), Callbacks(), digest)
-    # chitally-task-<plan digest>-<store hash>-<task>: one prefix per run, so the dashboard
-    # groups a run's tasks and two stores of one plan never share a key
-    prefixes = {key.rsplit("-", 1)[0] for key in seen}
-    assert len(prefixes) == 1 and prefixes.pop().startswith(f"chitally-task-{digest}-")
-    assert sorted(int(key.rsplit("-", 1)[1]) for key in seen) == list(range(store.n_tasks))
+    tasks = list(range(5))
+    DaskExecutor(client, task_function=fn).run(store, tasks, Callbacks())
+    # chitally-<kind>-<plan digest>-<store hash>-<task>[-r<retry>]: one prefix per run, so
+    # the dashboard groups a run's tasks and two stores of one plan never share a key
+    prefix = (f"chitally-cloud-{store.plan_digest[:16]}-"
+              f"{hashlib.sha256(store.url.encode()).hexdigest()[:6]}")
+    assert sorted(seen) == sorted([f"{prefix}-{t}" for t in tasks] + [f"{prefix}-0-r1"])
 
 
 def test_two_stores_of_one_plan_running_at_once_do_not_share_tasks(client, tmp_path):
-    pts, eps = cloud("uniform-R2")
-    first = new_store(tmp_path, "first", pts, eps, 2, split="huge")
-    second = new_store(tmp_path, "second", pts, eps, 2, split="huge")
-    digest = first.read_plan().digest()
-    assert second.read_plan().digest() == digest
-    started = threading.Event()
-
-    class Signal(Callbacks):
-        def task_started(self, task, attempt):
-            started.set()
-
-    with dask_faults(client, tmp_path, {"delay": 2.0}):  # keeps the first run's task in flight
-        thread = threading.Thread(
-            target=DaskExecutor(client).run, args=(first.url, [0], Signal(), digest)
-        )
-        thread.start()
-        assert started.wait(30)
-        outcome = DaskExecutor(client).run(second.url, [0], Callbacks(), digest)
-        thread.join(60)
-    assert outcome.done == [0]
-    assert first.committed()[0]
-    assert second.committed()[0], "the second store's task was reported done but never committed"
-
-
-def test_a_worker_lost_between_data_and_commit_is_recomputed_by_dask(client, tmp_path):
-    # Last in the module: it ends a worker process (the nanny starts a fresh one).
-    pts, eps = cloud("clustered-R3")
-    store = new_store(tmp_path, "lost", pts, eps, 2)
-    victim = 1
+    inp = CloudInput("uniform-R2", 1.0, "huge", 2)
+    first = cloud_store(tmp_path, inp, "first")
+    second = cloud_store(tmp_path, inp, "second")
+    assert first.plan_digest == second.plan_digest
+    gate = tmp_path / "gate"
+    held = FailingTask(tmp_path / "held", gate=gate)  # keeps the first run's task in flight
+    outcomes: list[Any] = []
+    thread = threading.Thread(
+        target=lambda: outcomes.append(DaskExecutor(client, task_function=held).run(first, [0], Callbacks())))
+    thread.start()
     try:
-        with dask_faults(client, tmp_path, {"exit_between": [victim]}) as log:
-            rec = Recorder()
-            report = runs.execute(store, DaskExecutor(client), events=rec)
+        wait_for(lambda: held.attempts(0), 60, "the first store's task to run")
+        outcome = DaskExecutor(client).run(second, [0], Callbacks())
+    finally:
+        gate.touch()
+        thread.join(120)
+    assert outcome.done == [0] and outcomes[0].done == [0]
+    assert second.commits.verified_record(0) is not None, "reported done but never committed"
+    assert first.commits.verified_record(0) is not None
+
+
+def test_a_task_whose_worker_died_after_its_commit_returns_cached(client, tmp_path):
+    # Last in the module: it ends a worker process (the nanny starts a fresh one).
+    inp = CloudInput("clustered-R3", 1.0, "medium", 2)
+    store = cloud_store(tmp_path, inp)
+    victim = 1
+    fn = FailingTask(tmp_path / "attempts", exit_after_commit=(victim,))
+    rec = Recorder()
+    try:
+        report = runs.execute(store, DaskExecutor(client, task_function=fn), events=rec)
     finally:
         client.wait_for_workers(2, timeout=60)
-    attempts = log_lines(log, victim)
-    assert len(attempts) == 2 and attempts[0].split()[1] != attempts[1].split()[1]  # two pids
+    attempts = fn.attempts(victim)
+    assert len(attempts) == 2 and attempts[0][1] != attempts[1][1]  # two worker processes
     assert report.failed == {} and report.computed == report.done == store.n_tasks
-    assert sorted(e[1] for e in rec.of("done")) == list(range(store.n_tasks))
-    assert report.curve == references("clustered-R3", 2)[0]
+    results = {e[1]: e[2] for e in rec.of("done")}
+    assert sorted(results) == list(range(store.n_tasks))
+    assert results[victim].cached
+    # a task whose result was still held by the dead worker ran again too, and found its
+    # commit: cached exactly when it ran twice
+    for task, result in results.items():
+        assert result.cached == (len(fn.attempts(task)) == 2), task
+    assert rec.of("retry") == []  # Dask reran it: not one of our retries
+    for source, expected in cloud_reference(inp).items():
+        assert report.curve == expected, f"differs from {source}"

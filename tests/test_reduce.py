@@ -1,40 +1,46 @@
-"""The checkpointed reducer: resumable, exactly once, robust to a damaged checkpoint.
+"""The checkpointed reducer: generic over the kind's fold, resumable, exactly once, robust
+to damaged task outputs and checkpoints.
 
-Runs are cut short by hand: the serial executor is run on a subset of the task ids with
-a reducer fed from its events, then that reducer is dropped (a crash) and a new one, or
-`runs.execute`, takes over from the newest valid checkpoint. Every final curve must be
-identical to `euler_curve` and to networkx ``enumerate_all_cliques`` on the eps-graph
-(brute force, ``tests/references.py``). Stores are local paths so checkpoint chunks can
-be damaged on disk.
+The reducer folds with whatever fold the store's job kind names; the `cloud` kind's is
+`chitally.jobs.cloud.JumpSum`. Runs are cut short by hand: the serial executor runs a
+subset of the task ids with a reducer fed from its events, then that reducer is dropped (a
+crash) and a new one, or `runs.execute`, takes over from the newest valid checkpoint.
+Every final curve must be identical to `euler_curve` and to networkx
+``enumerate_all_cliques`` on the eps-graph (brute force, ``tests/references.py``). Stores
+are local paths so chunks can be damaged on disk.
 """
 
 from __future__ import annotations
 
 import functools
 import json
+import logging
 from pathlib import Path
 
 import numpy as np
 import pytest
+from engine_fixtures import flip_byte
 from references import brute_force_curve
 
-from chitally import Curve, euler_curve, merge_jumps
-from chitally import runs
+from chitally import Curve, euler_curve, merge_jumps, runs
 from chitally.execute import Callbacks, SerialExecutor
+from chitally.jobs import cloud, kind_of
+from chitally.jobs.cloud import JumpSum
 from chitally.reduce import Reducer
+from chitally.store import CommitLog, RunStore
 
 EPS = 0.55
 CAP = 3
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def points() -> np.ndarray:
     rng = np.random.default_rng(21)
     pts = rng.random((14, 3))
     return np.concatenate([pts, pts[[2, 9]]])  # two coincident pairs
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def expected() -> Curve:
     curve = euler_curve(points(), EPS, CAP)
     assert curve == brute_force_curve(points(), EPS, CAP), (
@@ -43,10 +49,10 @@ def expected() -> Curve:
     return curve
 
 
-def new_store(tmp_path: Path, name: str = "run", task_cost: float = 1e-9):
+def new_store(tmp_path: Path, name: str = "run", task_cost: float = 1e-9) -> RunStore:
     """A store with one task per row (task_cost below any row's cost)."""
-    params = runs.Params.checked(EPS, CAP, None, task_cost)
-    store = runs.create_or_open(str(tmp_path / f"{name}.zarr"), points(), params)
+    params = cloud.Params.checked(EPS, CAP, None, task_cost)
+    store = cloud.create_or_open(str(tmp_path / f"{name}.zarr"), points(), params)
     assert store.n_tasks == points().shape[0]
     return store
 
@@ -61,50 +67,101 @@ class Feed(Callbacks):
         assert self.reducer.add(result.task)
 
 
-def run_some(store, tasks, reducer: Reducer | None = None) -> None:
+def run_some(store: RunStore, tasks, reducer: Reducer | None = None) -> None:
     events = Feed(reducer) if reducer is not None else Callbacks()
-    outcome = SerialExecutor().run(store.url, list(tasks), events)
+    outcome = SerialExecutor().run(store, list(tasks), events)
     assert sorted(outcome.done) == sorted(tasks) and outcome.failed == {}
 
 
-def checkpoint_file(store, generation: int, array: str) -> Path:
-    return Path(store.url) / "checkpoints" / f"gen-{generation:06d}" / array / "c" / "0"
-
-
-def damage(path: Path) -> None:
-    """Flip one byte of a chunk (its crc32c no longer matches)."""
-    data = bytearray(path.read_bytes())
-    data[len(data) // 2] ^= 0xFF
-    path.write_bytes(bytes(data))
+def checkpoint_file(store: RunStore, generation: int, array: str) -> Path:
+    # the documented layout: checkpoints/gen-000007/<array>; one chunk per array
+    return Path(store.url, "checkpoints", f"gen-{generation:06d}", array, "c", "0")
 
 
 def covered(reducer: Reducer) -> list[int]:
     return np.flatnonzero(reducer.covered).tolist()
 
 
+def folded(store: RunStore, tasks) -> dict[str, np.ndarray]:
+    """The state of a fresh fold of the kind fed `tasks`' verified outputs at once."""
+    fold = kind_of(store.kind).make_fold(store)
+    tasks = list(tasks)
+    fold.add(tasks, [store.commits.read(t) for t in tasks])
+    return fold.state()
+
+
+def final_curve(store: RunStore) -> Curve:
+    return runs.read_result(store)
+
+
+# ------------------------------------------------------------------- the kind's fold
+
+
+def test_the_reducer_folds_with_the_kinds_fold(tmp_path):
+    store = new_store(tmp_path)
+    reducer = Reducer(store, every_tasks=5, every_seconds=1e9)
+    assert kind_of(store.kind).fold == "chitally.jobs.cloud:JumpSum"
+    assert type(reducer.fold) is JumpSum
+    run_some(store, range(store.n_tasks), reducer)
+    reducer.finish()
+    # checkpointed in batches of 5 or in one batch: the same state, bit for bit
+    cp = store.checkpoints.latest()
+    state = folded(store, range(store.n_tasks))
+    assert sorted(cp.state) == sorted(state)
+    for name in state:
+        assert cp.state[name].dtype == state[name].dtype
+        assert cp.state[name].tobytes() == state[name].tobytes(), name
+    # and the same as merging every jump table by hand
+    tables = [store.commits.read(t) for t in range(store.n_tasks)]
+    values, jumps = merge_jumps([t["values"] for t in tables], [t["jumps"] for t in tables])
+    assert state["values"].tobytes() == values.tobytes() and state["jumps"].tolist() == jumps.tolist()
+    assert final_curve(store) == expected()
+
+
 # ---------------------------------------------------------------------- checkpoints
 
 
-def test_every_task_is_checkpointed_with_every_tasks_1(tmp_path):
+@pytest.mark.parametrize("k", [1, 3, 5])
+def test_a_checkpoint_is_written_every_k_tasks(tmp_path, k):
     store = new_store(tmp_path)
-    reducer = Reducer(store, every_tasks=1, every_seconds=1e9)
-    order = list(range(store.n_tasks))
-    for k, task in enumerate(order[:6], start=1):
+    n = store.n_tasks
+    reducer = Reducer(store, every_tasks=k, every_seconds=1e9)
+    for m, task in enumerate(range(n), start=1):
         run_some(store, [task], reducer)
-        cp = store.latest_checkpoint()
-        assert cp.generation == k == reducer.generation
-        assert cp.task_ids.tolist() == order[:k]
-        assert reducer.n_covered == k and covered(reducer) == order[:k]
-        tables = [store.read_jump_table(t) for t in order[:k]]
-        values, jumps = merge_jumps([t[0] for t in tables], [t[1] for t in tables])
-        assert cp.values.tobytes() == values.tobytes() and cp.jumps.tolist() == jumps.tolist()
+        cp = store.checkpoints.latest()
+        generation = m // k
+        assert reducer.generation == generation
+        assert reducer.n_covered == m
+        if generation == 0:
+            assert cp is None
+            continue
+        assert cp.generation == generation
+        assert cp.task_ids.tolist() == list(range(generation * k))
+        assert covered(reducer) == list(range(generation * k))
+        state = folded(store, range(generation * k))
+        assert cp.state["values"].tobytes() == state["values"].tobytes()
+        assert cp.state["jumps"].tolist() == state["jumps"].tolist()
+    reducer.finish()  # writes the remainder as one more generation
+    assert store.checkpoints.latest().generation == -(-n // k)
+    assert store.checkpoints.latest().task_ids.tolist() == list(range(n))
+    assert final_curve(store) == expected()
 
 
 def test_every_seconds_also_triggers_a_checkpoint(tmp_path):
     store = new_store(tmp_path)
     reducer = Reducer(store, every_tasks=10**6, every_seconds=0.0)
     run_some(store, [0, 1, 2], reducer)
-    assert store.latest_checkpoint().generation == 3
+    assert store.checkpoints.latest().generation == 3
+
+
+def test_checkpoint_record_names_its_tasks(tmp_path):
+    store = new_store(tmp_path)
+    run_some(store, range(3), Reducer(store, every_tasks=1))
+    record = json.loads((checkpoint_file(store, 3, "values").parents[2] / "record.json").read_text())
+    assert record["generation"] == 3 and record["n_task_ids"] == 3
+
+
+# ------------------------------------------------------------------------- resuming
 
 
 @pytest.mark.parametrize("how", ["new reducer", "runs.execute"])
@@ -124,15 +181,15 @@ def test_a_stopped_run_resumes_from_its_checkpoint_and_covers_the_rest_once(tmp_
         assert second.n_covered == stop_after
         run_some(store, range(stop_after, n), second)
         assert second.complete
-        curve = second.finish()
+        second.finish()
     else:
         report = runs.execute(store, SerialExecutor())
         assert report.computed == n - stop_after and report.done == n
-        curve = report.curve
-    assert curve == expected()
-    final = store.latest_checkpoint()
+        assert report.curve == expected()
+    final = store.checkpoints.latest()
     assert final.task_ids.tolist() == list(range(n))  # every task once
-    assert runs.read_result(store) == expected()
+    assert final.state["values"].tobytes() == folded(store, range(n))["values"].tobytes()
+    assert final_curve(store) == expected()
 
 
 def test_tasks_committed_after_the_last_checkpoint_are_added_not_recomputed(tmp_path):
@@ -141,16 +198,16 @@ def test_tasks_committed_after_the_last_checkpoint_are_added_not_recomputed(tmp_
     reducer = Reducer(store, every_tasks=1)
     run_some(store, range(3), reducer)
     run_some(store, range(3, 8))  # committed, but the driver died before reducing them
-    assert store.latest_checkpoint().task_ids.tolist() == [0, 1, 2]
+    assert store.checkpoints.latest().task_ids.tolist() == [0, 1, 2]
 
     report = runs.execute(store, SerialExecutor())
 
     assert report.computed == n - 8
     assert report.curve == expected()
-    assert store.latest_checkpoint().task_ids.tolist() == list(range(n))
+    assert store.checkpoints.latest().task_ids.tolist() == list(range(n))
 
 
-# ------------------------------------------------------------------- damaged checkpoints
+# ------------------------------------------------------------------ damaged checkpoints
 
 
 @pytest.mark.parametrize("array", ["task_ids", "values", "jumps"])
@@ -159,26 +216,29 @@ def test_a_damaged_newest_checkpoint_falls_back_to_the_previous_one(tmp_path, ar
     n = store.n_tasks
     k = 5
     run_some(store, range(k), Reducer(store, every_tasks=1))
-    damage(checkpoint_file(store, k, array))
+    flip_byte(checkpoint_file(store, k, array))
 
-    resumed = Reducer(store, every_tasks=1)
+    with caplog.at_level(logging.WARNING, logger="chitally.store"):
+        resumed = Reducer(store, every_tasks=1)
     assert resumed.generation == k - 1
     assert resumed.skipped_generations == (k,)
     assert covered(resumed) == list(range(k - 1))
-    assert "damaged" in caplog.text
+    assert f"instead of damaged {k}" in caplog.text
 
     report = runs.execute(store, SerialExecutor())
     assert report.computed == n - k  # task k-1 is committed: added again, not recomputed
     assert report.curve == expected()
-    assert store.latest_checkpoint().task_ids.tolist() == list(range(n))
+    latest = store.checkpoints.latest()
+    assert latest.task_ids.tolist() == list(range(n))
+    assert latest.generation > k  # the next generation goes above the damaged one
 
 
 def test_two_damaged_generations_fall_back_two(tmp_path):
     store = new_store(tmp_path)
     k = 5
     run_some(store, range(k), Reducer(store, every_tasks=1))
-    damage(checkpoint_file(store, k, "values"))
-    damage(checkpoint_file(store, k - 1, "task_ids"))
+    flip_byte(checkpoint_file(store, k, "values"))
+    flip_byte(checkpoint_file(store, k - 1, "task_ids"))
 
     resumed = Reducer(store, every_tasks=1)
     assert resumed.generation == k - 2 and resumed.skipped_generations == (k, k - 1)
@@ -197,32 +257,58 @@ def test_a_damaged_pointer_falls_back_to_the_newest_recorded_generation(tmp_path
     assert runs.execute(store, SerialExecutor()).curve == expected()
 
 
-def test_a_damaged_task_table_is_set_aside_and_computed_again(tmp_path):
+# ---------------------------------------------------------------- damaged task outputs
+
+
+@pytest.mark.parametrize("damage", ["flipped byte", "truncated record"])
+def test_a_damaged_task_output_is_set_aside_and_computed_again(tmp_path, damage):
     store = new_store(tmp_path)
     run_some(store, range(store.n_tasks))
     victim = 4
-    damage(Path(store.url) / "tables" / f"task-{victim:06d}" / "jumps" / "c" / "0")
+    record = store.io.get(CommitLog.commit_key(victim))
+    if damage == "flipped byte":
+        flip_byte(Path(store.url, CommitLog.output_prefix(victim), "jumps", "c", "0"))
+    else:
+        Path(store.url, CommitLog.commit_key(victim)).write_bytes(record[: len(record) // 2])
 
     reducer = Reducer(store, every_tasks=1)
     assert reducer.add(victim) is False
-    assert not store.committed()[victim] and not reducer.is_covered(victim)
+    assert not store.commits.committed()[victim] and not reducer.is_covered(victim)
+    assert store.commits.state(victim) == "pending"
+    kept = sorted(p.relative_to(store.url).as_posix()
+                  for p in Path(store.url, "quarantine").glob(f"*/{CommitLog.commit_key(victim)}"))
+    assert len(kept) == 1  # the damaged record is kept aside, not deleted
 
     report = runs.execute(store, SerialExecutor())
     assert report.computed == 1
     assert report.curve == expected()
 
 
+def test_damaged_outputs_found_when_resuming_are_reported_as_set_aside(tmp_path):
+    store = new_store(tmp_path)
+    run_some(store, range(6))
+    for victim in (2, 5):
+        flip_byte(Path(store.url, CommitLog.output_prefix(victim), "values", "c", "0"))
+
+    report = runs.execute(store, SerialExecutor())
+
+    assert sorted(report.set_aside) == [2, 5]
+    assert report.computed == store.n_tasks - 6 + 2
+    assert report.curve == expected()
+
+
 # ------------------------------------------------------------------- exactly once
 
 
-def test_a_task_is_never_summed_twice(tmp_path):
+def test_a_task_is_never_folded_twice(tmp_path):
     store = new_store(tmp_path)
     n = store.n_tasks
     run_some(store, range(n))
-    # summing a table twice would show: each table holds its rows' vertices at 0.0
-    v, j = store.read_jump_table(0)
-    twice = Curve.from_jumps(*merge_jumps([v, v], [j, j]), eps=EPS, max_dim=CAP, n_points=n)
-    once = Curve.from_jumps(v, j, eps=EPS, max_dim=CAP, n_points=n)
+    # folding a table twice would show: each table holds its rows' vertices at 0.0
+    t = store.commits.read(0)
+    twice = Curve.from_jumps(*merge_jumps([t["values"]] * 2, [t["jumps"]] * 2), eps=EPS,
+                             max_dim=CAP, n_points=n)
+    once = Curve.from_jumps(t["values"], t["jumps"], eps=EPS, max_dim=CAP, n_points=n)
     assert twice != once
 
     reducer = Reducer(store, every_tasks=4, every_seconds=1e9)
@@ -234,14 +320,16 @@ def test_a_task_is_never_summed_twice(tmp_path):
     assert reducer.add(0) and reducer.add(n - 1)  # covered duplicates, after checkpoints
     assert reducer.add_committed() == []
     assert reducer.n_covered == n
-    assert reducer.finish() == expected()
+    reducer.finish()
+    assert final_curve(store) == expected()
 
     again = Reducer(store, every_tasks=1)  # resumed from the final checkpoint
     for task in range(n):
         assert again.add(task)
     assert again.add_committed() == [] and again.n_covered == n
-    assert again.finish() == expected()
-    assert store.latest_checkpoint().task_ids.tolist() == list(range(n))
+    again.finish()
+    assert final_curve(store) == expected()
+    assert store.checkpoints.latest().task_ids.tolist() == list(range(n))
 
 
 def test_running_a_task_twice_then_adding_it_twice_gives_the_same_curve(tmp_path):
@@ -251,21 +339,15 @@ def test_running_a_task_twice_then_adding_it_twice_gives_the_same_curve(tmp_path
     run_some(store, [0, 1, 2], reducer)
     run_some(store, [1, 2], reducer)  # duplicate attempts, reported done again
     run_some(store, range(3, n), reducer)
-    assert reducer.finish() == expected()
+    reducer.finish()
+    assert final_curve(store) == expected()
 
 
-def test_finish_refuses_an_incomplete_sum(tmp_path):
+def test_finish_refuses_an_incomplete_fold(tmp_path):
     store = new_store(tmp_path)
     reducer = Reducer(store, every_tasks=1)
     run_some(store, range(3), reducer)
     assert not reducer.complete
-    with pytest.raises(RuntimeError, match="not reduced yet"):
+    with pytest.raises(RuntimeError, match=f"{store.n_tasks - 3} tasks are not reduced yet"):
         reducer.finish()
-    assert store.read_curve() is None
-
-
-def test_checkpoint_record_names_its_tasks(tmp_path):
-    store = new_store(tmp_path)
-    run_some(store, range(3), Reducer(store, every_tasks=1))
-    record = json.loads((checkpoint_file(store, 3, "values").parents[2] / "record.json").read_text())
-    assert record["generation"] == 3 and record["n_task_ids"] == 3
+    assert final_curve(store) is None and not store.is_complete()

@@ -171,9 +171,14 @@ class DaskExecutor:
             self._window_at = now
         return self._window
 
-    def _check_alive(self, since_workers: list[float]) -> None:
+    def _client_gone(self) -> str | None:
+        """The client's status if it is closed or failed, else None."""
         status = getattr(self.client, "status", "running")
-        if status in ("closed", "closing", "failed"):
+        return status if status in ("closed", "closing", "failed") else None
+
+    def _check_alive(self, since_workers: list[float]) -> None:
+        status = self._client_gone()
+        if status:
             raise SchedulerLost(f"the Dask scheduler was lost (client {status})")
         now = time.monotonic()
         try:
@@ -241,7 +246,7 @@ class DaskExecutor:
                         outcome.failed[task] = message_of(exc)
                         events.task_failed(task, outcome.failed[task], attempts.get(task, 0) + 1)
                     except Exception as exc:
-                        if getattr(self.client, "status", "running") in ("closed", "closing", "failed"):
+                        if self._client_gone():
                             raise SchedulerLost("the Dask scheduler was lost") from exc
                         number = attempts.get(task, 0)
                         if number >= self.retries:
@@ -257,8 +262,14 @@ class DaskExecutor:
                     finally:
                         fut.release()
                 refill()
-        except BaseException:
+        except BaseException as exc:
             self._cancel(list(in_flight))
+            # A closed client fails whatever touches it next (waiting raises
+            # FuturesCancelledError, submitting raises too): that is a lost scheduler.
+            status = self._client_gone()
+            if (status and isinstance(exc, Exception)
+                    and not isinstance(exc, (SchedulerLost, *FATAL))):
+                raise SchedulerLost(f"the Dask scheduler was lost (client {status})") from exc
             raise
         return outcome
 

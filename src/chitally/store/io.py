@@ -231,7 +231,19 @@ class StoreIO:
         self.op(what, prefix, lambda: sync(self.zarr_store.delete_dir(prefix)), task=task)
 
     def clear(self, *, what: str) -> None:
-        self.op(what, "", lambda: sync(self.zarr_store.clear()))
+        """Remove every key at this location (the location itself stays)."""
+
+        def run() -> None:
+            store = self.zarr_store
+            if isinstance(store, LocalStore):
+                sync(store.clear())
+                return
+            # Key by key: zarr's FsspecStore.clear stops at the first path it finds
+            # already removed with its folder, leaving the rest of the store behind.
+            for key in sync(_collect(store.list())):
+                sync(store.delete(key))
+
+        self.op(what, "", run)
 
     def list(self, prefix: str) -> list[str]:
         def run() -> list[str]:

@@ -182,12 +182,24 @@ class Lease:
         generation and not released. Call before every write only the holder may make."""
         if self._released:
             raise LeaseLost(f"the lease on {self.io.url} was released")
-        if self._lost or self.io.exists(_gen_key(self.generation + 1)):
+        if self._lost or self._superseded():
             self._lost = True
-            rec = _read(self.io, _gen_key(self.generation + 1)) or {}
+            newest = max(current_generation(self.io), self.generation + 1)
+            rec = _read(self.io, _gen_key(newest))
+            if rec is None:
+                raise LeaseLost(f"the lease on {self.io.url} was removed; this run stopped writing")
             raise LeaseLost(
                 f"the lease on {self.io.url} was taken over by {rec.get('owner')} (host "
                 f"{rec.get('host')}, pid {rec.get('pid')}); this run stopped writing")
+
+    def _superseded(self) -> bool:
+        # Generation g+1 exists, or our own record is gone (or another's): each new
+        # holder prunes the records of generations before its previous one, so after two
+        # more takeovers g+1 is gone as well, but then so is g.
+        if self.io.exists(_gen_key(self.generation + 1)):
+            return True
+        mine = _read(self.io, _gen_key(self.generation))
+        return mine is None or mine.get("token") != self.token
 
     @property
     def held(self) -> bool:
