@@ -955,7 +955,7 @@ def test_a_second_acquire_is_refused_naming_the_holder(url):
         with pytest.raises(LeaseHeld) as err:
             lease_mod.acquire(io, "run-2", takeover=takeover)
         msg = str(err.value)
-        assert f"in use by run-1 (host {HOST}, pid {os.getpid()}, last heartbeat" in msg
+        assert f"in use by run-1 (pid {os.getpid()} on {HOST}, last heartbeat" in msg
         assert "\n" not in msg and not isinstance(err.value, LeaseLost)
     assert lease.held and lease_mod.current_generation(io) == 1
     lease.release()
@@ -967,7 +967,7 @@ def test_a_holder_in_another_live_process_is_named(local, tmp_path):
                             stdout=subprocess.PIPE, text=True, env=child_env())
     try:
         pid = int(proc.stdout.readline())
-        with pytest.raises(LeaseHeld, match=f"in use by the-other-run \\(host {HOST}, pid {pid}"):
+        with pytest.raises(LeaseHeld, match=f"in use by the-other-run \\(pid {pid} on {HOST}"):
             lease_mod.acquire(StoreIO(local), "me", takeover=True)
     finally:
         stop.touch()
@@ -980,7 +980,7 @@ def test_a_holder_whose_process_died_is_taken_over(local, caplog):
     assert lease_mod.describe_holder(io)["verdict"] == "dead"
     with caplog.at_level(logging.WARNING, logger="chitally.store"):
         lease = lease_mod.acquire(io, "run-2")  # no takeover asked: a dead holder needs none
-    assert f"taking over the lease of crashed-run (host {HOST}, pid {pid}" in caplog.text
+    assert f"taking over the lease of crashed-run (pid {pid} on {HOST}" in caplog.text
     assert "its process is gone" in caplog.text
     assert lease.generation == 2 and lease_mod.describe_holder(io)["owner"] == "run-2"
     lease.release()
@@ -997,7 +997,7 @@ def test_a_stale_holder_is_taken_over_only_when_asked(url):
     new = lease_mod.acquire(io, "me", takeover=True, stale_after=0.0)
 
     assert new.generation == 2 and new.held
-    with pytest.raises(LeaseLost, match=f"taken over by me \\(host {HOST}, pid {os.getpid()}\\)"):
+    with pytest.raises(LeaseLost, match=f"taken over by me \\(pid {os.getpid()} on {HOST}\\)"):
         old.check()
     assert not old.held and old.lost
     with pytest.raises(LeaseLost):

@@ -24,6 +24,7 @@ from zarr.abc.store import Store
 from zarr.codecs import Crc32cCodec, ZstdCodec
 from zarr.core.buffer import default_buffer_prototype
 from zarr.core.sync import sync
+from zarr.errors import ContainsArrayError
 from zarr.storage import FsspecStore, LocalStore
 
 from .errors import CorruptTask, NotAStore, StoreError
@@ -284,23 +285,28 @@ class StoreIO:
         if chunks is None:
             chunks = tuple(max(int(s), 1) for s in data.shape) or ()
 
+        def create(overwrite: bool) -> Any:
+            return zarr.create_array(
+                self.zarr_store, name=path, shape=data.shape, dtype=data.dtype, chunks=chunks,
+                compressors=_compressors(), fill_value=0, config=_ARRAY_CONFIG, overwrite=overwrite)
+
+        def fits(arr: Any) -> bool:
+            return arr.shape == data.shape and arr.dtype == data.dtype and tuple(arr.chunks) == chunks
+
         def run() -> None:
             try:
                 arr = zarr.open_array(self.zarr_store, path=path, mode="r+")
             except Exception:
-                arr = None
+                try:
+                    # Not overwrite: a duplicate attempt of the same task may be creating
+                    # it at this moment, and must not have its files deleted under it.
+                    arr = create(overwrite=False)
+                except ContainsArrayError:
+                    arr = zarr.open_array(self.zarr_store, path=path, mode="r+")
             # Rewriting an array of the same shape in place never deletes anything, so a
             # duplicate attempt of a deterministic task cannot open a window in which a
-            # reader finds the committed data gone.
-            if (arr is None or arr.shape != data.shape or arr.dtype != data.dtype
-                    or tuple(arr.chunks) != chunks):
-                arr = zarr.create_array(
-                    self.zarr_store, name=path, shape=data.shape, dtype=data.dtype,
-                    chunks=chunks, compressors=_compressors(), fill_value=0,
-                    config=_ARRAY_CONFIG, overwrite=True,
-                )
-            else:
-                arr = arr.with_config(_ARRAY_CONFIG)
+            # reader finds the committed data gone; another shape is stale data.
+            arr = arr.with_config(_ARRAY_CONFIG) if fits(arr) else create(overwrite=True)
             if data.size:
                 arr[...] = data
 

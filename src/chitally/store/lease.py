@@ -189,8 +189,8 @@ class Lease:
             if rec is None:
                 raise LeaseLost(f"the lease on {self.io.url} was removed; this run stopped writing")
             raise LeaseLost(
-                f"the lease on {self.io.url} was taken over by {rec.get('owner')} (host "
-                f"{rec.get('host')}, pid {rec.get('pid')}); this run stopped writing")
+                f"the lease on {self.io.url} was taken over by {rec.get('owner')} (pid "
+                f"{rec.get('pid')} on {rec.get('host')}); this run stopped writing")
 
     def _superseded(self) -> bool:
         # Generation g+1 exists, or our own record is gone (or another's): each new
