@@ -156,6 +156,13 @@ def main(verbose: int) -> None:
     """Exact Euler characteristic curves of Vietoris-Rips filtrations of large point sets."""
     level = logging.WARNING - 10 * min(verbose, 2)
     logging.basicConfig(level=level, format="%(levelname)s %(name)s: %(message)s")
+    # distributed configures its own INFO handlers when first imported; keep the terminal
+    # for our progress and our one-line errors
+    if not verbose:
+        import dask
+
+        dask.config.set({"logging.distributed": "warning", "logging.bokeh": "error",
+                         "logging.tornado": "error"})
 
 
 # ------------------------------------------------------------------ shared options
