@@ -16,6 +16,7 @@ import socket
 import time
 import traceback
 from collections.abc import Callable, Sequence
+from concurrent.futures import CancelledError
 from dataclasses import dataclass, field
 from typing import Any, Protocol
 
@@ -171,10 +172,19 @@ class DaskExecutor:
             self._window_at = now
         return self._window
 
-    def _check_alive(self, since_workers: list[float]) -> None:
+    def _lost(self) -> SchedulerLost:
         status = getattr(self.client, "status", "running")
-        if status in ("closed", "closing", "failed"):
-            raise SchedulerLost(f"the Dask scheduler was lost (client {status})")
+        try:
+            where = f" at {self.client.scheduler.address}"
+        except Exception:
+            where = ""
+        return SchedulerLost(f"the Dask scheduler{where} was lost (client {status})")
+
+    def _check_alive(self, since_workers: list[float]) -> None:
+        # "connecting": the client lost its scheduler and cancelled every future; even if
+        # it reconnects, nothing submitted survives
+        if getattr(self.client, "status", "running") in ("closed", "closing", "failed", "connecting"):
+            raise self._lost()
         now = time.monotonic()
         try:
             n = len(self.client.scheduler_info()["workers"])
@@ -226,6 +236,9 @@ class DaskExecutor:
                     finished = wait(list(in_flight), timeout=1.0, return_when="FIRST_COMPLETED").done
                 except TimeoutError:
                     finished = set()
+                except CancelledError as exc:
+                    # the client cancels all our futures when it loses the scheduler
+                    raise self._lost() from exc
                 events.tick()
                 if not finished:
                     self._check_alive(since_workers)
@@ -235,14 +248,17 @@ class DaskExecutor:
                     task = in_flight.pop(fut)
                     try:
                         result = fut.result()
+                    except CancelledError as exc:
+                        raise self._lost() from exc
                     except FATAL:
                         raise
                     except NOT_RETRIED as exc:
                         outcome.failed[task] = message_of(exc)
                         events.task_failed(task, outcome.failed[task], attempts.get(task, 0) + 1)
                     except Exception as exc:
-                        if getattr(self.client, "status", "running") in ("closed", "closing", "failed"):
-                            raise SchedulerLost("the Dask scheduler was lost") from exc
+                        if getattr(self.client, "status", "running") in ("closed", "closing", "failed",
+                                                                         "connecting"):
+                            raise self._lost() from exc
                         number = attempts.get(task, 0)
                         if number >= self.retries:
                             outcome.failed[task] = message_of(exc)
