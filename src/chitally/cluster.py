@@ -7,6 +7,7 @@ thread may use. Nothing here computes or writes.
 
 from __future__ import annotations
 
+import asyncio
 import getpass
 import logging
 import os
@@ -30,6 +31,12 @@ class Connection:
     dashboard: str | None
 
     def close(self) -> None:
+        if getattr(self.client, "status", "running") != "running":
+            # A client that lost its scheduler is still trying to reconnect; closing it
+            # ends that attempt, which distributed then logs (from its event loop, after
+            # close returns) as an error, with a traceback. The loss has been reported
+            # already, in one line.
+            _quiet_abandoned_reconnects()
         self.client.close()
         if self.cluster is not None:
             self.cluster.close()
@@ -42,6 +49,22 @@ class Connection:
 
         port = urlparse(self.dashboard).port or 8787
         return f"ssh -N -L {port}:127.0.0.1:{port} {getpass.getuser()}@{socket.getfqdn()}"
+
+
+class _AbandonedReconnect(logging.Filter):
+    """Drops distributed's reports of a reconnection we ended on purpose."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        if record.getMessage().startswith("Failed to reconnect to scheduler"):
+            return False
+        exc = record.exc_info[1] if record.exc_info else None
+        return not isinstance(exc, asyncio.CancelledError)
+
+
+def _quiet_abandoned_reconnects() -> None:
+    log = logging.getLogger("distributed.client")
+    if not any(isinstance(f, _AbandonedReconnect) for f in log.filters):
+        log.addFilter(_AbandonedReconnect())
 
 
 def _dashboard_of(client: Any) -> str | None:
