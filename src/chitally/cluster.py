@@ -120,6 +120,10 @@ def connect(
         silence_logs=logging.WARNING,
     )
     client = Client(cluster)
+    from .workerlogs import QuietTaskErrors
+
+    # its workers write to our terminal, where the driver reports task errors itself
+    client.register_plugin(QuietTaskErrors(), name=QuietTaskErrors.name)
     return Connection(client, cluster, _dashboard_of(client))
 
 
