@@ -39,6 +39,10 @@ class Connection:
             _quiet_abandoned_reconnects()
         self.client.close()
         if self.cluster is not None:
+            # our workers may be in the middle of a task (a run interrupted or stopped by
+            # an error): the nanny kills them after a grace period, and says so; we
+            # meant it
+            _drop_messages("distributed.nanny", "Worker process still alive after")
             self.cluster.close()
 
     def ssh_hint(self) -> str | None:
@@ -51,20 +55,30 @@ class Connection:
         return f"ssh -N -L {port}:127.0.0.1:{port} {getpass.getuser()}@{socket.getfqdn()}"
 
 
-class _AbandonedReconnect(logging.Filter):
-    """Drops distributed's reports of a reconnection we ended on purpose."""
+class _DropMessages(logging.Filter):
+    """Drops log records whose message starts with one of `prefixes`, or that carry a
+    CancelledError when `cancelled` is set."""
+
+    def __init__(self, prefixes: tuple[str, ...], cancelled: bool = False) -> None:
+        super().__init__()
+        self.prefixes = prefixes
+        self.cancelled = cancelled
 
     def filter(self, record: logging.LogRecord) -> bool:
-        if record.getMessage().startswith("Failed to reconnect to scheduler"):
+        if record.getMessage().startswith(self.prefixes):
             return False
         exc = record.exc_info[1] if record.exc_info else None
-        return not isinstance(exc, asyncio.CancelledError)
+        return not (self.cancelled and isinstance(exc, asyncio.CancelledError))
+
+
+def _drop_messages(logger: str, *prefixes: str, cancelled: bool = False) -> None:
+    log = logging.getLogger(logger)
+    if not any(isinstance(f, _DropMessages) and f.prefixes == prefixes for f in log.filters):
+        log.addFilter(_DropMessages(prefixes, cancelled))
 
 
 def _quiet_abandoned_reconnects() -> None:
-    log = logging.getLogger("distributed.client")
-    if not any(isinstance(f, _AbandonedReconnect) for f in log.filters):
-        log.addFilter(_AbandonedReconnect())
+    _drop_messages("distributed.client", "Failed to reconnect to scheduler", cancelled=True)
 
 
 def _dashboard_of(client: Any) -> str | None:
