@@ -11,7 +11,11 @@ import asyncio
 import getpass
 import logging
 import os
+import signal
 import socket
+import threading
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any
 
@@ -104,6 +108,28 @@ def _dashboard_of(client: Any) -> str | None:
         return link
 
 
+@contextmanager
+def _children_ignore_sigint() -> Iterator[None]:
+    """Start worker processes with SIGINT ignored.
+
+    A Ctrl-C on the terminal reaches every process of the foreground group, the
+    LocalCluster's workers too, and each printed a KeyboardInterrupt traceback while the
+    driver was stopping them in order. An ignored disposition survives fork and exec
+    (and Python then installs no handler of its own), so workers spawned in this window
+    leave the interruption to the driver. A Ctrl-C during these seconds is ignored by
+    the driver too.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        yield
+    finally:
+        # None: a handler installed outside Python, which cannot be put back exactly
+        signal.signal(signal.SIGINT, signal.SIG_DFL if previous is None else previous)
+
+
 def connect(
     scheduler: str | None = None,
     scheduler_file: str | None = None,
@@ -124,15 +150,16 @@ def connect(
     cores = os.cpu_count() or 1
     n_workers = workers or cores
     threads = threads or max(1, cores // n_workers)
-    cluster = LocalCluster(
-        n_workers=n_workers,
-        threads_per_worker=threads,
-        processes=True,
-        host="127.0.0.1",
-        dashboard_address=dashboard_address,
-        memory_limit=memory_limit or "auto",
-        silence_logs=logging.WARNING,
-    )
+    with _children_ignore_sigint():
+        cluster = LocalCluster(
+            n_workers=n_workers,
+            threads_per_worker=threads,
+            processes=True,
+            host="127.0.0.1",
+            dashboard_address=dashboard_address,
+            memory_limit=memory_limit or "auto",
+            silence_logs=logging.WARNING,
+        )
     client = Client(cluster)
     from .workerlogs import QuietTaskErrors
 
