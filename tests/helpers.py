@@ -261,6 +261,106 @@ class Processes:
                 print(f"process {proc.pid} did not exit after SIGKILL", file=sys.stderr)
 
 
+class Terminal:
+    """A process on a pseudo-terminal of its own, as a user runs it at a shell prompt:
+    the session leader of a new session whose controlling terminal is the pty, so a
+    ``^C`` typed there reaches its whole foreground process group (a LocalCluster's
+    workers too). Output of every process on the terminal is collected."""
+
+    def __init__(self, args: Sequence[str], env: dict[str, str] | None = None,
+                 cwd: Path | None = None) -> None:
+        import fcntl
+        import termios
+
+        master, slave = os.openpty()
+
+        def take_terminal() -> None:  # in the child, after setsid: the pty becomes ours
+            fcntl.ioctl(0, termios.TIOCSCTTY, 0)
+
+        try:
+            self.popen = subprocess.Popen(list(args), stdin=slave, stdout=slave, stderr=slave,
+                                          env=child_env(env), cwd=cwd, start_new_session=True,
+                                          preexec_fn=take_terminal)
+        finally:
+            os.close(slave)
+        self.master = master
+        self.buffer = bytearray()
+        self.closed = False
+
+    @property
+    def pid(self) -> int:
+        return self.popen.pid
+
+    def pump(self, seconds: float = 0.05) -> None:
+        """Collect output for up to `seconds` (returns early once the terminal closes)."""
+        import select
+
+        deadline = time.monotonic() + seconds
+        while not self.closed:
+            left = deadline - time.monotonic()
+            if left <= 0:
+                return
+            ready, _, _ = select.select([self.master], [], [], left)
+            if not ready:
+                return
+            try:
+                data = os.read(self.master, 1 << 16)
+            except OSError:  # EIO: every process holding the terminal has ended
+                data = b""
+            if not data:
+                self.closed = True
+                return
+            self.buffer.extend(data)
+
+    def type(self, text: bytes) -> None:
+        """Type on the terminal (b"\x03" is Ctrl-C)."""
+        os.write(self.master, text)
+
+    def wait_until(self, condition: Callable[[], T], timeout: float, what: str) -> T:
+        """`wait_for` that keeps reading the terminal (a full pty would block its writers)."""
+        def check() -> T:
+            self.pump(0.05)
+            return condition()
+
+        return wait_for(check, timeout, what, interval=0)
+
+    def wait(self, timeout: float) -> int:
+        """Wait for the process to end and for its terminal to close; its exit status."""
+        deadline = time.monotonic() + timeout
+        while self.popen.poll() is None or not self.closed:
+            if time.monotonic() > deadline:
+                pytest.fail(f"the process on the terminal did not end within {timeout:g} s:\n"
+                            f"{self.output()}")
+            self.pump(0.2)
+        return self.popen.wait(timeout=1)
+
+    def output(self) -> str:
+        return self.buffer.decode(errors="replace").replace("\r\n", "\n")
+
+    def close(self) -> None:
+        try:
+            os.killpg(self.popen.pid, signal.SIGKILL)
+        except (ProcessLookupError, PermissionError):
+            pass
+        self.popen.wait(timeout=30)
+        os.close(self.master)
+
+
+@pytest.fixture
+def terminals():
+    """Start `Terminal`s through this (a list); their process groups are killed at teardown."""
+    started: list[Terminal] = []
+
+    def start(args: Sequence[str], env: dict[str, str] | None = None) -> Terminal:
+        term = Terminal(args, env)
+        started.append(term)
+        return term
+
+    yield start
+    for term in started:
+        term.close()
+
+
 @pytest.fixture
 def processes(tmp_path: Path):
     """Start processes through this; every one of their process groups is killed at teardown."""
