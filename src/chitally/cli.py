@@ -115,8 +115,8 @@ def guarded(fn: Callable[..., Any]) -> Callable[..., Any]:
         except LeaseHeld as exc:
             fail(str(exc).replace("pass takeover=True", "rerun with --takeover"), EXIT_BUSY)
         except SchedulerLost as exc:
-            fail(f"{exc}; committed tasks are kept: `chitally resume RUN` continues on a new "
-                 "cluster", EXIT_INCOMPLETE)
+            fail(f"{exc}; committed tasks are kept: `chitally resume {getattr(exc, 'url', 'RUN')}` "
+                 "continues on a new cluster", EXIT_INCOMPLETE)
         except ResultDamaged as exc:
             fail(f"{exc}; `chitally resume` writes it again from the task outputs", EXIT_INCOMPLETE)
         except InputsDamaged as exc:
