@@ -221,7 +221,7 @@ def test_killed_run_resumes_without_recomputing(tmp_path, processes, src, expect
     assert lease_holder(run) is None
 
 
-@pytest.mark.parametrize("how", ["serial", "dask"])
+@pytest.mark.parametrize("how", ["serial", pytest.param("dask", marks=pytest.mark.slow)])
 def test_task_dying_between_data_and_commit_is_recomputed(tmp_path, src, expected, n, how):
     """A task attempt writes its outputs and its process dies before the commit record.
     With Dask the worker dies (its nanny starts a new one) and the same run recomputes the
@@ -285,7 +285,7 @@ def test_lost_scheduler_exits_3_and_resume_recomputes_nothing(tmp_path, processe
     assert seconds < 20, f"the driver took {seconds:.1f} s to notice the lost scheduler"
     line = one_line(driver.stderr())
     assert line.startswith("chitally: error: the Dask scheduler at tcp://127.0.0.1:")
-    assert "was lost" in line and "`chitally resume" in line and "continues" in line
+    assert "was lost" in line and f"`chitally resume {run}` continues" in line
     assert lease_holder(run) is None
     assert commits(run) == set(range(first))
     for worker in cluster.workers:  # the old cluster is gone for good
@@ -770,9 +770,10 @@ def test_interrupted_run_exits_cleanly_and_resumes(tmp_path, terminals, src, exp
     gate, gates = gated(tmp_path, first, n)
     faults = make_faults(tmp_path, gate=gates)
     run = tmp_path / "run.zarr"
-    term = terminals(command(*run_args(src, run, "--workers", 2, "--threads", 1), faults=faults))
-    term.wait_until(lambda: commits(run) == set(range(first)) and under_way(faults, first, 2), 90,
-                    f"tasks 0 to {first - 1} committed and both workers at the gate")
+    workers = 2 if how == "SIGINT" else 1  # SIGTERM reaches the driver alone
+    term = terminals(command(*run_args(src, run, "--workers", workers, "--threads", 1), faults=faults))
+    term.wait_until(lambda: commits(run) == set(range(first)) and under_way(faults, first, workers),
+                    90, f"tasks 0 to {first - 1} committed and every worker at the gate")
     if how == "SIGINT":
         for _ in range(3):
             term.type(b"\x03")
@@ -797,6 +798,6 @@ def test_interrupted_run_exits_cleanly_and_resumes(tmp_path, terminals, src, exp
     attempts = faults.attempts()
     assert set(attempts) == set(range(n))
     assert all(attempts[t] == 1 for t in range(first))  # committed: never computed again
-    # the two attempts stopped at the gate ran again; no other task ran twice
+    # the attempts stopped at the gate ran again; no other task ran twice
     twice = {t for t in attempts if attempts[t] == 2}
-    assert len(twice) == 2 and twice <= set(range(first, n)) and max(attempts.values()) == 2
+    assert len(twice) == workers and twice <= set(range(first, n)) and max(attempts.values()) == 2
