@@ -509,6 +509,18 @@ def test_damaged_inputs_stop_the_run_with_one_line(tmp_path, stopped_at_12, how)
 # ------------------------------------------------------------ the completion marker
 
 
+def test_complete_store_without_its_completion_marker(tmp_path, complete, src, expected):
+    """A complete store whose `created.json` is gone: the same input and parameters
+    rebuild the marker, and the run is reported complete with nothing computed."""
+    run = copy_store(complete, tmp_path / "run.zarr")
+    (run / "created.json").unlink()
+    res = CliRunner().invoke(main, run_args(src, run, "--serial"))
+    assert res.exit_code == 0, res.output
+    assert "0 computed now" in res.stderr
+    assert json.loads((run / "created.json").read_text())["rebuilt"]
+    assert result_of(run) == expected
+
+
 def test_store_without_its_completion_marker(tmp_path, src, stopped_at_12, points, expected, n):
     """A store whose `created.json` is gone (its creation looks unfinished) but which
     holds committed tasks: other parameters are refused in one line and nothing is

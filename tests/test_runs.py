@@ -222,3 +222,40 @@ def test_an_empty_eps_graph_and_a_single_point():
     assert n_tasks == 6 and curve.chi.tolist() == [6] and curve == brute_force_curve(pts, 1.0, None)
     one, _ = run_curve(np.zeros((1, 3)), 0.5, 2)
     assert one.chi.tolist() == [1] and one == brute_force_curve(np.zeros((1, 3)), 0.5, 2)
+
+
+# ------------------------------------------------------------------- the run API
+
+
+def test_run_retries_a_failing_task_and_records_one_that_keeps_failing(tmp_path, monkeypatch):
+    """`runs.run` in this process: a task whose first two attempts fail commits on its
+    third (--retries 2); one whose first three fail is recorded as failed, the run is
+    incomplete and a second `run` computes only that task. The task function is the
+    engine's, wrapped with faults (`faultwrap`): the executors look it up when they run."""
+    from faultwrap import FaultWrapper
+    from helpers import make_faults
+
+    from chitally import engine
+
+    pts, eps = cloud_r3()
+    faults = make_faults(tmp_path, fail={"2": 2, "4": 3})
+    monkeypatch.setattr(engine, "run_task", FaultWrapper(faults.spec))
+    store = medium_store(str(tmp_path / "run.zarr"), cap=None)
+    n = store.n_tasks
+    where = runs.Where(serial=True, retries=2)
+
+    report = runs.run(store, where)
+    assert not report.complete and report.curve is None
+    assert report.failed == {4: "InjectedFault: injected failure in task 4, attempt 3"}
+    assert (report.done, report.computed) == (n - 1, n - 1)
+    assert faults.attempts() == {t: {2: 3, 4: 3}.get(t, 1) for t in range(n)}
+    assert runs.status(store)["failures"] == {4: report.failed[4]}
+
+    report = runs.run(runs.open_run(store.url), where)  # attempt 4 of task 4 goes through
+    assert report.complete and report.computed == 1 and report.failed == {}
+    assert report.curve == euler_curve(pts, eps, None)
+    assert faults.attempts() == {t: {2: 3, 4: 4}.get(t, 1) for t in range(n)}
+    assert runs.status(store)["failures"] == {}
+    # a complete run is reported as it is: no lease, nothing computed
+    again = runs.run(store, where)
+    assert again.complete and again.computed == 0 and again.curve == report.curve
