@@ -40,7 +40,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-import chitally.engine as engine
+from chitally import engine
 
 #: The engine's own task function, captured before anything can replace it.
 ORIGINAL = engine.run_task

@@ -261,6 +261,10 @@ class Processes:
                 print(f"process {proc.pid} did not exit after SIGKILL", file=sys.stderr)
 
 
+TAKE_TERMINAL = ("import fcntl, os, sys, termios; fcntl.ioctl(0, termios.TIOCSCTTY, 0); "
+                 "os.execvp(sys.argv[1], sys.argv[1:])")
+
+
 class Terminal:
     """A process on a pseudo-terminal of its own, as a user runs it at a shell prompt:
     the session leader of a new session whose controlling terminal is the pty, so a
@@ -269,18 +273,13 @@ class Terminal:
 
     def __init__(self, args: Sequence[str], env: dict[str, str] | None = None,
                  cwd: Path | None = None) -> None:
-        import fcntl
-        import termios
-
         master, slave = os.openpty()
-
-        def take_terminal() -> None:  # in the child, after setsid: the pty becomes ours
-            fcntl.ioctl(0, termios.TIOCSCTTY, 0)
-
         try:
-            self.popen = subprocess.Popen(list(args), stdin=slave, stdout=slave, stderr=slave,
-                                          env=child_env(env), cwd=cwd, start_new_session=True,
-                                          preexec_fn=take_terminal)
+            # the new session's leader makes the pty its controlling terminal, then becomes
+            # the command (same pid, session and terminal)
+            self.popen = subprocess.Popen([PYTHON, "-c", TAKE_TERMINAL, *args], stdin=slave, stdout=slave,
+                                          stderr=slave, env=child_env(env), cwd=cwd,
+                                          start_new_session=True)
         finally:
             os.close(slave)
         self.master = master

@@ -3,8 +3,8 @@
 
 Driven in process with click's CliRunner (nothing here needs a second process), except a
 check of the command in a process of its own. Curves are compared exactly with
-`chitally.euler_curve` on the same points and, once, with an outside reference (networkx
-``enumerate_all_cliques``, brute force).
+`chitally.euler_curve` on the same points and, once, with outside references (networkx
+``enumerate_all_cliques``, brute force; gudhi's Rips filtration).
 """
 
 from __future__ import annotations
@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 from helpers import chitally, cloud, explain, make_faults, tree_digest, write_points
-from references import brute_force_curve
+from references import brute_force_curve, gudhi_curve
 
 import chitally as ct
 from chitally import engine
@@ -39,10 +39,12 @@ def points() -> np.ndarray:
 
 @pytest.fixture(scope="module")
 def expected(points: np.ndarray) -> ct.Curve:
-    """`euler_curve`, which must equal the outside reference: every simplex listed by
-    networkx ``enumerate_all_cliques`` (references.brute_force_curve)."""
+    """`euler_curve`, which must equal two outside references: every simplex listed by
+    networkx ``enumerate_all_cliques`` (references.brute_force_curve), and gudhi's Rips
+    filtration (references.gudhi_curve)."""
     curve = ct.euler_curve(points, EPS)
-    assert curve == brute_force_curve(points, EPS, None)
+    assert curve == brute_force_curve(points, EPS, None)  # networkx, brute force
+    assert curve == gudhi_curve(points, EPS, None)  # gudhi RipsComplex
     return curve
 
 
@@ -403,5 +405,6 @@ def test_tiny_tasks_warn_with_the_figures(tmp_path, runner, monkeypatch):
     warning = next(line for line in res.stderr.splitlines() if line.startswith("warning: "))
     assert all(f in warning for f in figures), res.stderr
     assert f"{plan.n_tasks}/{plan.n_tasks} tasks done" in res.stderr
-    # euler_curve itself is checked against networkx and gudhi elsewhere
-    assert read_result(open_run(str(run))) == ct.euler_curve(points, eps)
+    curve = read_result(open_run(str(run)))
+    assert curve == ct.euler_curve(points, eps)
+    assert curve == gudhi_curve(points, eps, None)  # gudhi RipsComplex

@@ -1,10 +1,10 @@
 """`chitally run` on a real Dask cluster: a ``dask scheduler`` and two ``dask worker``
 processes on 127.0.0.1, reached through ``--scheduler``, ``--scheduler-file`` or the
 ``DASK_SCHEDULER_ADDRESS`` environment variable. Every run must give exactly the curve of
-`chitally.euler_curve` on the same points and of a brute-force outside reference, and its
-tasks must have run on the cluster's workers, not in the driver: every attempt is logged
-with its pid by `faultwrap` (here without faults), which the driver hands to the workers
-with each task.
+`chitally.euler_curve` on the same points and of outside references (networkx brute
+force, gudhi), and its tasks must have run on the cluster's workers, not in the driver:
+every attempt is logged with its pid by `faultwrap` (here without faults), which the
+driver hands to the workers with each task.
 """
 
 from __future__ import annotations
@@ -25,7 +25,7 @@ from helpers import (
     start_cluster,
     write_points,
 )
-from references import brute_force_curve
+from references import brute_force_curve, gudhi_curve
 
 import chitally as ct
 from chitally.runs import open_run, read_result
@@ -43,12 +43,14 @@ def points() -> np.ndarray:
 
 @pytest.fixture(scope="module")
 def expected(points: np.ndarray) -> dict[int | None, ct.Curve]:
-    """The curve by `euler_curve`, checked once against the outside reference
-    (networkx ``enumerate_all_cliques``, brute force, see references.brute_force_curve)."""
+    """The curve by `euler_curve`, checked once against two outside references:
+    networkx ``enumerate_all_cliques`` (brute force, references.brute_force_curve) and
+    gudhi's Rips filtration (references.gudhi_curve)."""
     out = {}
     for max_dim in (None, 2):
         ours = ct.euler_curve(points, EPS, max_dim)
-        assert ours == brute_force_curve(points, EPS, max_dim)
+        assert ours == brute_force_curve(points, EPS, max_dim)  # networkx, brute force
+        assert ours == gudhi_curve(points, EPS, max_dim)  # gudhi RipsComplex
         out[max_dim] = ours
     return out
 
@@ -140,8 +142,9 @@ def test_store_recreated_at_same_path(tmp_path, points, expected, cluster, fault
     res = chitally("run", tmp_path / "other.npy", "--eps", eps2, "--task-cost", COST, "--out", run,
                    "--scheduler", cluster.address, "--no-progress", faults=faults)
     assert res.returncode == 0, explain(res)
-    # euler_curve itself is checked against networkx (brute force) in the fixtures
-    check_run(run, ct.euler_curve(other, eps2), faults, worker_pids(cluster.address))
+    want = ct.euler_curve(other, eps2)
+    assert want == gudhi_curve(other, eps2, None)  # gudhi RipsComplex
+    check_run(run, want, faults, worker_pids(cluster.address))
 
 
 def test_local_cluster_reports_a_dashboard_that_answers():

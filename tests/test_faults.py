@@ -10,8 +10,8 @@ count exactly which tasks were computed and how often). Processes are real (the
 `chitally` command, ``dask scheduler``, ``dask worker``, a LocalCluster's workers), each in
 its own process group, and every wait polls the run store's files or the attempt log
 with a timeout. Every run must end with exactly the curve of `chitally.euler_curve` on
-the same points, itself checked against an outside reference (networkx
-``enumerate_all_cliques``, brute force).
+the same points, itself checked against outside references (networkx
+``enumerate_all_cliques``, brute force; gudhi's Rips filtration).
 """
 
 from __future__ import annotations
@@ -30,8 +30,8 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 from helpers import (
-    chitally,
     child_env,
+    chitally,
     chunk,
     cloud,
     command,
@@ -40,7 +40,6 @@ from helpers import (
     flip_byte,
     lease_holder,
     make_faults,
-    n_tasks,
     processes,  # noqa: F401 - fixture
     start_cluster,
     terminals,  # noqa: F401 - fixture
@@ -50,7 +49,7 @@ from helpers import (
     wait_for,
     write_points,
 )
-from references import brute_force_curve
+from references import brute_force_curve, gudhi_curve
 
 import chitally as ct
 from chitally.cli import EXIT_BUSY, EXIT_FAILURE, EXIT_INCOMPLETE, EXIT_USAGE, main
@@ -74,10 +73,12 @@ def points() -> np.ndarray:
 
 @pytest.fixture(scope="module")
 def expected(points: np.ndarray) -> ct.Curve:
-    """The curve by `euler_curve`, which must equal the outside reference: every simplex
-    listed by networkx ``enumerate_all_cliques`` (references.brute_force_curve)."""
+    """The curve by `euler_curve`, which must equal two outside references: every
+    simplex listed by networkx ``enumerate_all_cliques`` (references.brute_force_curve),
+    and gudhi's Rips filtration (references.gudhi_curve)."""
     curve = ct.euler_curve(points, EPS)
-    assert curve == brute_force_curve(points, EPS, None)
+    assert curve == brute_force_curve(points, EPS, None)  # networkx, brute force
+    assert curve == gudhi_curve(points, EPS, None)  # gudhi RipsComplex
     return curve
 
 
@@ -268,7 +269,7 @@ def test_lost_scheduler_exits_3_and_resume_recomputes_nothing(tmp_path, processe
     default), so no Dask timeout is lowered here.
     """
     first = n // 5
-    gate, gates = gated(tmp_path, first, n)
+    _, gates = gated(tmp_path, first, n)
     faults = make_faults(tmp_path, gate=gates)
     cluster = start_cluster(processes, tmp_path / "cluster", 2)
     run = tmp_path / "run.zarr"
@@ -554,7 +555,9 @@ def test_store_without_its_completion_marker(tmp_path, src, stopped_at_12, point
     store = open_run(str(other))
     assert store.params["eps"] == 0.031
     assert faults.attempts() == {t: 1 for t in range(store.n_tasks)}  # all computed anew
-    assert result_of(other) == ct.euler_curve(points, 0.031)
+    curve = result_of(other)
+    assert curve == ct.euler_curve(points, 0.031)
+    assert curve == gudhi_curve(points, 0.031, None)  # gudhi RipsComplex
 
 
 # ------------------------------------------------------------------ one store, one run
@@ -685,7 +688,7 @@ def read_only(run: Path, *args: object) -> subprocess.CompletedProcess:
     script = (f'{{ mount --bind "$0" "$0" && mount -o remount,ro,bind "$0" "$0"; }} || exit {NO_MOUNT}; '
               f'touch "$0/probe" 2>/dev/null && exit {NOT_READ_ONLY}; exec "$@"')
     return subprocess.run(["unshare", "--mount", "sh", "-c", script, str(run), *command(*args)],
-                          capture_output=True, text=True, timeout=120, env=child_env())
+                          capture_output=True, text=True, timeout=120, env=child_env(), check=False)
 
 
 def test_resume_and_status_of_a_complete_store_on_a_read_only_folder(tmp_path, complete, expected, n):
@@ -779,7 +782,7 @@ def test_interrupted_run_exits_cleanly_and_resumes(tmp_path, terminals, src, exp
     driver or its workers, no leaked-semaphore warning. `resume` gives the exact curve
     and computes no committed task again."""
     first = int(0.3 * n)
-    gate, gates = gated(tmp_path, first, n)
+    _, gates = gated(tmp_path, first, n)
     faults = make_faults(tmp_path, gate=gates)
     run = tmp_path / "run.zarr"
     workers = 2 if how == "SIGINT" else 1  # SIGTERM reaches the driver alone
@@ -795,8 +798,8 @@ def test_interrupted_run_exits_cleanly_and_resumes(tmp_path, terminals, src, exp
     status = term.wait(60)
     text = term.output()
     assert status == (130 if how == "SIGINT" else 143), text
-    assert terminal_lines(text) == [f"chitally: error: interrupted: {first} of {n} tasks committed; "
-                                    f"`chitally resume {run}` continues"], text
+    assert terminal_lines(text) == [(f"chitally: error: interrupted: {first} of {n} tasks committed; "
+                                     f"`chitally resume {run}` continues")], text
     assert "Traceback" not in text and "KeyboardInterrupt" not in text
     assert "leaked semaphore" not in text
     assert lease_holder(run) is None
