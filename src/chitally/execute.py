@@ -175,10 +175,10 @@ class DaskExecutor:
     def _lost(self) -> SchedulerLost:
         status = getattr(self.client, "status", "running")
         try:
-            where = f" at {self.client.scheduler.address}"
+            where = f", scheduler {self.client.scheduler.address}"
         except Exception:
             where = ""
-        return SchedulerLost(f"the Dask scheduler{where} was lost (client {status})")
+        return SchedulerLost(f"the Dask scheduler was lost (client {status}{where})")
 
     def _check_alive(self, since_workers: list[float]) -> None:
         # "connecting": the client lost its scheduler and cancelled every future; even if
