@@ -1,11 +1,12 @@
-"""Shared helpers of the process tests (test_faults, test_cluster, test_cli).
+"""Shared helpers of the process tests (test_faults, test_cluster, test_cli, test_runs).
 
-What they give: deterministic point clouds written to files; an outside reference curve
-(networkx ``enumerate_all_cliques``, brute force); the `chitally` command as a subprocess;
-processes started in their own process group and killed group-wise at teardown; a real
-Dask cluster (``dask scheduler`` and ``dask worker`` on 127.0.0.1); the fault-injection
-file of `chitally.tasks`; and polling of a run store by its files (commit records) with a
-timeout, so that no test sleeps to synchronise.
+What they give: deterministic point clouds written to files; the `chitally` command as a
+subprocess of this worktree's sources (``python -m chitally.cli``, or ``python -m
+faultwrap SPEC ...`` with faults around every task); processes started in their own
+process group and killed group-wise at teardown; a real Dask cluster (``dask scheduler``
+and ``dask worker`` on 127.0.0.1); the attempt log of `faultwrap`; and polling of a run
+store by its files (commit records) with a timeout, so that no test sleeps to
+synchronise.
 """
 
 from __future__ import annotations
@@ -24,10 +25,14 @@ from typing import Any, TypeVar
 
 import numpy as np
 import pytest
+from faultwrap import FaultWrapper
 
-
+TESTS = Path(__file__).resolve().parent
+SRC = TESTS.parent / "src"
 BIN = Path(sys.executable).parent
-CHITALLY = str(BIN / "chitally")
+PYTHON = sys.executable
+#: The command of this worktree's sources (the venv's console script may point elsewhere).
+CHITALLY = [PYTHON, "-m", "chitally.cli"]
 DASK = str(BIN / "dask")
 HOST = "127.0.0.1"
 
@@ -95,9 +100,15 @@ def tree_digest(root: Path) -> dict[str, str]:
     }
 
 
+def tree_times(root: Path) -> dict[str, int]:
+    """Modification time (ns) of every file under `root`, by relative path."""
+    root = Path(root)
+    return {str(p.relative_to(root)): p.stat().st_mtime_ns for p in sorted(root.rglob("*")) if p.is_file()}
+
+
 def chunk(run: Path, task: int, name: str = "values") -> Path:
-    """The one chunk file of a task's jump table array (`values` or `jumps`)."""
-    path = Path(run) / "tables" / f"task-{task:06d}" / name / "c" / "0"
+    """The one chunk file of a task's output array (`values` or `jumps` of a cloud run)."""
+    path = Path(run) / "outputs" / f"task-{task:06d}" / name / "c" / "0"
     assert path.is_file(), f"no chunk file {path}"
     return path
 
@@ -114,18 +125,40 @@ def truncate(path: Path, keep: int | None = None) -> None:
     path.write_bytes(data[: len(data) // 2 if keep is None else keep])
 
 
+def lease_holder(run: Path) -> dict[str, Any] | None:
+    """The live or stale holder of a store's writer lease, None when it is free."""
+    from chitally.store import StoreIO
+    from chitally.store.lease import describe_holder
+
+    return describe_holder(StoreIO(str(run)))
+
+
 # -------------------------------------------------------------------------- faults
 
 
 @dataclass
 class Faults:
-    """The fault-injection file of `chitally.tasks` (env CHITALLY_FAULTS) and its log."""
+    """A fault spec for `faultwrap` (a JSON file) and the attempt log it writes."""
 
     path: Path
     log: Path
 
     def write(self, **spec: Any) -> None:
+        """Replace the faults (a driver reads the file when it starts)."""
         self.path.write_text(json.dumps({"log": str(self.log), **spec}))
+
+    @property
+    def spec(self) -> dict[str, Any]:
+        return json.loads(self.path.read_text())
+
+    def wrapper(self) -> FaultWrapper:
+        """The task function with these faults, for ``task_function=`` or to stand in
+        for `chitally.engine.run_task` in this process."""
+        return FaultWrapper(self.spec)
+
+    def command(self) -> list[str]:
+        """The `chitally` command with these faults around every task it runs."""
+        return [PYTHON, "-m", "faultwrap", str(self.path)]
 
     def attempts(self) -> dict[int, int]:
         """Attempt lines per task so far."""
@@ -135,8 +168,9 @@ class Faults:
         f = self.log / f"task-{task}"
         return [int(line.split()[1]) for line in f.read_text().splitlines()] if f.exists() else []
 
-    def env(self) -> dict[str, str]:
-        return {"CHITALLY_FAULTS": str(self.path)}
+    def clear_log(self) -> None:
+        for f in self.log.glob("task-*"):
+            f.unlink()
 
 
 def make_faults(tmp: Path, **spec: Any) -> Faults:
@@ -147,14 +181,23 @@ def make_faults(tmp: Path, **spec: Any) -> Faults:
     return faults
 
 
+def command(*args: Any, faults: Faults | None = None) -> list[str]:
+    """argv of `chitally ARGS` (with `faults` around its tasks if given)."""
+    return [*(faults.command() if faults is not None else CHITALLY), *map(str, args)]
+
+
 # ----------------------------------------------------------------------- processes
 
 
 def child_env(extra: dict[str, str] | None = None) -> dict[str, str]:
-    """The environment of a child process: ours without Dask or fault settings, plus `extra`."""
+    """The environment of a child process: ours without Dask or chitally settings, this
+    worktree's sources and the tests folder (`faultwrap`, which Dask workers unpickle)
+    first on the path, plus `extra`."""
     env = {k: v for k, v in os.environ.items()
-           if k not in ("DASK_SCHEDULER_ADDRESS", "CHITALLY_FAULTS") and not k.startswith("CHITALLY_")}
-    env.update({"PYTHONUNBUFFERED": "1", "OMP_NUM_THREADS": "1"})
+           if k != "DASK_SCHEDULER_ADDRESS" and not k.startswith("CHITALLY_")}
+    path = [str(SRC), str(TESTS), *filter(None, env.get("PYTHONPATH", "").split(os.pathsep))]
+    env.update({"PYTHONUNBUFFERED": "1", "OMP_NUM_THREADS": "1",
+                "PYTHONPATH": os.pathsep.join(dict.fromkeys(path))})
     env.update(extra or {})
     return env
 
@@ -218,6 +261,105 @@ class Processes:
                 print(f"process {proc.pid} did not exit after SIGKILL", file=sys.stderr)
 
 
+TAKE_TERMINAL = ("import fcntl, os, sys, termios; fcntl.ioctl(0, termios.TIOCSCTTY, 0); "
+                 "os.execvp(sys.argv[1], sys.argv[1:])")
+
+
+class Terminal:
+    """A process on a pseudo-terminal of its own, as a user runs it at a shell prompt:
+    the session leader of a new session whose controlling terminal is the pty, so a
+    ``^C`` typed there reaches its whole foreground process group (a LocalCluster's
+    workers too). Output of every process on the terminal is collected."""
+
+    def __init__(self, args: Sequence[str], env: dict[str, str] | None = None,
+                 cwd: Path | None = None) -> None:
+        master, slave = os.openpty()
+        try:
+            # the new session's leader makes the pty its controlling terminal, then becomes
+            # the command (same pid, session and terminal)
+            self.popen = subprocess.Popen([PYTHON, "-c", TAKE_TERMINAL, *args], stdin=slave, stdout=slave,
+                                          stderr=slave, env=child_env(env), cwd=cwd,
+                                          start_new_session=True)
+        finally:
+            os.close(slave)
+        self.master = master
+        self.buffer = bytearray()
+        self.closed = False
+
+    @property
+    def pid(self) -> int:
+        return self.popen.pid
+
+    def pump(self, seconds: float = 0.05) -> None:
+        """Collect output for up to `seconds` (returns early once the terminal closes)."""
+        import select
+
+        deadline = time.monotonic() + seconds
+        while not self.closed:
+            left = deadline - time.monotonic()
+            if left <= 0:
+                return
+            ready, _, _ = select.select([self.master], [], [], left)
+            if not ready:
+                return
+            try:
+                data = os.read(self.master, 1 << 16)
+            except OSError:  # EIO: every process holding the terminal has ended
+                data = b""
+            if not data:
+                self.closed = True
+                return
+            self.buffer.extend(data)
+
+    def type(self, text: bytes) -> None:
+        """Type on the terminal (b"\x03" is Ctrl-C)."""
+        os.write(self.master, text)
+
+    def wait_until(self, condition: Callable[[], T], timeout: float, what: str) -> T:
+        """`wait_for` that keeps reading the terminal (a full pty would block its writers)."""
+        def check() -> T:
+            self.pump(0.05)
+            return condition()
+
+        return wait_for(check, timeout, what, interval=0)
+
+    def wait(self, timeout: float) -> int:
+        """Wait for the process to end and for its terminal to close; its exit status."""
+        deadline = time.monotonic() + timeout
+        while self.popen.poll() is None or not self.closed:
+            if time.monotonic() > deadline:
+                pytest.fail(f"the process on the terminal did not end within {timeout:g} s:\n"
+                            f"{self.output()}")
+            self.pump(0.2)
+        return self.popen.wait(timeout=1)
+
+    def output(self) -> str:
+        return self.buffer.decode(errors="replace").replace("\r\n", "\n")
+
+    def close(self) -> None:
+        try:
+            os.killpg(self.popen.pid, signal.SIGKILL)
+        except (ProcessLookupError, PermissionError):
+            pass
+        self.popen.wait(timeout=30)
+        os.close(self.master)
+
+
+@pytest.fixture
+def terminals():
+    """Start `Terminal`s through this (a list); their process groups are killed at teardown."""
+    started: list[Terminal] = []
+
+    def start(args: Sequence[str], env: dict[str, str] | None = None) -> Terminal:
+        term = Terminal(args, env)
+        started.append(term)
+        return term
+
+    yield start
+    for term in started:
+        term.close()
+
+
 @pytest.fixture
 def processes(tmp_path: Path):
     """Start processes through this; every one of their process groups is killed at teardown."""
@@ -228,12 +370,13 @@ def processes(tmp_path: Path):
     procs.close()
 
 
-def chitally(*args: Any, env: dict[str, str] | None = None, timeout: float = 120,
-             cwd: Path | None = None) -> subprocess.CompletedProcess:
+def chitally(*args: Any, faults: Faults | None = None, env: dict[str, str] | None = None,
+             timeout: float = 120, cwd: Path | None = None) -> subprocess.CompletedProcess:
     """Run the `chitally` command to its end (for runs that need no killing), in a process
     group of its own that is killed afterwards: nothing it started (a LocalCluster's
-    workers, say) outlives it, even on a timeout."""
-    argv = [CHITALLY, *map(str, args)]
+    workers, say) outlives it, even on a timeout. With `faults`, every task it runs
+    goes through `faultwrap`."""
+    argv = command(*args, faults=faults)
     with subprocess.Popen(argv, stdout=subprocess.PIPE, stderr=subprocess.PIPE, stdin=subprocess.DEVNULL,
                           text=True, env=child_env(env), cwd=cwd, start_new_session=True) as popen:
         try:

@@ -1,8 +1,10 @@
 """`chitally run` on a real Dask cluster: a ``dask scheduler`` and two ``dask worker``
 processes on 127.0.0.1, reached through ``--scheduler``, ``--scheduler-file`` or the
 ``DASK_SCHEDULER_ADDRESS`` environment variable. Every run must give exactly the curve of
-`chitally.euler_curve` on the same points and of a brute-force outside reference, and its
-tasks must have run on the cluster's workers, not in the driver.
+`chitally.euler_curve` on the same points and of outside references (networkx brute
+force, gudhi), and its tasks must have run on the cluster's workers, not in the driver:
+every attempt is logged with its pid by `faultwrap` (here without faults), which the
+driver hands to the workers with each task.
 """
 
 from __future__ import annotations
@@ -13,7 +15,6 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from references import brute_force_curve
 from helpers import (
     Faults,
     Processes,
@@ -24,6 +25,7 @@ from helpers import (
     start_cluster,
     write_points,
 )
+from references import brute_force_curve, gudhi_curve
 
 import chitally as ct
 from chitally.runs import open_run, read_result
@@ -41,40 +43,33 @@ def points() -> np.ndarray:
 
 @pytest.fixture(scope="module")
 def expected(points: np.ndarray) -> dict[int | None, ct.Curve]:
-    """The curve by `euler_curve`, checked once against the outside reference
-    (networkx ``enumerate_all_cliques``, brute force, see references.brute_force_curve)."""
+    """The curve by `euler_curve`, checked once against two outside references:
+    networkx ``enumerate_all_cliques`` (brute force, references.brute_force_curve) and
+    gudhi's Rips filtration (references.gudhi_curve)."""
     out = {}
     for max_dim in (None, 2):
         ours = ct.euler_curve(points, EPS, max_dim)
-        assert ours == brute_force_curve(points, EPS, max_dim)
+        assert ours == brute_force_curve(points, EPS, max_dim)  # networkx, brute force
+        assert ours == gudhi_curve(points, EPS, max_dim)  # gudhi RipsComplex
         out[max_dim] = ours
     return out
 
 
 @pytest.fixture(scope="module")
-def cluster_and_faults(tmp_path_factory: pytest.TempPathFactory):
-    """One cluster for the module; its workers log every task attempt (with their pid)."""
+def cluster(tmp_path_factory: pytest.TempPathFactory):
+    """One cluster for the module: a scheduler and two single-threaded workers."""
     folder = tmp_path_factory.mktemp("cluster")
-    faults = make_faults(folder)
     procs = Processes(folder)
     try:
-        cluster = start_cluster(procs, folder, 2, env=faults.env())
-        yield cluster, faults
+        yield start_cluster(procs, folder, 2)
     finally:
         procs.close()
 
 
 @pytest.fixture
-def cluster(cluster_and_faults):
-    return cluster_and_faults[0]
-
-
-@pytest.fixture
-def faults(cluster_and_faults) -> Faults:
-    faults = cluster_and_faults[1]
-    for f in faults.log.glob("task-*"):  # a fresh attempt log for each test
-        f.unlink()
-    return faults
+def faults(tmp_path) -> Faults:
+    """An attempt log of this test's runs (no faults)."""
+    return make_faults(tmp_path)
 
 
 def worker_pids(address: str) -> set[int]:
@@ -85,9 +80,8 @@ def worker_pids(address: str) -> set[int]:
 
 
 def check_run(run: Path, expected: ct.Curve, faults: Faults, workers: set[int]) -> None:
-    curve = read_result(open_run(str(run)))
-    assert curve == expected
     store = open_run(str(run))
+    assert read_result(store) == expected
     attempts = faults.attempts()
     # every task ran exactly once, and on the cluster's workers (both of them took part)
     assert attempts == {t: 1 for t in range(store.n_tasks)}
@@ -99,10 +93,11 @@ def test_run_with_scheduler_address(tmp_path, points, expected, cluster, faults)
     src = write_points(tmp_path / "points.npy", points)
     run = tmp_path / "run.zarr"
     res = chitally("run", src, "--eps", EPS, "--task-cost", COST, "--out", run,
-                   "--scheduler", cluster.address, "--no-progress")
+                   "--scheduler", cluster.address, "--no-progress", faults=faults)
     assert res.returncode == 0, explain(res)
     check_run(run, expected[None], faults, worker_pids(cluster.address))
-    assert f"{open_run(str(run)).n_tasks}/{open_run(str(run)).n_tasks} tasks reduced" in res.stderr
+    n = open_run(str(run)).n_tasks
+    assert f"{n}/{n} tasks done, {n} computed now, 0 failed" in res.stderr
     # the test scheduler runs with --no-dashboard: no made-up link is printed
     assert "dashboard" not in res.stderr
 
@@ -111,7 +106,7 @@ def test_run_with_scheduler_file(tmp_path, points, expected, cluster, faults):
     src = write_points(tmp_path / "points.npy", points)
     run = tmp_path / "run.zarr"
     res = chitally("run", src, "--eps", EPS, "--max-dim", 2, "--task-cost", COST, "--out", run,
-                   "--scheduler-file", cluster.scheduler_file, "--no-progress")
+                   "--scheduler-file", cluster.scheduler_file, "--no-progress", faults=faults)
     assert res.returncode == 0, explain(res)
     check_run(run, expected[2], faults, worker_pids(cluster.address))
 
@@ -122,29 +117,34 @@ def test_run_with_scheduler_from_environment_and_relative_paths(tmp_path, points
     it absolute before handing it out)."""
     write_points(tmp_path / "points.npy", points)
     res = chitally("run", "points.npy", "--eps", EPS, "--task-cost", COST, "--out", "run.zarr",
-                   "--no-progress", env={"DASK_SCHEDULER_ADDRESS": cluster.address}, cwd=tmp_path)
+                   "--no-progress", env={"DASK_SCHEDULER_ADDRESS": cluster.address}, cwd=tmp_path,
+                   faults=faults)
     assert res.returncode == 0, explain(res)
     check_run(tmp_path / "run.zarr", expected[None], faults, worker_pids(cluster.address))
 
 
 def test_store_recreated_at_same_path(tmp_path, points, expected, cluster, faults):
-    """A long-lived cluster must not reuse what it knew of a deleted run store: a new run
-    at the same path, with other points and another eps, gives the new curve."""
+    """A long-lived cluster must not reuse what it knew of a deleted run store (its
+    workers keep each store they opened): a new run at the same path, with other points
+    and another eps, gives the new curve, computed on the same workers."""
     src = write_points(tmp_path / "points.npy", points)
     run = tmp_path / "run.zarr"
     res = chitally("run", src, "--eps", EPS, "--task-cost", COST, "--out", run,
-                   "--scheduler", cluster.address, "--no-progress")
+                   "--scheduler", cluster.address, "--no-progress", faults=faults)
     assert res.returncode == 0, explain(res)
-    assert read_result(open_run(str(run))) == expected[None]
+    check_run(run, expected[None], faults, worker_pids(cluster.address))
 
     shutil.rmtree(run)
+    faults.clear_log()
     other = cloud(1500, seed=12)
     eps2 = 0.045
     write_points(tmp_path / "other.npy", other)
     res = chitally("run", tmp_path / "other.npy", "--eps", eps2, "--task-cost", COST, "--out", run,
-                   "--scheduler", cluster.address, "--no-progress")
+                   "--scheduler", cluster.address, "--no-progress", faults=faults)
     assert res.returncode == 0, explain(res)
-    assert read_result(open_run(str(run))) == ct.euler_curve(other, eps2)
+    want = ct.euler_curve(other, eps2)
+    assert want == gudhi_curve(other, eps2, None)  # gudhi RipsComplex
+    check_run(run, want, faults, worker_pids(cluster.address))
 
 
 def test_local_cluster_reports_a_dashboard_that_answers():

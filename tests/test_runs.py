@@ -5,7 +5,8 @@ executor, reduce) on ``memory://`` stores with unique names, and demands that th
 never depends on the cover radius, the order of the points or how the rows are split
 into tasks: it always equals `euler_curve` of the points. On the integer-lattice clouds
 it also equals networkx ``enumerate_all_cliques`` on the eps-graph (brute force,
-``tests/references.py``), where the ties between lengths are exact.
+``tests/references.py``), where the ties between lengths are exact, and on every cloud
+gudhi's Rips filtration (``references.gudhi_curve``).
 """
 
 from __future__ import annotations
@@ -18,11 +19,11 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from references import brute_force_curve
+from references import brute_force_curve, gudhi_curve
 
-from chitally import euler_curve
-from chitally import runs
+from chitally import euler_curve, runs
 from chitally.execute import Callbacks, SerialExecutor
+from chitally.jobs.cloud import Params, create_or_open, plan_points
 from chitally.store import LeaseHeld, StoreMismatch
 
 TINY = 1e-9  # every row a task of its own
@@ -43,7 +44,7 @@ def forget(url: str) -> None:
 def run_curve(points, eps, cap, radius=None, task_cost=None):
     url = memory_url()
     try:
-        store = runs.create_or_open(url, points, runs.Params.checked(eps, cap, radius, task_cost))
+        store = create_or_open(url, points, Params.checked(eps, cap, radius, task_cost))
         report = runs.execute(store, SerialExecutor())
         assert report.failed == {} and report.done == store.n_tasks
         return report.curve, store.n_tasks
@@ -88,6 +89,8 @@ def test_the_curve_depends_on_no_radius_no_order_no_split(cloud, cap, radius_fac
     expected = euler_curve(pts, eps, cap)
     if lattice and cap is not None:
         assert expected == brute_force_curve(pts, eps, cap), "networkx enumerate_all_cliques"
+    # gudhi RipsComplex: an independent implementation, same inclusion rule and lengths
+    assert expected == gudhi_curve(pts, eps, cap), "gudhi RipsComplex"
 
     default, _ = run_curve(pts, eps, cap)
     assert default == expected
@@ -110,9 +113,9 @@ def cloud_r3() -> tuple[np.ndarray, float]:
 
 def medium_store(url: str, cap: int | None = 2):
     pts, eps = cloud_r3()
-    _, plan, _ = runs.plan_points(pts, runs.Params.checked(eps, cap, None, HUGE))
-    params = runs.Params.checked(eps, cap, None, float(plan.cost.sum()) / 6)
-    store = runs.create_or_open(url, pts, params)
+    _, plan, _ = plan_points(pts, Params.checked(eps, cap, None, HUGE))
+    params = Params.checked(eps, cap, None, float(plan.cost.sum()) / 6)
+    store = create_or_open(url, pts, params)
     assert store.n_tasks >= 5
     return store
 
@@ -131,9 +134,9 @@ def test_status_of_a_fresh_store(tmp_path):
 def test_status_counts_and_percent_on_a_partial_run(tmp_path):
     store = medium_store(str(tmp_path / "partial.zarr"))
     n = store.n_tasks
-    cost = store.read_plan().cost
+    cost = store.task_cost()
     some = [1, 3, n - 1]
-    SerialExecutor().run(store.url, some, Callbacks())
+    SerialExecutor().run(store, some, Callbacks())
 
     st_ = runs.status(store)
     assert (st_["tasks"], st_["done"], st_["failed"], st_["pending"]) == (n, 3, 0, n - 3)
@@ -144,7 +147,7 @@ def test_status_counts_and_percent_on_a_partial_run(tmp_path):
     assert st_["first_commit"] <= st_["last_commit"]
     assert not st_["complete"]
 
-    store.record_failure(0, "RuntimeError: it broke", 3)
+    store.commits.record_failure(0, "RuntimeError: it broke", 3)
     st_ = runs.status(store)
     assert (st_["done"], st_["failed"], st_["pending"]) == (3, 1, n - 4)
     assert st_["failures"] == {0: "RuntimeError: it broke"}
@@ -164,7 +167,7 @@ def test_execute_lists_the_pending_tasks_and_a_second_execute_computes_nothing()
     url = memory_url()
     try:
         store = medium_store(url, cap=None)
-        SerialExecutor().run(store.url, [0, 2], Callbacks())
+        SerialExecutor().run(store, [0, 2], Callbacks())
         seen = []
         report = runs.execute(store, SerialExecutor(), on_pending=lambda s, p: seen.append(list(p)))
         n = store.n_tasks
@@ -185,16 +188,16 @@ def test_reopening_needs_the_same_points_and_parameters():
     try:
         pts, eps = cloud_r3()
         store = medium_store(url)
-        params = runs.Params.checked(eps, 2, None, store.params["task_cost"])
-        assert runs.create_or_open(url, pts, params).n_tasks == store.n_tasks
-        with pytest.raises(StoreMismatch, match="max_dim"):
-            runs.create_or_open(url, pts, runs.Params.checked(eps, 3, None, store.params["task_cost"]))
-        with pytest.raises(StoreMismatch, match="eps"):
-            runs.create_or_open(url, pts, runs.Params.checked(eps * 2, 2, None, store.params["task_cost"]))
+        params = Params.checked(eps, 2, None, store.params["task_cost"])
+        assert create_or_open(url, pts, params).n_tasks == store.n_tasks
+        with pytest.raises(StoreMismatch, match="max_dim: store 2, given 3"):
+            create_or_open(url, pts, Params.checked(eps, 3, None, store.params["task_cost"]))
+        with pytest.raises(StoreMismatch, match=r"(?<!cover_radius)\beps: store 0.4, given 0.8"):
+            create_or_open(url, pts, Params.checked(eps * 2, 2, None, store.params["task_cost"]))
         moved = pts.copy()
         moved[0, 0] += 1e-12
-        with pytest.raises(StoreMismatch, match="fingerprint"):
-            runs.create_or_open(url, moved, params)
+        with pytest.raises(StoreMismatch, match="input.sha256"):
+            create_or_open(url, moved, params)
         assert runs.status(store)["done"] == 0
     finally:
         forget(url)
@@ -219,3 +222,40 @@ def test_an_empty_eps_graph_and_a_single_point():
     assert n_tasks == 6 and curve.chi.tolist() == [6] and curve == brute_force_curve(pts, 1.0, None)
     one, _ = run_curve(np.zeros((1, 3)), 0.5, 2)
     assert one.chi.tolist() == [1] and one == brute_force_curve(np.zeros((1, 3)), 0.5, 2)
+
+
+# ------------------------------------------------------------------- the run API
+
+
+def test_run_retries_a_failing_task_and_records_one_that_keeps_failing(tmp_path, monkeypatch):
+    """`runs.run` in this process: a task whose first two attempts fail commits on its
+    third (--retries 2); one whose first three fail is recorded as failed, the run is
+    incomplete and a second `run` computes only that task. The task function is the
+    engine's, wrapped with faults (`faultwrap`): the executors look it up when they run."""
+    from faultwrap import FaultWrapper
+    from helpers import make_faults
+
+    from chitally import engine
+
+    pts, eps = cloud_r3()
+    faults = make_faults(tmp_path, fail={"2": 2, "4": 3})
+    monkeypatch.setattr(engine, "run_task", FaultWrapper(faults.spec))
+    store = medium_store(str(tmp_path / "run.zarr"), cap=None)
+    n = store.n_tasks
+    where = runs.Where(serial=True, retries=2)
+
+    report = runs.run(store, where)
+    assert not report.complete and report.curve is None
+    assert report.failed == {4: "InjectedFault: injected failure in task 4, attempt 3"}
+    assert (report.done, report.computed) == (n - 1, n - 1)
+    assert faults.attempts() == {t: {2: 3, 4: 3}.get(t, 1) for t in range(n)}
+    assert runs.status(store)["failures"] == {4: report.failed[4]}
+
+    report = runs.run(runs.open_run(store.url), where)  # attempt 4 of task 4 goes through
+    assert report.complete and report.computed == 1 and report.failed == {}
+    assert report.curve == euler_curve(pts, eps, None)
+    assert faults.attempts() == {t: {2: 3, 4: 4}.get(t, 1) for t in range(n)}
+    assert runs.status(store)["failures"] == {}
+    # a complete run is reported as it is: no lease, nothing computed
+    again = runs.run(store, where)
+    assert again.complete and again.computed == 0 and again.curve == report.curve

@@ -115,8 +115,8 @@ def guarded(fn: Callable[..., Any]) -> Callable[..., Any]:
         except LeaseHeld as exc:
             fail(str(exc).replace("pass takeover=True", "rerun with --takeover"), EXIT_BUSY)
         except SchedulerLost as exc:
-            fail(f"{exc}; committed tasks are kept: `chitally resume RUN` continues on a new "
-                 "cluster", EXIT_INCOMPLETE)
+            fail(f"{exc}; committed tasks are kept: `chitally resume {getattr(exc, 'url', 'RUN')}` "
+                 "continues on a new cluster", EXIT_INCOMPLETE)
         except ResultDamaged as exc:
             fail(f"{exc}; `chitally resume` writes it again from the task outputs", EXIT_INCOMPLETE)
         except InputsDamaged as exc:
@@ -156,6 +156,13 @@ def main(verbose: int) -> None:
     """Exact Euler characteristic curves of Vietoris-Rips filtrations of large point sets."""
     level = logging.WARNING - 10 * min(verbose, 2)
     logging.basicConfig(level=level, format="%(levelname)s %(name)s: %(message)s")
+    # distributed configures its own INFO handlers when first imported; keep the terminal
+    # for our progress and our one-line errors
+    if not verbose:
+        import dask
+
+        dask.config.set({"logging.distributed": "warning", "logging.bokeh": "error",
+                         "logging.tornado": "error"})
 
 
 # ------------------------------------------------------------------ shared options

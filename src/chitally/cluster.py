@@ -7,10 +7,15 @@ thread may use. Nothing here computes or writes.
 
 from __future__ import annotations
 
+import asyncio
 import getpass
 import logging
 import os
+import signal
 import socket
+import threading
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any
 
@@ -30,8 +35,18 @@ class Connection:
     dashboard: str | None
 
     def close(self) -> None:
+        if getattr(self.client, "status", "running") != "running":
+            # A client that lost its scheduler is still trying to reconnect; closing it
+            # ends that attempt, which distributed then logs (from its event loop, after
+            # close returns) as an error, with a traceback. The loss has been reported
+            # already, in one line.
+            _quiet_abandoned_reconnects()
         self.client.close()
         if self.cluster is not None:
+            # our workers may be in the middle of a task (a run interrupted or stopped by
+            # an error): the nanny kills them after a grace period, and says so; we
+            # meant it
+            _drop_messages("distributed.nanny", "Worker process still alive after")
             self.cluster.close()
 
     def ssh_hint(self) -> str | None:
@@ -73,6 +88,32 @@ def free_port(host: str = "127.0.0.1", preferred: int = 8787) -> int:
     return 0
 
 
+class _DropMessages(logging.Filter):
+    """Drops log records whose message starts with one of `prefixes`, or that carry a
+    CancelledError when `cancelled` is set."""
+
+    def __init__(self, prefixes: tuple[str, ...], cancelled: bool = False) -> None:
+        super().__init__()
+        self.prefixes = prefixes
+        self.cancelled = cancelled
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        if record.getMessage().startswith(self.prefixes):
+            return False
+        exc = record.exc_info[1] if record.exc_info else None
+        return not (self.cancelled and isinstance(exc, asyncio.CancelledError))
+
+
+def _drop_messages(logger: str, *prefixes: str, cancelled: bool = False) -> None:
+    log = logging.getLogger(logger)
+    if not any(isinstance(f, _DropMessages) and f.prefixes == prefixes for f in log.filters):
+        log.addFilter(_DropMessages(prefixes, cancelled))
+
+
+def _quiet_abandoned_reconnects() -> None:
+    _drop_messages("distributed.client", "Failed to reconnect to scheduler", cancelled=True)
+
+
 def _dashboard_of(client: Any) -> str | None:
     """The dashboard link, or None when the scheduler serves none.
 
@@ -94,6 +135,28 @@ def _dashboard_of(client: Any) -> str | None:
         return None
     except (URLError, OSError, ValueError):
         return link
+
+
+@contextmanager
+def _children_ignore_sigint() -> Iterator[None]:
+    """Start worker processes with SIGINT ignored.
+
+    A Ctrl-C on the terminal reaches every process of the foreground group, the
+    LocalCluster's workers too, and each printed a KeyboardInterrupt traceback while the
+    driver was stopping them in order. An ignored disposition survives fork and exec
+    (and Python then installs no handler of its own), so workers spawned in this window
+    leave the interruption to the driver. A Ctrl-C during these seconds is ignored by
+    the driver too.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        yield
+    finally:
+        # None: a handler installed outside Python, which cannot be put back exactly
+        signal.signal(signal.SIGINT, signal.SIG_DFL if previous is None else previous)
 
 
 def connect(
@@ -119,16 +182,21 @@ def connect(
     cores = os.cpu_count() or 1
     n_workers = workers or cores
     threads = threads or max(1, cores // n_workers)
-    cluster = LocalCluster(
-        n_workers=n_workers,
-        threads_per_worker=threads,
-        processes=True,
-        host="127.0.0.1",
-        dashboard_address=dashboard_address or f"127.0.0.1:{free_port()}",
-        memory_limit=memory_limit or "auto",
-        silence_logs=logging.WARNING,
-    )
+    with _children_ignore_sigint():
+        cluster = LocalCluster(
+            n_workers=n_workers,
+            threads_per_worker=threads,
+            processes=True,
+            host="127.0.0.1",
+            dashboard_address=dashboard_address or f"127.0.0.1:{free_port()}",
+            memory_limit=memory_limit or "auto",
+            silence_logs=logging.WARNING,
+        )
     client = Client(cluster)
+    from .workerlogs import QuietTaskErrors
+
+    # its workers write to our terminal, where the driver reports task errors itself
+    client.register_plugin(QuietTaskErrors(), name=QuietTaskErrors.name)
     return Connection(client, cluster, _dashboard_of(client))
 
 

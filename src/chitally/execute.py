@@ -16,6 +16,7 @@ import socket
 import time
 import traceback
 from collections.abc import Callable, Sequence
+from concurrent.futures import CancelledError
 from dataclasses import dataclass, field
 from typing import Any, Protocol
 
@@ -172,14 +173,23 @@ class DaskExecutor:
         return self._window
 
     def _client_gone(self) -> str | None:
-        """The client's status if it is closed or failed, else None."""
+        """The client's status if it lost its scheduler, else None. "connecting": the
+        client lost its scheduler and cancelled every future; even if it reconnects,
+        nothing submitted survives."""
         status = getattr(self.client, "status", "running")
-        return status if status in ("closed", "closing", "failed") else None
+        return status if status in ("closed", "closing", "failed", "connecting") else None
+
+    def _lost(self) -> SchedulerLost:
+        status = getattr(self.client, "status", "running")
+        try:
+            where = f", scheduler {self.client.scheduler.address}"
+        except Exception:
+            where = ""
+        return SchedulerLost(f"the Dask scheduler was lost (client {status}{where})")
 
     def _check_alive(self, since_workers: list[float]) -> None:
-        status = self._client_gone()
-        if status:
-            raise SchedulerLost(f"the Dask scheduler was lost (client {status})")
+        if self._client_gone():
+            raise self._lost()
         now = time.monotonic()
         try:
             n = len(self.client.scheduler_info()["workers"])
@@ -231,6 +241,9 @@ class DaskExecutor:
                     finished = wait(list(in_flight), timeout=1.0, return_when="FIRST_COMPLETED").done
                 except TimeoutError:
                     finished = set()
+                except CancelledError as exc:
+                    # the client cancels all our futures when it loses the scheduler
+                    raise self._lost() from exc
                 events.tick()
                 if not finished:
                     self._check_alive(since_workers)
@@ -240,6 +253,8 @@ class DaskExecutor:
                     task = in_flight.pop(fut)
                     try:
                         result = fut.result()
+                    except CancelledError as exc:
+                        raise self._lost() from exc
                     except FATAL:
                         raise
                     except NOT_RETRIED as exc:
@@ -247,7 +262,7 @@ class DaskExecutor:
                         events.task_failed(task, outcome.failed[task], attempts.get(task, 0) + 1)
                     except Exception as exc:
                         if self._client_gone():
-                            raise SchedulerLost("the Dask scheduler was lost") from exc
+                            raise self._lost() from exc
                         number = attempts.get(task, 0)
                         if number >= self.retries:
                             outcome.failed[task] = message_of(exc)
@@ -269,7 +284,7 @@ class DaskExecutor:
             status = self._client_gone()
             if (status and isinstance(exc, Exception)
                     and not isinstance(exc, (SchedulerLost, *FATAL))):
-                raise SchedulerLost(f"the Dask scheduler was lost (client {status})") from exc
+                raise self._lost() from exc
             raise
         return outcome
 

@@ -18,7 +18,15 @@ from typing import Any
 
 import numpy as np
 
-from .execute import Callbacks, DaskExecutor, Events, Executor, Outcome, SerialExecutor
+from .execute import (
+    Callbacks,
+    DaskExecutor,
+    Events,
+    Executor,
+    Outcome,
+    SchedulerLost,
+    SerialExecutor,
+)
 from .jobs import kind_of
 from .reduce import Reducer
 from .store import (
@@ -255,6 +263,9 @@ def run(store: RunStore, where: Where = Where(), *, events: Events | None = None
         except KeyboardInterrupt:
             done = int(store.commits.committed().sum())
             raise Interrupted(store.url, done, store.n_tasks, caught.signal or 2) from None
+        except SchedulerLost as exc:
+            exc.url = store.url  # for the way out: resuming this store
+            raise
 
 
 def status(store: RunStore) -> dict[str, Any]:

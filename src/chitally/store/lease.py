@@ -257,9 +257,11 @@ class Lease:
         if self._released:  # nested holders release once
             return False
         self.stop()
+        known = self._lost  # already raised to the run as LeaseLost, which reports it
         if not self.held:
             self._released = True
-            logger.warning("lease on %s is no longer ours; leaving it alone", self.io.url)
+            (logger.info if known else logger.warning)(
+                "lease on %s is no longer ours; leaving it alone", self.io.url)
             return False
         self._released = True
         self.io.create_only(_end_key(self.generation), dumps({"ended": iso(), "token": self.token}),
