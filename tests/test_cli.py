@@ -21,7 +21,7 @@ from references import brute_force_curve, gudhi_curve
 
 import chitally as ct
 from chitally import engine
-from chitally.cli import EXIT_INCOMPLETE, EXIT_USAGE, format_figure, main
+from chitally.cli import EXIT_INCOMPLETE, EXIT_USAGE, main, plan_lines
 from chitally.curve import read_samples
 from chitally.jobs.cloud import Params, create_or_open, describe
 from chitally.runs import open_run, read_result
@@ -117,7 +117,7 @@ BAD = [
     ("good", ["--eps", "0"], ["eps", "finite number > 0"]),
     ("good", ["--eps", "-0.5"], ["eps", "finite number > 0"]),
     ("good", ["--eps", "nan"], ["eps", "finite number > 0"]),
-    ("good", ["--max-dim", "-1"], ["max_dim", ">= 0"]),
+    ("good", ["--max-dim", "-1"], ["--max-dim", ">= 0"]),
 ]
 
 
@@ -169,7 +169,8 @@ def test_plan_prints_the_plan_and_writes_nothing(tmp_path, runner, src, points, 
     want = describe(points, Params.checked(EPS, None, None, COST))
     for name in ("balls", "tasks", "halo_rows", "replication"):
         assert summary[name] == want[name]
-        assert f"{name}: {format_figure(name, want[name])}" in text
+    for line in plan_lines(want):  # the same figures, in plain words
+        assert line in text
     assert summary["points"] == points.shape[0]
     assert "store layout:" in text and "outputs/task-000000.." in text
     # the plan is the one a run makes
