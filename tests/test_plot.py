@@ -102,3 +102,18 @@ def test_cli_plot_each_kind(tmp_path, curves):
         res = runner.invoke(main, ["plot", *(str(tmp_path / a) for a in args), "--out", str(out)])
         assert res.exit_code == 2 and message in res.output and res.output.count("\n") == 1, res.output
         assert not out.exists()
+
+
+def test_demo_two_catalogues_small(tmp_path):
+    """The demo end to end at CI size: the filament catalogue differs from the uniform one
+    (the test rejects, the bands separate) and the figure is drawn."""
+    import sys
+    from pathlib import Path
+
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "demo"))
+    from two_catalogues import main as demo
+
+    out = demo(["--small", "--workdir", str(tmp_path)])
+    assert out["p_value"] <= 0.01 and out["apart"] > 0 and out["l1"] > 0
+    image = imread(out["figure"])
+    assert image.shape[:2] == (480, 1500) and image[..., :3].std() > 0.05
