@@ -34,8 +34,8 @@ from chitally.bands import bands
 from chitally.distances import distance
 from chitally.twosample import two_sample_test
 
-SIZES = {"full": dict(sources=20000, sample=1000, replicates=60, parts=12),
-         "small": dict(sources=3000, sample=250, replicates=24, parts=8)}
+SIZES = {"full": {"sources": 20000, "sample": 1000, "replicates": 60, "parts": 12},
+         "small": {"sources": 3000, "sample": 250, "replicates": 24, "parts": 8}}
 
 
 def uniform_catalogue(n: int, rng: np.random.Generator) -> np.ndarray:

@@ -12,15 +12,15 @@ import pytest
 from click.testing import CliRunner
 
 pytest.importorskip("matplotlib")
-from matplotlib.image import imread  # noqa: E402
+from matplotlib.image import imread
 
-from chitally import euler_curve  # noqa: E402
-from chitally.bands import bands  # noqa: E402
-from chitally.cli import main  # noqa: E402
-from chitally.features import feature_matrix  # noqa: E402
-from chitally.jobs.bands import BandsParams, create_or_open  # noqa: E402
-from chitally.plot import DPI, SIZE, figure, plot_bands, plot_curves, plot_matrix, save  # noqa: E402
-from chitally.runs import Where, run  # noqa: E402
+from chitally import euler_curve
+from chitally.bands import bands
+from chitally.cli import main
+from chitally.features import feature_matrix
+from chitally.jobs.bands import BandsParams, create_or_open
+from chitally.plot import DPI, SIZE, figure, plot_bands, plot_curves, plot_matrix, save
+from chitally.runs import Where, run
 
 HEIGHT, WIDTH = int(SIZE[1] * DPI), int(SIZE[0] * DPI)
 

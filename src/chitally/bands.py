@@ -53,8 +53,8 @@ from typing import Any
 import numpy as np
 
 __all__ = [
-    "BAND_KINDS",
     "BANDS_FORMAT",
+    "BAND_KINDS",
     "DEFAULT_DRAWS",
     "DEFAULT_GRID_COUNT",
     "REPLACE_WARNING",

@@ -117,7 +117,7 @@ def as_step(obj: Any) -> StepFunction:
 def steps_of(objs: Any) -> list[StepFunction]:
     """Step functions of a sequence of curves (or step functions, or sample pairs), or of
     every row of a `chitally.features.FeatureMatrix` (each row through its grid samples)."""
-    if hasattr(objs, "grid") and hasattr(objs, "values") and getattr(objs, "values").ndim == 2:
+    if hasattr(objs, "grid") and hasattr(objs, "values") and np.ndim(objs.values) == 2:
         grid = np.asarray(objs.grid, dtype=np.float64)
         return [StepFunction.from_samples(grid, row) for row in np.asarray(objs.values)]
     return [as_step(o) for o in objs]

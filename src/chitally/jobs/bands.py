@@ -20,7 +20,13 @@ from typing import Any
 
 import numpy as np
 
-from ..bands import DEFAULT_DRAWS, Bands, band_statistics, default_grid, replicate_generator
+from ..bands import (
+    DEFAULT_DRAWS,
+    Bands,
+    band_statistics,
+    default_grid,
+    replicate_generator,
+)
 from ..store import JobSpec, ResultDamaged, RunStore, fingerprint
 from ..validate import (
     InputError,
