@@ -212,7 +212,8 @@ def task_replicates(store: RunStore, i: int) -> range:
 
 # One cloud per worker process: every task of a store needs the whole cloud, and reading
 # it again for each task would cost as much as the task itself at small m. The key is the
-# plan digest, which covers the input's digest.
+# plan digest, which covers the input's digest. A worker keeps it until it runs tasks of
+# another bands store (the task memory declared in the plan counts it).
 _CLOUD: dict[str, tuple[str, np.ndarray]] = {}
 
 
@@ -258,6 +259,8 @@ class KeepRows:
         return {"rows": self.rows}
 
     def result(self) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+        # the driver runs the fold; a serial run may have left the cloud in its cache
+        _CLOUD.pop(self.store.url, None)
         b = self.params.statistics(self.rows, int(self.store.attrs["n_points"]))
         return {"rows": self.rows, **b.arrays()}, b.metadata()
 
