@@ -337,6 +337,11 @@ def _report(report: Any, grid: Any = None) -> None:
         say(f"curve: {c.n_jumps} jumps, chi(0) = {c.at(0.0)}, chi(eps) = {c.final}, "
             f"digest {c.digest()[:16]}")
         _emit_curve(c, grid, None, None)
+    elif report.kind == "bands":
+        b = report.result
+        say(f"bands: mean curve of {b.sample_size} points from {b.replicates} replicates on "
+            f"{b.grid.size} scales; {100 * b.level:g}% simultaneous half-width "
+            f"{b.sup_quantile / b.replicates ** 0.5:.4g}")
     else:
         m = report.result
         say(f"feature matrix: {m.values.shape[0]} rows x {m.values.shape[1]} grid points")
@@ -578,7 +583,8 @@ def export_cmd(run: str, fmt: str | None, grid: str | None, out: str | None) -> 
 
     grid_values = _grid(grid)
     store = open_run(_store_url(run))
-    formats = CURVE_FORMATS if store.kind == "cloud" else ("csv", "npy", "npz", "parquet")
+    formats = {"cloud": CURVE_FORMATS, "bands": ("csv", "json", "npz")}.get(
+        store.kind, ("csv", "npy", "npz", "parquet"))
     if fmt is not None and fmt not in formats:
         fail(f"--format {fmt}: a {store.kind} result exports as {', '.join(formats)}", EXIT_USAGE)
     fmt = check_output(out, fmt, formats) or "csv"
@@ -656,6 +662,225 @@ def scan_cmd(input: str, eps: str | None, eps_range: str | None, max_dim: int | 
     report = scan_eps(_read(input, key, columns, index_col), values, max_dim=max_dim, seed=seed,
                       threads=os.cpu_count() or 1, **more)
     click.echo(json.dumps(report.as_dict(), indent=2) if as_json else report.table())
+
+
+# ------------------------------------------------------------------ statistics and figures
+
+
+def _load_result(text: str) -> tuple[str, Any]:
+    """A file written by `Curve.save` or `Bands.save`, or a run store's result, with a name."""
+    from .bands import Bands, is_bands_file
+    from .curve import Curve
+
+    path = Path(text)
+    if path.is_file():
+        return path.stem, (Bands.load(path) if is_bands_file(path) else Curve.load(path))
+    from .runs import open_run, read_result
+
+    store = open_run(_store_url(text))
+    result = read_result(store)
+    if result is None:
+        fail(f"{text} has no result yet: run `chitally resume {text}`", EXIT_INCOMPLETE)
+    return Path(text.rstrip("/")).stem or text, result
+
+
+def _named_curves(items: Any, what: str) -> tuple[list[str], list[Any]]:
+    """Curves by name: a curve file or a cloud run gives one, a batch run its rows."""
+    from .curve import Curve
+    from .features import FeatureMatrix
+
+    names: list[str] = []
+    curves: list[Any] = []
+    for text in items:
+        name, result = _load_result(text)
+        if isinstance(result, Curve):
+            names.append(name)
+            curves.append(result)
+        elif isinstance(result, FeatureMatrix):
+            names += [f"{name}/{n}" for n in result.names]
+            curves += [(result.grid, row) for row in result.values]
+        else:
+            fail(f"{text}: {what} takes curves (curve files, cloud or batch runs), not "
+                 f"{type(result).__name__.lower()}", EXIT_USAGE)
+    return names, curves
+
+
+def _p_text(p: float) -> str:
+    return "sup" if p == float("inf") else f"L{p:g}"
+
+
+@main.command("bands")
+@input_arg
+@eps_opt
+@click.option("--replicates", type=int, required=True, help="B: subsamples drawn (>= 2).")
+@click.option("--sample-size", type=int, required=True,
+              help="m: points per subsample; the bands cover the mean curve of m points.")
+@click.option("--grid", default=None, help="START:STOP:COUNT scales in [0, eps] (default 0:EPS:101).")
+@click.option("--level", type=float, default=0.95, show_default=True, help="Confidence level.")
+@click.option("--seed", type=int, default=0, show_default=True,
+              help="Replicate i draws its rows from (seed, i) alone.")
+@dim_opt
+@click.option("--replace", is_flag=True,
+              help="Draw with replacement (repeated rows are dominated vertices: smaller samples in effect).")
+@click.option("--per-task", type=int, default=None, help="Replicates per task (default: about 16 tasks).")
+@click.option("--draws", type=int, default=2000, show_default=True, help="Bootstrap draws.")
+@key_opt
+@click.option("--out", "out", required=True, help="The run store: a local path or an fsspec URL all workers reach.")
+@click.option("--discard", is_flag=True, help="Delete committed work of an unfinished store at --out.")
+@_executor_options
+@guarded
+def bands_cmd(input: str, eps: float, replicates: int, sample_size: int, grid: str | None, level: float,
+              seed: int, max_dim: int | None, replace: bool, per_task: int | None, draws: int,
+              key: str | None, columns: str | None, index_col: str | None, out: str, discard: bool,
+              progress: bool, **how: Any) -> None:
+    """Confidence bands for the mean curve of subsamples of size M of INPUT: B replicates
+    drawn without replacement, their exact curves on the grid, the mean curve with
+    simultaneous (multiplier bootstrap) and pointwise bands. The bands cover the mean
+    curve at sample size M, not the curve of all of INPUT."""
+    from .bands import REPLACE_WARNING
+    from .jobs.bands import BandsParams, check_cloud, create_or_open
+
+    params = BandsParams.checked(eps, replicates, sample_size, grid, max_dim, level, seed, replace,
+                                 per_task, draws,
+                                 names={**_NAMES, "replicates": "--replicates", "sample_size": "--sample-size",
+                                        "grid": "--grid", "level": "--level", "seed": "--seed",
+                                        "per_task": "--per-task", "draws": "--draws"})
+    where = _where(**how)
+    points = check_cloud(_read(input, key, columns, index_col), params, where=input,
+                         sample_size_name="--sample-size")
+    if replace:
+        say(f"chitally: warning: {REPLACE_WARNING}")
+    store = create_or_open(_store_url(out), points, params, discard=discard)
+    say(f"{points.shape[0]} points in R^{points.shape[1]}; {params.replicates} replicates of "
+        f"{params.sample_size} points in {store.n_tasks} tasks")
+    _report(_run_store(store, where, progress))
+
+
+@main.command("compare")
+@click.argument("items", nargs=-1, required=True, metavar="A B [C ...]")
+@click.option("--p", "p", default="1", show_default=True, help="Exponent: 1, 2, any number >= 1, or inf (sup).")
+@click.option("--range", "range_", default=None, help="A:B, the scales compared (default: where all curves are defined).")
+@click.option("--json", "as_json", is_flag=True, help="Print as JSON.")
+@guarded
+def compare_cmd(items: tuple[str, ...], p: str, range_: str | None, as_json: bool) -> None:
+    """Exact Lp distances between curves: curve files (csv, json, npz), cloud runs, or
+    the rows of batch runs (each row the step function through its grid samples)."""
+    from .distances import common_range, pairwise, parse_p, parse_range, steps_of
+
+    exponent = parse_p(p)
+    parse_range(range_)
+    names, curves = _named_curves(items, "compare")
+    if len(curves) < 2:
+        fail("compare needs at least two curves", EXIT_USAGE)
+    lo, hi = common_range(steps_of(curves), range_)
+    matrix = pairwise(curves, p=exponent, range=(lo, hi))
+    if as_json:
+        click.echo(json.dumps({"p": "inf" if exponent == float("inf") else exponent, "range": [lo, hi],
+                               "names": names, "matrix": matrix.tolist()}, indent=1))
+        return
+    say(f"{_p_text(exponent)} distances over [{lo!r}, {hi!r}]")
+    click.echo(",".join(["", *names]))
+    for name, row in zip(names, matrix):
+        click.echo(",".join([name, *(repr(float(x)) for x in row)]))
+
+
+@main.command("test", context_settings={"ignore_unknown_options": True})
+@click.argument("groups", nargs=-1, type=click.UNPROCESSED, metavar="--a F1 F2 ... --b G1 G2 ...")
+@click.option("--store", default=None, help="A batch run whose labelled rows form the groups (with --labels).")
+@click.option("--labels", default=None, help="X,Y: the two labels of --store's rows to compare.")
+@click.option("--p", "p", default="1", show_default=True, help="Exponent of the distance between group means.")
+@click.option("--permutations", type=int, default=9999, show_default=True, help="Random relabellings.")
+@click.option("--seed", type=int, default=0, show_default=True)
+@click.option("--range", "range_", default=None, help="A:B, the scales compared.")
+@click.option("--json", "as_json", is_flag=True, help="Print as JSON.")
+@guarded
+def test_cmd(groups: tuple[str, ...], store: str | None, labels: str | None, p: str, permutations: int,
+             seed: int, range_: str | None, as_json: bool) -> None:
+    """Permutation test: do two groups of curves differ? The statistic is the exact
+    distance between the groups' mean curves; p = (1 + relabellings at least as large) /
+    (1 + relabellings)."""
+    from .twosample import two_sample_test
+
+    exponent = p
+    if store is not None:
+        from .features import FeatureMatrix
+
+        if groups:
+            fail("give either --store with --labels, or --a ... --b ..., not both", EXIT_USAGE)
+        if labels is None or len(labels.split(",")) != 2:
+            fail("--store needs --labels X,Y naming the two groups", EXIT_USAGE)
+        x, y = labels.split(",")
+        _, fm = _load_result(store)
+        if not isinstance(fm, FeatureMatrix) or fm.labels is None:
+            fail(f"--store {store}: a batch run with labels is needed", EXIT_USAGE)
+        keys = [str(label) for label in fm.labels]
+        a = [(fm.grid, row) for row, k in zip(fm.values, keys) if k == x]
+        b = [(fm.grid, row) for row, k in zip(fm.values, keys) if k == y]
+        for label, rows in ((x, a), (y, b)):
+            if not rows:
+                fail(f"--labels: no row of {store} is labelled {label!r} (labels: "
+                     f"{', '.join(sorted(set(keys)))})", EXIT_USAGE)
+    else:
+        sides: dict[str, list[str]] = {"--a": [], "--b": []}
+        side = None
+        for token in groups:
+            if token in sides:
+                side = token
+            elif token.startswith("-"):
+                fail(f"no such option: {token} (see `chitally test --help`)", EXIT_USAGE)
+            elif side is None:
+                fail(f"{token}: name the group first: --a F1 F2 ... --b G1 G2 ...", EXIT_USAGE)
+            else:
+                sides[side].append(token)
+        if not sides["--a"] or not sides["--b"]:
+            fail("test needs --a F1 ... and --b G1 ... (or --store RUN --labels X,Y)", EXIT_USAGE)
+        a = _named_curves(sides["--a"], "test")[1]
+        b = _named_curves(sides["--b"], "test")[1]
+    result = two_sample_test(a, b, p=exponent, permutations=permutations, seed=seed, range=range_)
+    if as_json:
+        click.echo(json.dumps(result.as_dict(), indent=1))
+        return
+    lo, hi = result.range
+    click.echo(f"{_p_text(result.p)} distance between the group means over [{lo!r}, {hi!r}]: "
+               f"{result.statistic!r}")
+    click.echo(f"p = {result.p_value:.6g} ({result.exceed} of {result.permutations} relabellings at "
+               f"least as large; seed {result.seed}); groups of {result.sizes[0]} and {result.sizes[1]} curves")
+
+
+@main.command("plot")
+@click.argument("items", nargs=-1, required=True, metavar="RUN_OR_FILES...")
+@click.option("--out", "out", required=True, help="Figure file: .png, .svg or .pdf.")
+@click.option("--symlog", is_flag=True, help="Symmetric-logarithmic y axis (colour scale for a matrix).")
+@click.option("--title", default=None, help="Figure title.")
+@guarded
+def plot_cmd(items: tuple[str, ...], out: str, symlog: bool, title: str | None) -> None:
+    """A figure: curves overlaid (curve files, cloud runs), a band (bands runs or files),
+    or a heatmap of a feature matrix (a batch run)."""
+    from .bands import Bands
+    from .curve import Curve
+    from .features import FeatureMatrix
+    from .plot import FIGURE_FORMATS, plot_bands, plot_curves, plot_matrix, save
+
+    fmt = Path(out).suffix.lstrip(".").lower()
+    if fmt not in FIGURE_FORMATS:
+        fail(f"--out {out}: the figure format comes from the ending: "
+             f"{', '.join('.' + f for f in FIGURE_FORMATS)}", EXIT_USAGE)
+    check_output(out, fmt, FIGURE_FORMATS)
+    loaded = [_load_result(text) for text in items]
+    kinds = {type(r) for _, r in loaded}
+    if kinds == {Curve}:
+        ax = plot_curves([r for _, r in loaded], [n for n, _ in loaded], symlog=symlog, title=title)
+    elif kinds == {Bands}:
+        ax = None
+        for name, b in loaded:
+            ax = plot_bands(b, ax, label=name, symlog=symlog, title=title)
+    elif kinds == {FeatureMatrix} and len(loaded) == 1:
+        ax = plot_matrix(loaded[0][1], symlog=symlog, title=title)
+    else:
+        fail("plot draws curves together, bands together, or one feature matrix; got "
+             f"{', '.join(sorted(k.__name__ for k in kinds))} from {len(loaded)} inputs", EXIT_USAGE)
+    save(ax, out)
+    say(f"wrote {out}")
 
 
 @main.command("demo")

@@ -532,6 +532,24 @@ class Curve:
             raise ValueError(f"grid must be one-dimensional, got shape {arr.shape}")
         return np.asarray(self.at(arr), dtype=np.int64)
 
+    def plot(self, ax: Any = None, **kw: Any) -> Any:
+        """Draw the curve as its exact steps (matplotlib, the `plot` extra).
+
+        Parameters
+        ----------
+        ax : matplotlib Axes, optional
+            Drawn on a new figure's Axes when None.
+        **kw
+            ``label``, ``symlog`` and ``Axes.step`` options; see `chitally.plot.plot_curve`.
+
+        Returns
+        -------
+        matplotlib Axes
+        """
+        from .plot import plot_curve  # matplotlib only when a figure is drawn
+
+        return plot_curve(self, ax, **kw)
+
     # ------------------------------------------------------------------ algebra
 
     def _require_compatible(self, other: Curve) -> None:

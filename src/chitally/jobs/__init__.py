@@ -23,7 +23,16 @@ BATCH = JobKind(
     unit="clouds",
 )
 
-KINDS: dict[str, JobKind] = {k.name: k for k in (CLOUD, BATCH)}
+BANDS = JobKind(
+    name="bands",
+    task="chitally.jobs.bands:compute_task",
+    fold="chitally.jobs.bands:KeepRows",
+    outputs=(("rows", "<i8"),),
+    read="chitally.jobs.bands:read_bands",
+    unit="replicates",
+)
+
+KINDS: dict[str, JobKind] = {k.name: k for k in (CLOUD, BATCH, BANDS)}
 
 
 def kind_of(name: str) -> JobKind:
@@ -34,4 +43,4 @@ def kind_of(name: str) -> JobKind:
         raise ValueError(f"unknown job kind {name!r}; this chitally runs {sorted(KINDS)}") from None
 
 
-__all__ = ["BATCH", "CLOUD", "KINDS", "Fold", "JobKind", "TaskOutput", "kind_of"]
+__all__ = ["BANDS", "BATCH", "CLOUD", "KINDS", "Fold", "JobKind", "TaskOutput", "kind_of"]
