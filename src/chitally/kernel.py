@@ -216,14 +216,15 @@ def _sort_bucket_large(elo, ehi, ed2, a, b, tlo, thi, td2):
         _sort_bucket_small(elo, ehi, ed2, s, min(s + run, b))
     width = run
     in_place = True  # where the sorted runs are: [a, b) of e*, or [0, n) of t*
+    zero = a - a  # an int64 like a, not a literal: one compiled _merge_runs
     while width < n:
         for s in range(0, n, 2 * width):
             mid = min(s + width, n)
             end = min(s + 2 * width, n)
             if in_place:
-                _merge_runs(elo, ehi, ed2, a, tlo, thi, td2, 0, s, mid, end)
+                _merge_runs(elo, ehi, ed2, a, tlo, thi, td2, zero, s, mid, end)
             else:
-                _merge_runs(tlo, thi, td2, 0, elo, ehi, ed2, a, s, mid, end)
+                _merge_runs(tlo, thi, td2, zero, elo, ehi, ed2, a, s, mid, end)
         in_place = not in_place
         width *= 2
     if not in_place:
@@ -1040,11 +1041,37 @@ def _pending_bound(offsets, nbrs, own_lo, own_hi):
     return best, maxdeg
 
 
+@nb.njit(inline="always", nogil=True, cache=True)
+def _compact(adj, L, Wr, cadj):
+    """G_e (vertex set L, at most 64 vertices) as one word per vertex in cadj; returns
+    its number of vertices."""
+    n = np.int64(0)
+    for w in range(Wr):
+        word = L[w]
+        while word != 0:
+            b = _trailing_zeros(word)
+            word &= word - ONE
+            v = w * 64 + b
+            row = ZERO
+            off = 0
+            for x in range(Wr):
+                lx = L[x]
+                if lx != 0:
+                    row |= _pext(adj[v, x], lx) << np.uint64(off)
+                    off += _popcount(lx)
+            cadj[n] = row
+            n += 1
+    return n
+
+
 @nb.njit(nogil=True, cache=True)
-def _vertex(p, offsets, nbrs, erank, max_dim, out_jump, stats, rank_of, prow, adj,
+def _vertex(p, offsets, nbrs, erank, max_dim, collapse, out_jump, stats, rank_of, prow, adj,
             pend_g, pend_b, pend_i, pend_j, srt_i, srt_j, bstart, tab, L, cadj, rem1, rem, wstart, counts,
             stack1, signs, stack, degs, verts):
-    """The jumps of every edge (p, q), q > p."""
+    """The jumps of every edge (p, q), q > p: capped (max_dim >= 3, collapse None) by
+    clique counts, uncapped (max_dim None, collapse 0) by collapses. numba prunes a
+    branch on `x is not None` before typing when x is None, so a capped run compiles no
+    collapse code and an uncapped one no clique counts."""
     s = offsets[p]
     t = offsets[p + 1]
     last = t - 1
@@ -1061,7 +1088,6 @@ def _vertex(p, offsets, nbrs, erank, max_dim, out_jump, stats, rank_of, prow, ad
         for w in range(W):
             adj[a, w] = 0
     gmax = prow[n_act - 1]
-    depth_max = max_dim - 1
     # the frame: edges among N(p). The row of w_c is in edge order, so it splits at
     # (w_c, p): a pair (w_j, w_c), j < c, met before it is shorter than (p, w_c) and is
     # in the frame from the start (a pair with j > c there is met again, as such, in the
@@ -1146,61 +1172,48 @@ def _vertex(p, offsets, nbrs, erank, max_dim, out_jump, stats, rank_of, prow, ad
             size += _popcount(word)
         if size == 0:
             c = -1
-        elif max_dim == 3:
-            # -1 + |L| - |edges of G_e|
-            ne = 0
-            for w in range(Wr):
-                word = L[w]
-                while word != 0:
-                    b = _trailing_zeros(word)
-                    word &= word - ONE
-                    v = w * 64 + b
-                    for x in range(Wr):
-                        ne += _popcount(adj[v, x] & L[x])
-            c = size - 1 - (ne >> 1)
-        elif size <= 64:
-            # compact G_e to one word per vertex
-            n = 0
-            for w in range(Wr):
-                word = L[w]
-                while word != 0:
-                    b = _trailing_zeros(word)
-                    word &= word - ONE
-                    v = w * 64 + b
-                    row = ZERO
-                    off = 0
-                    for x in range(Wr):
-                        lx = L[x]
-                        if lx != 0:
-                            row |= _pext(adj[v, x], lx) << np.uint64(off)
-                            off += _popcount(lx)
-                    cadj[n] = row
-                    n += 1
-            if max_dim >= 0:
-                c = _count_capped1(cadj, n, depth_max, rem1, counts)
+        elif max_dim is not None:
+            if max_dim == 3:
+                # -1 + |L| - |edges of G_e|
+                ne = 0
+                for w in range(Wr):
+                    word = L[w]
+                    while word != 0:
+                        b = _trailing_zeros(word)
+                        word &= word - ONE
+                        v = w * 64 + b
+                        for x in range(Wr):
+                            ne += _popcount(adj[v, x] & L[x])
+                c = size - 1 - (ne >> 1)
+            elif size <= 64:
+                c = _count_capped1(cadj, _compact(adj, L, Wr, cadj), max_dim - 1, rem1, counts)
             else:
-                c = _reduced_euler1(cadj, n, stack1, signs, stats)
-        elif max_dim >= 0:
-            c = _count_capped(adj, L, Wr, depth_max, rem, wstart, counts)
+                c = _count_capped(adj, L, Wr, max_dim - 1, rem, wstart, counts)
+        elif collapse is not None:
+            if size <= 64:
+                c = _reduced_euler1(cadj, _compact(adj, L, Wr, cadj), stack1, signs, stats)
+            else:
+                c = _reduced_euler(adj, L, Wr, stack, signs, degs, verts, stats)
         else:
-            c = _reduced_euler(adj, L, Wr, stack, signs, degs, verts, stats)
+            c = 0  # not reached: one of max_dim and collapse is None
         out_jump[prow[r]] = c
     for a in range(n_act):
         rank_of[nbrs[s + a]] = dummy
 
 
 @nb.njit(nogil=True, cache=True)
-def _count_rows(offsets, nbrs, erank, own_lo, own_hi, max_dim, out_jump, stats, rank_of, prow, adj,
+def _count_rows(offsets, nbrs, erank, own_lo, own_hi, max_dim, collapse, out_jump, stats, rank_of, prow, adj,
                 pend_g, pend_b, pend_i, pend_j, srt_i, srt_j, bstart, tab, L, cadj, rem1, rem, wstart,
                 counts, stack1, signs, stack, degs, verts):
     """Per-edge jumps for every edge whose lower endpoint p is in [own_lo, own_hi), for
-    max_dim >= 3 or uncapped, in a workspace (see _Frame) that fits these rows.
+    max_dim >= 3 (collapse None) or uncapped (max_dim None, collapse 0), in a workspace
+    (see _Frame) that fits these rows.
 
     out_jump is indexed by edge rank; each edge is written by its lower endpoint only,
     so several calls on disjoint vertex ranges may run in parallel threads.
     """
     for p in range(own_lo, own_hi):
-        _vertex(p, offsets, nbrs, erank, max_dim, out_jump, stats, rank_of, prow, adj,
+        _vertex(p, offsets, nbrs, erank, max_dim, collapse, out_jump, stats, rank_of, prow, adj,
                 pend_g, pend_b, pend_i, pend_j, srt_i, srt_j, bstart, tab, L, cadj, rem1, rem, wstart, counts,
                 stack1, signs, stack, degs, verts)
 
@@ -1477,10 +1490,13 @@ def _count(coords, offsets, nbrs, erank, lo: int, hi: int, cap: int, out_jump: n
                    pacer, weights=weights, threads=threads,
                    state=lambda: np.zeros(h, dtype=np.int64))
     else:
+        # one of the two is None: see _vertex
+        max_dim, collapse = (None, 0) if cap == UNCAPPED else (cap, None)
+
         def rows(a: int, b: int, frame: _Frame) -> None:
             bound, maxdeg = _pending_bound(offsets, nbrs, a, b)
             if maxdeg:
-                _count_rows(offsets, nbrs, erank, a, b, cap, out_jump, frame.stats,
+                _count_rows(offsets, nbrs, erank, a, b, max_dim, collapse, out_jump, frame.stats,
                             *frame.fit(bound, maxdeg))
 
         frames = run_blocks(lo, hi, rows, pacer, weights=weights, threads=threads,
