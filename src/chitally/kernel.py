@@ -126,6 +126,13 @@ _FIRST_ROWS = 1 << 16
 _FIRST_LEAVES = 8
 
 
+def _plain(x: np.ndarray) -> np.ndarray:
+    """x as a C-contiguous, aligned, writeable float64 array (a copy only if it is not):
+    the one array type the compiled functions are compiled and cached for, where a
+    read-only or strided input would compile another signature in the middle of a run."""
+    return np.require(x, dtype=np.float64, requirements=["C", "A", "W"])
+
+
 def _edge_blocks(n: int, call) -> None:
     """call(a, b) over consecutive blocks of the n edges (one call when n is small)."""
     if n <= _FIRST_EDGES:
@@ -488,6 +495,22 @@ def _closer_count(X, tag, c, thr):
     return below, equal
 
 
+def _new_tree(x: np.ndarray, leaf_size: int):
+    """kdtree._new_tree in numpy (one compiled function fewer to wait for): the depth,
+    a copy of the rows to reorder, and the node arrays, the root holding every row."""
+    n, m = x.shape
+    depth = 0
+    while (n + (1 << depth) - 1) >> depth > leaf_size:
+        depth += 1
+    n_nodes = (1 << (depth + 1)) - 1
+    start = np.empty(n_nodes, dtype=np.int64)
+    stop = np.empty(n_nodes, dtype=np.int64)
+    start[0] = 0
+    stop[0] = n
+    return (depth, x.copy(), np.arange(n, dtype=np.int64), start, stop,
+            np.empty((n_nodes, m), dtype=np.float64), np.empty((n_nodes, m), dtype=np.float64))
+
+
 @nb.njit(nogil=True, cache=True)
 def _split_nodes(xs, perm, start, stop, box_lo, box_hi, first, last, first_leaf):
     """kdtree's split of nodes [first, last), one level of the tree at a time."""
@@ -498,9 +521,9 @@ def _split_nodes(xs, perm, start, stop, box_lo, box_hi, first, last, first_leaf)
 def build_tree(x: np.ndarray, leaf_size: int):
     """`kdtree.build_tree` in blocks of nodes (the same splits in the same order, so the
     same tree): (xs, perm, start, stop, box_lo, box_hi)."""
-    x = np.ascontiguousarray(x, dtype=np.float64)
+    x = _plain(x)
     n = x.shape[0]
-    depth, xs, perm, start, stop, box_lo, box_hi = kdtree._new_tree(x, int(leaf_size))
+    depth, xs, perm, start, stop, box_lo, box_hi = _new_tree(x, int(leaf_size))
     first_leaf = (1 << depth) - 1
     if n <= _FIRST_ROWS:
         _split_nodes(xs, perm, start, stop, box_lo, box_hi, 0, start.shape[0], first_leaf)
@@ -549,14 +572,11 @@ def _sampled_edge_count(X: np.ndarray, tag: tuple, h: int, e2: float, buf: np.nd
     return int(1.25 * h * (found[0] - samples) / (2 * samples))
 
 
-@nb.njit(nogil=True, cache=True)
-def _rows_by_coordinate(xs, pad):
+def _rows_by_coordinate(xs: np.ndarray, pad: int) -> np.ndarray:
     """X[k, i] = xs[i, k], with pad zero columns after the last row."""
     h, dims = xs.shape
     X = np.zeros((dims, h + pad))
-    for i in range(h):
-        for k in range(dims):
-            X[k, i] = xs[i, k]
+    X[:, :h] = xs.T
     return X
 
 
@@ -638,7 +658,7 @@ def _tree_edges(coords: np.ndarray, eps: float, prune2: float, max_edges: int):
     rows within the widened bound. The boxes and the mask only propose (with the widened
     bound of metric.query_radius); membership is the one rule.
     """
-    coords = np.ascontiguousarray(coords, dtype=np.float64)
+    coords = _plain(coords)
     h, dims = coords.shape
     eps = float(eps)
     tag = width_tag(dims)
@@ -1269,18 +1289,6 @@ class _Frame:
 
 
 @nb.njit(nogil=True, cache=True)
-def _owned_edges(elo, g0, g1, own_lo, own_hi, out_jump, unit):
-    """Set the jump of every owned edge in [g0, g1) to -1 (unit); count them."""
-    c = 0
-    for g in range(g0, g1):
-        if own_lo <= elo[g] < own_hi:
-            c += 1
-            if unit:
-                out_jump[g] = -1
-    return c
-
-
-@nb.njit(nogil=True, cache=True)
 def _group_lengths(ed2, elo, g0, g1, own_lo, own_hi, out_jump, n):
     """Group the nonzero jumps of the owned edges in [g0, g1) by length (edges are in
     increasing d2) after the first n groups, in ed2 (now lengths) and out_jump; returns
@@ -1299,23 +1307,13 @@ def _group_lengths(ed2, elo, g0, g1, own_lo, own_hi, out_jump, n):
     return n
 
 
-@nb.njit(nogil=True, cache=True)
-def _drop_zeros(ed2, out_jump, a0, a1, k):
-    """Move the groups in [a0, a1) with a nonzero jump after the first k; returns k."""
-    for a in range(a0, a1):
-        if out_jump[a] != 0:
-            ed2[k] = ed2[a]
-            out_jump[k] = out_jump[a]
-            k += 1
-    return k
-
-
-def _owned_count(elo: np.ndarray, lo: int, hi: int, out_jump: np.ndarray, unit: bool) -> int:
-    """_owned_edges over every edge."""
+def _owned_count(elo: np.ndarray, lo: int, hi: int) -> int:
+    """The edges whose lower endpoint is in [lo, hi)."""
     total = [0]
 
     def count(a: int, b: int) -> None:
-        total[0] += _owned_edges(elo, a, b, lo, hi, out_jump, unit)
+        e = elo[a:b]
+        total[0] += int(np.count_nonzero((e >= lo) & (e < hi)))
 
     _edge_blocks(elo.shape[0], count)
     return total[0]
@@ -1333,7 +1331,13 @@ def _collect(ed2: np.ndarray, elo: np.ndarray, lo: int, hi: int, out_jump: np.nd
     k = [0]
 
     def drop(a: int, b: int) -> None:
-        k[0] = _drop_zeros(ed2, out_jump, a, b, k[0])
+        # the groups with a nonzero jump move down, after the first k; boolean indexing
+        # reads into a copy before the write
+        keep = out_jump[a:b] != 0
+        c = int(np.count_nonzero(keep))
+        ed2[k[0] : k[0] + c] = ed2[a:b][keep]
+        out_jump[k[0] : k[0] + c] = out_jump[a:b][keep]
+        k[0] += c
 
     _edge_blocks(n[0], drop)
     k = k[0]
@@ -1549,7 +1553,7 @@ def count_jumps(
     >>> t.values.tolist(), t.jumps.tolist()
     ([0.0, 1.0], [3, -2])
     """
-    coords = np.ascontiguousarray(coords, dtype=np.float64)
+    coords = _plain(coords)
     h = coords.shape[0]
     lo, hi = (0, h) if owned is None else (int(owned[0]), int(owned[1]))
     if not (0 <= lo <= hi <= h):
@@ -1572,7 +1576,7 @@ def count_jumps(
             del edges
             t1 = time.perf_counter()
             out_jump = np.empty(ed2.shape[0], dtype=np.int64)
-            stats.edges = _owned_count(elo, lo, hi, out_jump, False)
+            stats.edges = _owned_count(elo, lo, hi)
             counted = _count(coords, offsets, nbrs, erank, lo, hi, cap, out_jump, threads)
             values, jumps = _collect(ed2, elo, lo, hi, out_jump, hi - lo)
     t2 = time.perf_counter()
@@ -1581,3 +1585,51 @@ def count_jumps(
     stats.seconds_graph = t1 - t0
     stats.seconds_count = t2 - t1
     return JumpTable(values, jumps, stats)
+
+
+# ---------------------------------------------------------------------------------------
+# what a run compiles
+# ---------------------------------------------------------------------------------------
+
+
+def compiled_calls(max_dim: int | None, dims: int) -> list[tuple[object, tuple]]:
+    """The compiled functions `count_jumps` calls from Python for one cap and number of
+    coordinates, each with the numba argument types of its call.
+
+    Their callees are compiled into them, so this list is what a run needs compiled or
+    loaded from numba's cache (see warmup.py); caps from 3 up share one signature. The
+    cKDTree fallback for halos the compiled tree does not take (no rows, no coordinates,
+    non-finite values, eps < 0) is not listed: `euler_curve` never takes it.
+    tests/test_warmup.py checks the list against the calls a run makes.
+    """
+    cap = UNCAPPED if max_dim is None else int(max_dim)
+    if cap == 0:
+        return []
+    i8, f8 = types.int64, types.float64
+    I4, I8, F8, U8 = (types.Array(t, 1, "C") for t in (types.int32, types.int64, types.float64, types.uint64))
+    F8_2, U8_2 = types.Array(types.float64, 2, "C"), types.Array(types.uint64, 2, "C")
+    tag = nb.typeof(width_tag(int(dims)))
+    calls: list[tuple[object, tuple]] = [
+        (_split_nodes, (F8_2, I8, I8, I8, F8_2, F8_2, i8, i8, i8)),
+        (_sampled_edges, (F8_2, tag, i8, f8, F8, i8, i8)),
+        (_join_leaves, (F8_2, tag, F8_2, I8, I8, I8, F8_2, F8_2, f8, f8, f8, i8, i8, i8, I4, I4, F8, i8, I8, F8)),
+        (_coarse_count, (I4, I4, F8, i8, i8, f8, i8, I8, I8)),
+        (_coarse_scatter, (I4, I4, F8, i8, i8, f8, i8, I8, I4, I4, F8)),
+        (_fine_sort, (I4, I4, F8, I8, i8, i8, f8, I8, I4, I4, F8)),
+        (_group_lengths, (F8, I4, i8, i8, i8, i8, I8, i8)),
+    ]
+    if cap == 1:
+        calls.append((_keep_owned, (I4, I4, F8, i8, i8, i8, i8, i8)))
+        return calls
+    calls.append((_fill_rows, (I4, I4, i8, i8, I8, I4, I4)))
+    if cap == 2 and 1 <= dims <= _UNROLLED_DIMS:
+        calls.append((_cap2_near, (F8_2, tag, I8, I4, I4, i8, i8, I8)))
+    elif cap == 2:
+        calls.append((_count_cap2, (I8, I4, I4, i8, i8, I8, I8)))
+    else:
+        max_dim_t, collapse_t = (types.none, i8) if cap == UNCAPPED else (i8, types.none)
+        workspace = (I4, I8, U8_2, I8, I4, I4, I4, I4, I4, I8, I4, U8, U8, U8, U8_2, I8, I8, U8, I8,
+                     U8_2, I8, I8)
+        calls += [(_pending_bound, (I8, I4, i8, i8)),
+                  (_count_rows, (I8, I4, I4, i8, i8, max_dim_t, collapse_t, I8, I8) + workspace)]
+    return calls
