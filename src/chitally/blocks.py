@@ -49,7 +49,8 @@ def whole_calls(enabled: bool = True) -> Iterator[None]:
 
 
 class Pacer:
-    """Block sizes, in units of work, that take about `seconds` each.
+    """Block sizes, in units of work, that take about `seconds` each (default
+    `BLOCK_SECONDS`).
 
     The first block is `first` units; every later one is sized from the rate of the
     blocks measured so far (at most `_GROWTH` times the previous size), so that a cheap
@@ -57,9 +58,9 @@ class Pacer:
     Safe to share between threads.
     """
 
-    def __init__(self, first: float, seconds: float = BLOCK_SECONDS) -> None:
+    def __init__(self, first: float, seconds: float | None = None) -> None:
         self.budget = max(1.0, float(first))
-        self.seconds = seconds
+        self.seconds = BLOCK_SECONDS if seconds is None else seconds
         self._lock = threading.Lock()
 
     def observe(self, work: float, elapsed: float) -> None:
@@ -102,7 +103,7 @@ def run_blocks(
         Threads taking blocks (the main thread is one of them); helpers start only if
         work remains after the first block.
     state : callable, optional
-        Makes one thread's state (a workspace), once per thread, on its first block.
+        Makes a thread's state (a workspace) when it takes its first block.
 
     Returns
     -------
@@ -121,16 +122,16 @@ def run_blocks(
 
     def work(first_block: tuple[int, int] | None = None) -> None:
         s = None
-        if state is not None:
-            s = state()
-            with queue.lock:
-                states.append(s)
         block = first_block
         while not stop.is_set():
             if block is None:
                 block = queue.take()
                 if block is None:
                     return
+            if s is None and state is not None:
+                s = state()
+                with queue.lock:
+                    states.append(s)
             a, b = block
             t0 = time.perf_counter()
             if s is None:
@@ -196,10 +197,15 @@ class _Queue:
             a = self.next
             if a >= self.hi:
                 return None
-            budget = self.total / self.whole * (1.0 + 1e-9) if self.whole else self.pacer.budget
             if self.weights is None:
-                b = min(self.hi, a + max(1, int(-(-budget // self.unit))))
+                if self.whole:
+                    size = -(-(self.hi - self.lo) // self.whole)
+                else:
+                    size = max(1, int(self.pacer.budget / self.unit))
+                b = min(self.hi, a + size)
             else:
+                # a share of the whole, a hair over so that rounding cannot add a block
+                budget = self.total / self.whole * (1.0 + 1e-9) if self.whole else self.pacer.budget
                 w = self.weights
                 goal = w[a - self.lo] + budget
                 # the last item whose cumulative cost stays within the budget, and at
