@@ -114,6 +114,14 @@ def run_blocks(
         return []
     if weights is not None and weights.shape[0] != hi - lo + 1:
         raise ValueError("weights must hold hi - lo + 1 cumulative values")
+    total = (hi - lo) * unit if weights is None else float(weights[-1] - weights[0])
+    if total <= pacer.budget:  # one block: none of the bookkeeping below
+        if state is None:
+            call(lo, hi)
+            return []
+        s = state()
+        call(lo, hi, s)
+        return [s]
     threads = max(1, int(threads))
     queue = _Queue(lo, hi, pacer, weights, unit, threads if _WHOLE.get() else 0)
     states: list[Any] = []
@@ -121,23 +129,23 @@ def run_blocks(
     stop = threading.Event()
 
     def work(first_block: tuple[int, int] | None = None) -> None:
-        s = None
+        made = None  # [this thread's state] once made
         block = first_block
         while not stop.is_set():
             if block is None:
                 block = queue.take()
                 if block is None:
                     return
-            if s is None and state is not None:
-                s = state()
+            if made is None and state is not None:
+                made = [state()]
                 with queue.lock:
-                    states.append(s)
+                    states.append(made[0])
             a, b = block
             t0 = time.perf_counter()
-            if s is None:
+            if made is None:
                 call(a, b)
             else:
-                call(a, b, s)
+                call(a, b, made[0])
             pacer.observe(queue.cost(a, b), time.perf_counter() - t0)
             block = None
 

@@ -22,8 +22,10 @@ functions release the GIL so that callers may run several owned ranges in thread
 
 from __future__ import annotations
 
+import contextlib
 import math
 import os
+import threading
 import time
 from dataclasses import dataclass, field
 
@@ -124,6 +126,8 @@ _FIRST_EDGES = 1 << 16
 _FIRST_ROWS = 1 << 16
 # a leaf of a dense halo may meet thousands of others
 _FIRST_LEAVES = 8
+# halos from this many rows on estimate their edges before the join
+_SAMPLED_ROWS = 1 << 12
 
 
 def _plain(x: np.ndarray) -> np.ndarray:
@@ -538,10 +542,9 @@ def build_tree(x: np.ndarray, leaf_size: int):
 
 
 @nb.njit(nogil=True, cache=True)
-def _sampled_edges(X, tag, h, e2, buf, t0, t1):
-    """Rows within reach of samples [t0, t1) of 64 evenly spaced rows (themselves
+def _sampled_edges(X, tag, h, e2, buf, samples, t0, t1):
+    """Rows within reach of samples [t0, t1) of `samples` evenly spaced rows (themselves
     included)."""
-    samples = min(h, 64)
     found = 0
     for t in range(t0, t1):
         i = t * h // samples
@@ -554,15 +557,17 @@ def _sampled_edges(X, tag, h, e2, buf, t0, t1):
 
 
 def _sampled_edge_count(X: np.ndarray, tag: tuple, h: int, e2: float, buf: np.ndarray) -> int:
-    """A generous estimate of the edges among h rows, from the degrees of 64 evenly spaced
-    rows: the join then rarely grows (and copies) its output."""
-    samples = min(h, 64)
-    if samples == 0:
+    """A generous estimate of the edges among h rows, from the degrees of 64 evenly
+    spaced rows: the join then rarely grows (and copies) its output. None (0) below
+    _SAMPLED_ROWS rows, where 64 samples would cost a good part of the join itself and
+    growing the output is cheap."""
+    if h < _SAMPLED_ROWS:
         return 0
+    samples = 64
     found = [0]
 
     def count(a: int, b: int) -> None:
-        found[0] += _sampled_edges(X, tag, h, e2, buf, a, b)
+        found[0] += _sampled_edges(X, tag, h, e2, buf, samples, a, b)
 
     if samples * h <= _FIRST_ROWS:
         count(0, samples)
@@ -1243,13 +1248,34 @@ class _Frame:
     frame of a neighbourhood as bitsets, the pending frame pairs, the clique and
     collapse stacks. Allocated once per thread and call, not once per block."""
 
+    # a thread keeps its last workspace up to this size for its next call: many small
+    # halos in a row then allocate nothing
+    KEEP_BYTES = 1 << 22
+    _kept = threading.local()
+
     def __init__(self, h: int, max_dim: int) -> None:
         self.h = h
-        self.max_dim = max_dim
+        self.depth = max(max_dim - 1, 1) + 1
         self.maxdeg = 0
         self.bound = 0
         self.arrays: tuple = ()
         self.stats = np.zeros(len(STAT_NAMES), dtype=np.int64)
+
+    @classmethod
+    def take(cls, h: int, max_dim: int) -> "_Frame":
+        """This thread's kept workspace if it serves h rows and max_dim, else a new one.
+        A kept workspace is as good as new: every vertex leaves rank_of as it found it."""
+        frame = getattr(cls._kept, "frame", None)
+        cls._kept.frame = None
+        if frame is None or frame.h < h or frame.depth < max(max_dim - 1, 1) + 1:
+            return cls(h, max_dim)
+        frame.stats[:] = 0
+        return frame
+
+    def keep(self) -> None:
+        """Offer this workspace to the calling thread's next call, if it is small."""
+        if sum(a.nbytes for a in self.arrays) <= self.KEEP_BYTES:
+            type(self)._kept.frame = self
 
     def fit(self, bound: int, maxdeg: int) -> tuple:
         if maxdeg > self.maxdeg or bound > self.bound:
@@ -1260,7 +1286,7 @@ class _Frame:
             dummy = 64 * Wmax
             prow = np.empty(dummy + 1, dtype=np.int64)
             prow[dummy] = np.iinfo(np.int64).max
-            depth = max(self.max_dim - 1, 1) + 1
+            depth = self.depth
             self.arrays = (
                 np.full(self.h, dummy, dtype=np.int32),  # rank_of
                 prow,
@@ -1307,8 +1333,10 @@ def _group_lengths(ed2, elo, g0, g1, own_lo, own_hi, out_jump, n):
     return n
 
 
-def _owned_count(elo: np.ndarray, lo: int, hi: int) -> int:
-    """The edges whose lower endpoint is in [lo, hi)."""
+def _owned_count(elo: np.ndarray, lo: int, hi: int, h: int) -> int:
+    """The edges whose lower endpoint is in [lo, hi) of the h rows."""
+    if lo == 0 and hi == h:
+        return elo.shape[0]
     total = [0]
 
     def count(a: int, b: int) -> None:
@@ -1475,38 +1503,53 @@ def _count(coords, offsets, nbrs, erank, lo: int, hi: int, cap: int, out_jump: n
            threads: int | None) -> np.ndarray:
     """Fill out_jump for the owned edges (cap >= 2) in blocks of rows over threads;
     returns the summed counters."""
-    deg = np.diff(offsets[lo : hi + 1]).astype(np.float64)
-    # the frame of a row costs about its degree squared
-    weights = np.zeros(hi - lo + 1)
-    np.cumsum(deg * deg + 1.0, out=weights[1:])
-    if threads is None:
-        threads = default_threads(float(weights[-1]))
-    threads = max(1, int(threads))
     h = offsets.shape[0] - 1
     stats = np.zeros(len(STAT_NAMES), dtype=np.int64)
-    pacer = Pacer(_FIRST_WORK)
     if cap == 2 and 1 <= coords.shape[1] <= _UNROLLED_DIMS:
         tag = width_tag(coords.shape[1])
-        run_blocks(lo, hi, lambda a, b: _cap2_near(coords, tag, offsets, nbrs, erank, a, b, out_jump),
-                   pacer, weights=weights, threads=threads)
+
+        def call(a: int, b: int, _state: None) -> None:
+            _cap2_near(coords, tag, offsets, nbrs, erank, a, b, out_jump)
+
+        def state() -> None:
+            return None
     elif cap == 2:
-        run_blocks(lo, hi, lambda a, b, mark: _count_cap2(offsets, nbrs, erank, a, b, out_jump, mark),
-                   pacer, weights=weights, threads=threads,
-                   state=lambda: np.zeros(h, dtype=np.int64))
+        def call(a: int, b: int, mark: np.ndarray) -> None:
+            _count_cap2(offsets, nbrs, erank, a, b, out_jump, mark)
+
+        def state() -> np.ndarray:
+            return np.zeros(h, dtype=np.int64)
     else:
         # one of the two is None: see _vertex
         max_dim, collapse = (None, 0) if cap == UNCAPPED else (cap, None)
 
-        def rows(a: int, b: int, frame: _Frame) -> None:
+        def call(a: int, b: int, frame: _Frame) -> None:
             bound, maxdeg = _pending_bound(offsets, nbrs, a, b)
             if maxdeg:
                 _count_rows(offsets, nbrs, erank, a, b, max_dim, collapse, out_jump, frame.stats,
                             *frame.fit(bound, maxdeg))
 
-        frames = run_blocks(lo, hi, rows, pacer, weights=weights, threads=threads,
-                            state=lambda: _Frame(h, cap))
-        for frame in frames:
-            stats += frame.stats
+        def state() -> _Frame:
+            return _Frame.take(h, cap)
+
+    deg = np.diff(offsets[lo : hi + 1])
+    # the frame of a row costs about its degree squared: a small halo (bounded through
+    # the largest degree) is one call, without the blocks' bookkeeping
+    if hi - lo + int(deg.max(initial=0)) * int(offsets[hi] - offsets[lo]) <= _FIRST_WORK:
+        states = [state()]
+        call(lo, hi, states[0])
+    else:
+        deg = deg.astype(np.float64)
+        weights = np.zeros(hi - lo + 1)
+        np.cumsum(deg * deg + 1.0, out=weights[1:])
+        if threads is None:
+            threads = default_threads(float(weights[-1]))
+        states = run_blocks(lo, hi, call, Pacer(_FIRST_WORK), weights=weights, threads=threads,
+                            state=state)
+    for s in states:
+        if isinstance(s, _Frame):
+            stats += s.stats
+            s.keep()
     return stats
 
 
@@ -1564,7 +1607,7 @@ def count_jumps(
         values = np.zeros(1 if hi > lo else 0, dtype=np.float64)
         jumps = np.full(values.shape, hi - lo, dtype=np.int64)
         return JumpTable(values, jumps, stats)
-    with whole_calls(not blocks):
+    with contextlib.nullcontext() if blocks else whole_calls():
         t0 = time.perf_counter()
         edges = _halo_edges(coords, eps)
         if cap == 1:
@@ -1576,7 +1619,7 @@ def count_jumps(
             del edges
             t1 = time.perf_counter()
             out_jump = np.empty(ed2.shape[0], dtype=np.int64)
-            stats.edges = _owned_count(elo, lo, hi)
+            stats.edges = _owned_count(elo, lo, hi, h)
             counted = _count(coords, offsets, nbrs, erank, lo, hi, cap, out_jump, threads)
             values, jumps = _collect(ed2, elo, lo, hi, out_jump, hi - lo)
     t2 = time.perf_counter()
@@ -1611,7 +1654,7 @@ def compiled_calls(max_dim: int | None, dims: int) -> list[tuple[object, tuple]]
     tag = nb.typeof(width_tag(int(dims)))
     calls: list[tuple[object, tuple]] = [
         (_split_nodes, (F8_2, I8, I8, I8, F8_2, F8_2, i8, i8, i8)),
-        (_sampled_edges, (F8_2, tag, i8, f8, F8, i8, i8)),
+        (_sampled_edges, (F8_2, tag, i8, f8, F8, i8, i8, i8)),
         (_join_leaves, (F8_2, tag, F8_2, I8, I8, I8, F8_2, F8_2, f8, f8, f8, i8, i8, i8, I4, I4, F8, i8, I8, F8)),
         (_coarse_count, (I4, I4, F8, i8, i8, f8, i8, I8, I8)),
         (_coarse_scatter, (I4, I4, F8, i8, i8, f8, i8, I8, I4, I4, F8)),
