@@ -622,13 +622,14 @@ def test_threads_on_a_larger_cloud() -> None:
 
 @pytest.fixture
 def one_item_blocks(monkeypatch: pytest.MonkeyPatch) -> None:
-    """Every compiled loop in blocks of one item (edge, coarse bucket, tree node, sample,
-    leaf, row): the most cuts the drivers can make."""
+    """Every compiled loop in blocks of one item (edge, coarse bucket, tree node, sample of
+    the edge estimate, leaf, row): the most cuts the drivers can make."""
     from chitally import blocks, kernel
 
     monkeypatch.setattr(blocks, "BLOCK_SECONDS", 1e-12)
     for name in ("_FIRST_EDGES", "_FIRST_ROWS", "_FIRST_LEAVES", "_FIRST_WORK"):
         monkeypatch.setattr(kernel, name, 0)
+    monkeypatch.setattr(kernel, "_SAMPLED_ROWS", 64)  # the edge estimate, one sample a block
 
 
 @pytest.mark.parametrize("max_dim", [1, 2, 3, 5, None])

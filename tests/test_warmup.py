@@ -46,9 +46,10 @@ def test_compiled_calls_are_exactly_the_calls_of_a_run(monkeypatch: pytest.Monke
                                                       dims: int) -> None:
     """Every compiled function the Python side of euler_curve and of count_jumps on a
     partly owned halo (as tasks call it) calls, with the numba types of its arguments, is
-    listed, and nothing else is. (The edge estimate that only large halos make is made
-    here too.)"""
+    listed, and nothing else is. (The edge estimate and the bucket sort of cap 1 that
+    only large halos need are made here too.)"""
     monkeypatch.setattr(kernel, "_SAMPLED_ROWS", 64)
+    monkeypatch.setattr(kernel, "_FIRST_EDGES", 16)
     points, eps = cloud(dims)
 
     def run() -> None:

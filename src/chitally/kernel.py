@@ -1368,9 +1368,13 @@ def _collect(ed2: np.ndarray, elo: np.ndarray, lo: int, hi: int, out_jump: np.nd
         k[0] += c
 
     _edge_blocks(n[0], drop)
-    k = k[0]
-    values, jumps = ed2[:k], out_jump[:k]  # views: a copy of tens of MB costs page faults
-    if k and values[0] == 0.0:  # coincident points: their 0-length edges meet the vertices
+    # views: a copy of tens of MB costs page faults
+    return _with_vertices(ed2[: k[0]], out_jump[: k[0]], n_vertices)
+
+
+def _with_vertices(values: np.ndarray, jumps: np.ndarray, n_vertices: int) -> tuple[np.ndarray, np.ndarray]:
+    """The edges' table (increasing lengths, nonzero jumps) with the vertices at 0.0."""
+    if values.shape[0] and values[0] == 0.0:  # coincident points: their 0-length edges meet the vertices
         jumps[0] += n_vertices
         if jumps[0] == 0:
             values, jumps = values[1:], jumps[1:]
@@ -1447,33 +1451,99 @@ def _halo_graph(coords: np.ndarray, eps: float):
 
 
 @nb.njit(nogil=True, cache=True)
-def _keep_owned(lo0, hi0, d20, g0, g1, own_lo, own_hi, k):
-    """Move the records of [g0, g1) with an owned lower endpoint after the first k;
-    returns the new k (records move to lower indices only)."""
+def _keep_owned(lo0, d20, g0, g1, own_lo, own_hi, k):
+    """Move the lengths of the records of [g0, g1) with an owned lower endpoint after the
+    first k; returns the new k (values move to lower indices only)."""
     for g in range(g0, g1):
         if own_lo <= lo0[g] < own_hi:
-            lo0[k] = lo0[g]
-            hi0[k] = hi0[g]
             d20[k] = d20[g]
             k += 1
     return k
 
 
+@nb.njit(nogil=True, cache=True)
+def _bucket_values(d2, g0, g1, scale, top, fill, out, scatter):
+    """Values [g0, g1) by coarse bucket, as in _coarse_count / _coarse_scatter: count
+    them (fill[c + 1] += 1), or move each to the next free slot of its bucket in out."""
+    for g in range(g0, g1):
+        x = d2[g]
+        u = x * scale
+        c = int(u) if u < top else top
+        if scatter:
+            y = fill[c]
+            out[y] = x
+            fill[c] = y + 1
+        else:
+            fill[c + 1] += 1
+
+
+@nb.njit(nogil=True, cache=True)
+def _group_values(d2, g0, g1, counts, n):
+    """Group the square roots of the sorted d2[g0:g1] after the first n groups: lengths
+    into d2 itself (entry g is written at an index of at most g, after it was read),
+    their multiplicities into counts; returns the new n."""
+    for g in range(g0, g1):
+        v = math.sqrt(d2[g])
+        if n > 0 and v == d2[n - 1]:
+            counts[n - 1] += 1
+        else:
+            d2[n] = v
+            counts[n] = 1
+            n += 1
+    return n
+
+
+def _sorted_values(d2: np.ndarray) -> np.ndarray:
+    """d2 sorted (a new array or d2 itself): coarse buckets by value as in _sorted_edges,
+    then numpy's sort on runs of whole buckets, all in blocks."""
+    m = d2.shape[0]
+    if m <= _FIRST_EDGES:
+        d2.sort()
+        return d2
+    dmax = float(d2.max())
+    ncoarse = _COARSE
+    scale = ncoarse / dmax if dmax > 0.0 else 0.0
+    if not (scale < math.inf):
+        scale = 0.0
+    top = ncoarse - 1
+    start = np.zeros(ncoarse + 1, dtype=np.int64)
+    _edge_blocks(m, lambda a, b: _bucket_values(d2, a, b, scale, top, start, d2, False))
+    np.cumsum(start, out=start)
+    out = np.empty(m, dtype=np.float64)
+    fill = start[:-1].copy()
+    _edge_blocks(m, lambda a, b: _bucket_values(d2, a, b, scale, top, fill, out, True))
+
+    def sort(a: int, b: int) -> None:
+        out[start[a] : start[b]].sort()  # whole buckets: sorted runs side by side
+
+    run_blocks(0, ncoarse, sort, Pacer(_FIRST_EDGES), weights=start.astype(np.float64))
+    return out
+
+
 def _cap1(h: int, edges: tuple, lo: int, hi: int):
-    """Cap 1: -1 per owned edge at its length; only the owned edges are sorted, and no
-    CSR is built. Returns (values, jumps, owned edges)."""
-    lo0, hi0, d20, m = edges
+    """Cap 1: -1 per owned edge at its length. Only the owned edges' squared lengths are
+    sorted, and their square roots grouped: no edge order, no CSR. Returns (values,
+    jumps, owned edges)."""
+    lo0, _hi0, d20, m = edges
     if (lo, hi) != (0, h):
         k = [0]
 
         def keep(a: int, b: int) -> None:
-            k[0] = _keep_owned(lo0, hi0, d20, a, b, lo, hi, k[0])
+            k[0] = _keep_owned(lo0, d20, a, b, lo, hi, k[0])
 
         _edge_blocks(m, keep)
         m = k[0]
-    _offsets, elo, _ehi, ed2 = _sorted_edges(h, lo0, hi0, d20, m)
-    out_jump = np.full(m, -1, dtype=np.int64)
-    values, jumps = _collect(ed2, elo, lo, hi, out_jump, hi - lo)
+    d2 = _sorted_values(d20[:m])
+    counts = np.empty(m, dtype=np.int64)
+    n = [0]
+
+    def group(a: int, b: int) -> None:
+        n[0] = _group_values(d2, a, b, counts, n[0])
+
+    _edge_blocks(m, group)
+    jumps = counts[: n[0]]
+    np.negative(jumps, out=jumps)
+    values, jumps = _with_vertices(d2[: n[0]], jumps, hi - lo)
     return values, jumps, m
 
 
@@ -1656,15 +1726,17 @@ def compiled_calls(max_dim: int | None, dims: int) -> list[tuple[object, tuple]]
         (_split_nodes, (F8_2, I8, I8, I8, F8_2, F8_2, i8, i8, i8)),
         (_sampled_edges, (F8_2, tag, i8, f8, F8, i8, i8, i8)),
         (_join_leaves, (F8_2, tag, F8_2, I8, I8, I8, F8_2, F8_2, f8, f8, f8, i8, i8, i8, I4, I4, F8, i8, I8, F8)),
-        (_coarse_count, (I4, I4, F8, i8, i8, f8, i8, I8, I8)),
-        (_coarse_scatter, (I4, I4, F8, i8, i8, f8, i8, I8, I4, I4, F8)),
-        (_fine_sort, (I4, I4, F8, I8, i8, i8, f8, I8, I4, I4, F8)),
-        (_group_lengths, (F8, I4, i8, i8, i8, i8, I8, i8)),
     ]
     if cap == 1:
-        calls.append((_keep_owned, (I4, I4, F8, i8, i8, i8, i8, i8)))
+        calls += [(_keep_owned, (I4, F8, i8, i8, i8, i8, i8)),
+                  (_bucket_values, (F8, i8, i8, f8, i8, I8, F8, types.boolean)),
+                  (_group_values, (F8, i8, i8, I8, i8))]
         return calls
-    calls.append((_fill_rows, (I4, I4, i8, i8, I8, I4, I4)))
+    calls += [(_coarse_count, (I4, I4, F8, i8, i8, f8, i8, I8, I8)),
+              (_coarse_scatter, (I4, I4, F8, i8, i8, f8, i8, I8, I4, I4, F8)),
+              (_fine_sort, (I4, I4, F8, I8, i8, i8, f8, I8, I4, I4, F8)),
+              (_fill_rows, (I4, I4, i8, i8, I8, I4, I4)),
+              (_group_lengths, (F8, I4, i8, i8, i8, i8, I8, i8))]
     if cap == 2 and 1 <= dims <= _UNROLLED_DIMS:
         calls.append((_cap2_near, (F8_2, tag, I8, I4, I4, i8, i8, I8)))
     elif cap == 2:
