@@ -378,3 +378,99 @@ def test_huge_coordinates_follow_the_rule_or_are_refused() -> None:
     with pytest.raises(InputError, match="row 1, column 0") as info:
         euler_curve(points, 1.0)
     assert "\n" not in str(info.value)
+
+
+# ------------------------------------------------------------------ Ctrl-C
+
+# 343 copies of one cluster of 150 points, far enough apart to share no edge; the
+# coordinates sit on a grid of 2^-20 and the offsets are integers, so every copy has the
+# very same squared lengths and the same counting work. The call is interrupted by a
+# SIGINT sent to the process 1.5 s after it starts.
+INTERRUPT_SCRIPT = r"""
+import json, os, signal, sys, threading, time
+import numpy as np
+from chitally import euler_curve
+
+threads = int(sys.argv[1])
+rng = np.random.default_rng(7)
+cluster = np.round(rng.random((150, 3)) * 2.0**20) / 2.0**20
+euler_curve(cluster, 0.8, 5, threads=1)  # compile (or load) outside the timing
+one = []
+for _ in range(3):
+    t = time.perf_counter()
+    euler_curve(cluster, 0.8, 5, threads=1)
+    one.append(time.perf_counter() - t)
+side = 7
+offsets = 4.0 * np.stack(np.meshgrid(*[np.arange(side)] * 3), -1).reshape(-1, 3)
+cloud = (offsets[:, None, :] + cluster[None]).reshape(-1, 3)
+sent = []
+
+def interrupt():
+    sent.append(time.perf_counter())
+    os.kill(os.getpid(), signal.SIGINT)
+
+timer = threading.Timer(1.5, interrupt)
+timer.start()
+try:
+    euler_curve(cloud, 0.8, 5, threads=threads)
+    outcome = "finished"
+except KeyboardInterrupt:
+    outcome = "interrupted"
+end = time.perf_counter()
+timer.join()
+print(json.dumps({"outcome": outcome, "reaction": end - sent[0] if sent else None,
+                  "cluster_seconds": min(one), "clusters": len(offsets),
+                  "threads_left": threading.active_count()}))
+"""
+
+
+@pytest.mark.parametrize("threads", [1, 2])
+def test_ctrl_c_stops_a_long_call_within_a_second(threads: int) -> None:
+    """SIGINT during a long euler_curve raises KeyboardInterrupt within about a second of
+    the signal (bounded at 2 s for a loaded machine) and leaves no thread running. The
+    call would take far longer: its 343 disjoint copies of a cluster cost 343 times one
+    cluster's time, measured in the same process (Euler characteristic and the count are
+    additive over components that share no edge)."""
+    import json
+    import os
+    import subprocess
+    import sys
+
+    done = subprocess.run([sys.executable, "-c", INTERRUPT_SCRIPT, str(threads)], capture_output=True,
+                          text=True, timeout=600, env=dict(os.environ))
+    assert done.returncode == 0, done.stderr[-2000:]
+    result = json.loads(done.stdout.strip().splitlines()[-1])
+    expected = result["clusters"] * result["cluster_seconds"] / threads
+    assert expected > 10.0, result  # the uninterrupted call would take much longer
+    assert result["outcome"] == "interrupted", result
+    assert result["reaction"] < 2.0, result
+    assert result["threads_left"] == 1, result
+
+
+# ------------------------------------------------------------------ threads
+
+
+def test_default_threads_by_the_size_of_the_counting() -> None:
+    """One thread below the threshold, every usable core from it on."""
+    import os
+
+    from chitally.kernel import AUTO_THREADS_WORK, default_threads
+
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
+    assert default_threads(0.0) == 1
+    assert default_threads(AUTO_THREADS_WORK - 1.0) == 1
+    assert default_threads(float(AUTO_THREADS_WORK)) == cores
+
+
+def test_leaf_order_is_a_permutation_of_spatially_grouped_rows() -> None:
+    """leaf_order permutes the rows so that each run of 16 consecutive rows (one leaf of
+    a median-split tree of 1024 = 64 x 16 points) spans a box of a 64th of the square's
+    area on average, where 16 random rows span nearly the whole square."""
+    from chitally.inprocess import leaf_order
+
+    points = np.random.default_rng(36).random((1024, 2))
+    order = leaf_order(points)
+    assert order.dtype == np.int64 and np.array_equal(np.sort(order), np.arange(1024))
+    leaves = points[order].reshape(64, 16, 2)
+    areas = np.prod(leaves.max(axis=1) - leaves.min(axis=1), axis=1)
+    assert areas.mean() < 2.0 / 64

@@ -18,6 +18,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
+from numba.core import types as nb_types
 from references import (
     brute_force_curve,
     count_edges,
@@ -608,12 +609,137 @@ def test_row_order_does_not_change_the_table(case: tuple[np.ndarray, float, int 
 
 
 def test_threads_on_a_larger_cloud() -> None:
-    """The threaded split over many ranges on 3,000 points, capped and uncapped."""
+    """Threads taking blocks of rows on 3,000 points, capped and uncapped."""
     points = np.random.default_rng(8).random((3000, 3))
     for max_dim in (1, 3, None):
         one = count_jumps(points, 0.09, max_dim, threads=1)
         assert tables_equal(one, count_jumps(points, 0.09, max_dim, threads=2))
         assert one.stats.vertices == 3000 and one.stats.edges == count_edges(points, 0.09)
+
+
+# ------------------------------------------------------------------------- blocks
+
+
+@pytest.fixture
+def one_item_blocks(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Every compiled loop in blocks of one item (edge, coarse bucket, tree node, sample of
+    the edge estimate, leaf, row): the most cuts the drivers can make."""
+    from chitally import blocks, kernel
+
+    monkeypatch.setattr(blocks, "BLOCK_SECONDS", 1e-12)
+    for name in ("_FIRST_EDGES", "_FIRST_ROWS", "_FIRST_LEAVES", "_FIRST_WORK"):
+        monkeypatch.setattr(kernel, name, 0)
+    monkeypatch.setattr(kernel, "_SAMPLED_ROWS", 64)  # the edge estimate, one sample a block
+
+
+@pytest.mark.parametrize("max_dim", [1, 2, 3, 5, None])
+def test_blocks_of_one_item_give_the_same_table(one_item_blocks: None, max_dim: int | None) -> None:
+    """Cutting every loop into one-item blocks, on one thread or two, changes nothing:
+    against one call per loop (blocks=False) and against gudhi (independent Rips)."""
+    rng = np.random.default_rng(31)
+    cloud = rng.random((260, 3))
+    lattice = np.repeat(rng.integers(0, 3, (40, 3)).astype(np.float64), 2, axis=0)  # ties, copies
+    for points, eps in ((lattice, SQRT2), (cloud, 0.2)):  # the cloud's table is kept below
+        whole = count_jumps(points, eps, max_dim, blocks=False)
+        for threads in (1, 2):
+            assert tables_equal(count_jumps(points, eps, max_dim, threads=threads), whole)
+            pieces = [count_jumps(points, eps, max_dim, owned=(a, b), threads=threads)
+                      for a, b in ((0, 33), (33, 70), (70, len(points)))]
+            values, jumps = merge_jumps([t.values for t in pieces], [t.jumps for t in pieces])
+            assert np.array_equal(values, whole.values) and np.array_equal(jumps, whole.jumps)
+    curve = Curve.from_jumps(whole.values, whole.jumps, eps=0.2, max_dim=max_dim, n_points=len(cloud))
+    assert curve == gudhi_curve(cloud, 0.2, max_dim)
+
+
+def test_blocks_of_one_item_in_many_coordinates(one_item_blocks: None) -> None:
+    """The same beyond the unrolled widths (the generic distance loops), cap 2 by row
+    walks and uncapped, against networkx enumerate_all_cliques (brute force)."""
+    points = np.random.default_rng(32).random((70, 11))
+    eps = edge_quantile(points, 0.15)
+    for max_dim in (2, 3):
+        assert kernel_curve(points, eps, max_dim) == brute_force_curve(points, eps, max_dim)
+
+
+def test_join_grows_its_output_when_the_estimate_falls_short(monkeypatch: pytest.MonkeyPatch) -> None:
+    """With no edge estimate the join starts at 4 edges a row and must grow its output
+    many times on a dense cloud, also across blocks of leaves; the pairs are scipy's
+    cKDTree.query_pairs filtered by the one rule (an independent KD-tree)."""
+    from scipy.spatial import cKDTree
+
+    from chitally import kernel
+    from chitally.metric import pair_squared_distances, query_radius
+
+    monkeypatch.setattr(kernel, "_sampled_edge_count", lambda *args: 0)
+    points = np.random.default_rng(33).random((1500, 2))
+    eps = 0.2  # about 180 neighbours a row
+    pairs = cKDTree(points).query_pairs(query_radius(eps), output_type="ndarray")
+    d2 = pair_squared_distances(points, pairs[:, 0], points, pairs[:, 1])
+    keep = np.sqrt(d2) <= eps
+    expected = sorted(zip(pairs[keep].min(axis=1).tolist(), pairs[keep].max(axis=1).tolist(), d2[keep].tolist()))
+    assert len(expected) > 8 * 4 * len(points)  # at least three doublings
+    reach = query_radius(eps)
+    for first_leaves in (kernel._FIRST_LEAVES, 1):
+        monkeypatch.setattr(kernel, "_FIRST_LEAVES", first_leaves)
+        lo, hi, sq, count = kernel._tree_edges(points, eps, reach * reach, kernel._MAX_EDGES)
+        assert sorted(zip(lo[:count].tolist(), hi[:count].tolist(), sq[:count].tolist())) == expected
+
+
+def test_join_gives_up_past_the_edge_limit(monkeypatch: pytest.MonkeyPatch) -> None:
+    """More edges than max_edges: m = -1, also when the limit is passed in an early block
+    of leaves; at the exact count the edges are all there. Counted by brute force."""
+    from chitally import kernel
+    from chitally.metric import query_radius
+
+    points = np.random.default_rng(34).random((900, 2))
+    eps = 0.08
+    total = count_edges(points, eps)
+    reach = query_radius(eps)
+    monkeypatch.setattr(kernel, "_sampled_edge_count", lambda *args: 0)
+    monkeypatch.setattr(kernel, "_FIRST_LEAVES", 1)
+    assert kernel._tree_edges(points, eps, reach * reach, total // 3)[3] == -1
+    assert kernel._tree_edges(points, eps, reach * reach, total)[3] == total
+
+
+@pytest.mark.parametrize("n", [0, 1, 2, 31, 32, 33, 64, 65, 200, 517])
+def test_crowded_bucket_sort_matches_numpy_lexsort(n: int) -> None:
+    """The merge sort for crowded buckets, by (d2, lo, hi), against numpy's lexsort, on
+    records with many tied lengths and tied lower ends, at an offset inside the arrays."""
+    from chitally import kernel
+
+    rng = np.random.default_rng(n)
+    pairs = rng.choice(60 * 60, size=n, replace=False)  # distinct (lo, hi)
+    lo = (pairs // 60).astype(np.int32)
+    hi = (pairs % 60 + 60).astype(np.int32)
+    d2 = rng.integers(0, 4, n).astype(np.float64) / 4.0
+    a = 5
+    elo = np.concatenate([np.zeros(a, np.int32), lo, np.zeros(3, np.int32)])
+    ehi = np.concatenate([np.zeros(a, np.int32), hi, np.zeros(3, np.int32)])
+    ed2 = np.concatenate([np.zeros(a), d2, np.zeros(3)])
+    scratch = (np.empty(n, np.int32), np.empty(n, np.int32), np.empty(n))
+    kernel._sort_bucket_large(elo, ehi, ed2, a, a + n, *scratch)
+    order = np.lexsort((hi, lo, d2))  # numpy: last key is the primary one
+    assert np.array_equal(elo[a : a + n], lo[order]) and np.array_equal(ehi[a : a + n], hi[order])
+    assert np.array_equal(ed2[a : a + n], d2[order])
+    assert not elo[:a].any() and not elo[a + n :].any()
+
+
+def test_read_only_and_strided_input_compile_nothing_new() -> None:
+    """A read-only or non-contiguous halo gives the same table through the one compiled
+    signature (the input is copied to a plain array first)."""
+    from chitally import kernel
+
+    points = np.random.default_rng(35).random((300, 6))
+    plain = count_jumps(points, 0.5, 3)
+    frozen = points.copy()
+    frozen.setflags(write=False)
+    wide = np.zeros((300, 12))
+    wide[:, ::2] = points
+    assert tables_equal(count_jumps(frozen, 0.5, 3), plain)
+    assert tables_equal(count_jumps(wide[:, ::2], 0.5, 3), plain)
+    for dispatcher in (kernel._join_leaves, kernel._split_nodes, kernel._sampled_edges):
+        for sig in dispatcher.signatures:
+            arrays = [t for t in sig if isinstance(t, nb_types.Array)]
+            assert all(t.layout == "C" and t.mutable and t.aligned for t in arrays), sig
 
 
 # ------------------------------------------------------------ portable bit extraction

@@ -22,9 +22,11 @@ functions release the GIL so that callers may run several owned ranges in thread
 
 from __future__ import annotations
 
+import contextlib
 import math
+import os
+import threading
 import time
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import llvmlite.binding as llvm
@@ -37,6 +39,7 @@ from numba.extending import intrinsic
 from scipy.spatial import cKDTree
 
 from . import kdtree
+from .blocks import Pacer, run_blocks, whole_calls
 from .metric import query_radius, squared_distance
 
 UNCAPPED = -1  # the compiled code's spelling of max_dim=None
@@ -116,6 +119,31 @@ _pext = _pext_hw if _has_bmi2() else _pext_sw
 # the neighbour graph
 # ---------------------------------------------------------------------------------------
 
+# Every loop over edges, rows or tree nodes below is a compiled call over one block of
+# them, driven from Python by `blocks.run_blocks`, so that Ctrl-C is seen between blocks
+# (see blocks.py). A loop over few items is one call. First blocks, in items:
+_FIRST_EDGES = 1 << 16
+_FIRST_ROWS = 1 << 16
+# a leaf of a dense halo may meet thousands of others
+_FIRST_LEAVES = 8
+# halos from this many rows on estimate their edges before the join
+_SAMPLED_ROWS = 1 << 12
+
+
+def _plain(x: np.ndarray) -> np.ndarray:
+    """x as a C-contiguous, aligned, writeable float64 array (a copy only if it is not):
+    the one array type the compiled functions are compiled and cached for, where a
+    read-only or strided input would compile another signature in the middle of a run."""
+    return np.require(x, dtype=np.float64, requirements=["C", "A", "W"])
+
+
+def _edge_blocks(n: int, call) -> None:
+    """call(a, b) over consecutive blocks of the n edges (one call when n is small)."""
+    if n <= _FIRST_EDGES:
+        call(0, n)
+    else:
+        run_blocks(0, n, call, Pacer(_FIRST_EDGES))
+
 
 @nb.njit(nogil=True, cache=True)
 def _filter_pairs(coords, pairs, eps):
@@ -137,6 +165,12 @@ def _filter_pairs(coords, pairs, eps):
             d2[m] = s
             m += 1
     return lo, hi, d2, m
+
+
+@nb.njit(inline="always", nogil=True, cache=True)
+def _before(d2a, loa, hia, d2b, lob, hib):
+    """The edge order: (d2, lo, hi) lexicographically."""
+    return d2a < d2b or (d2a == d2b and (loa < lob or (loa == lob and hia < hib)))
 
 
 @nb.njit(nogil=True, cache=True)
@@ -161,32 +195,54 @@ def _sort_bucket_small(elo, ehi, ed2, a, b):
 
 
 @nb.njit(nogil=True, cache=True)
-def _sort_bucket_large(elo, ehi, ed2, a, b, h):
+def _merge_runs(slo, shi, sd2, s0, dlo, dhi, dd2, d0, a, mid, end):
+    """Merge sorted runs [a, mid) and [mid, end) of the source (indices from s0) into
+    [a, end) of the destination (indices from d0)."""
+    i = a
+    j = mid
+    for k in range(a, end):
+        if j >= end or (i < mid and _before(sd2[s0 + i], slo[s0 + i], shi[s0 + i],
+                                            sd2[s0 + j], slo[s0 + j], shi[s0 + j])):
+            dlo[d0 + k] = slo[s0 + i]
+            dhi[d0 + k] = shi[s0 + i]
+            dd2[d0 + k] = sd2[s0 + i]
+            i += 1
+        else:
+            dlo[d0 + k] = slo[s0 + j]
+            dhi[d0 + k] = shi[s0 + j]
+            dd2[d0 + k] = sd2[s0 + j]
+            j += 1
+
+
+@nb.njit(nogil=True, cache=True)
+def _sort_bucket_large(elo, ehi, ed2, a, b, tlo, thi, td2):
     """Sort records [a, b) by (d2, lo, hi) when a bucket is crowded (ties, clusters),
-    where insertion sort would be quadratic."""
-    o = np.argsort(ed2[a:b])
-    lo = elo[a:b].copy()
-    hi = ehi[a:b].copy()
-    d2 = ed2[a:b].copy()
-    for k in range(b - a):
-        elo[a + k] = lo[o[k]]
-        ehi[a + k] = hi[o[k]]
-        ed2[a + k] = d2[o[k]]
-    # ties in d2 (lattices, duplicate points) are ordered by (lo, hi)
-    t = a
-    while t < b:
-        u = t + 1
-        while u < b and ed2[u] == ed2[t]:
-            u += 1
-        if u - t > 1:
-            key = np.empty(u - t, dtype=np.int64)
-            for c in range(t, u):
-                key[c - t] = np.int64(elo[c]) * h + ehi[c]
-            srt = np.sort(key)
-            for c in range(t, u):
-                elo[c] = srt[c - t] // h
-                ehi[c] = srt[c - t] % h
-        t = u
+    where insertion sort would be quadratic: insertion-sorted runs, then merges through
+    the scratch arrays t* (at least b - a long). The keys are distinct, so this is the
+    one order any sort gives; a merge sort of our own compiles in a fraction of the time
+    numba's argsort takes."""
+    n = b - a
+    run = 32
+    for s in range(a, b, run):
+        _sort_bucket_small(elo, ehi, ed2, s, min(s + run, b))
+    width = run
+    in_place = True  # where the sorted runs are: [a, b) of e*, or [0, n) of t*
+    zero = a - a  # an int64 like a, not a literal: one compiled _merge_runs
+    while width < n:
+        for s in range(0, n, 2 * width):
+            mid = min(s + width, n)
+            end = min(s + 2 * width, n)
+            if in_place:
+                _merge_runs(elo, ehi, ed2, a, tlo, thi, td2, zero, s, mid, end)
+            else:
+                _merge_runs(tlo, thi, td2, zero, elo, ehi, ed2, a, s, mid, end)
+        in_place = not in_place
+        width *= 2
+    if not in_place:
+        for k in range(n):
+            elo[a + k] = tlo[k]
+            ehi[a + k] = thi[k]
+            ed2[a + k] = td2[k]
 
 
 # buckets longer than this are sorted by _sort_bucket_large
@@ -208,34 +264,33 @@ def _edge_graph(coords: np.ndarray, pairs: np.ndarray, eps: float):
 
 def _sorted_graph(h: int, lo0: np.ndarray, hi0: np.ndarray, d20: np.ndarray, m: int):
     """_edge_graph from the first m accepted records (lo0 < hi0, d2) in any order: the
-    sort fixes the edge order, so the neighbour search may emit pairs as it likes.
+    sort fixes the edge order, so the neighbour search may emit pairs as it likes."""
+    offsets, elo, ehi, ed2 = _sorted_edges(h, lo0, hi0, d20, m)
+    nbrs, erank = _rows(offsets, elo, ehi)
+    return offsets, nbrs, erank, elo, ehi, ed2
+
+
+def _sorted_edges(h: int, lo0: np.ndarray, hi0: np.ndarray, d20: np.ndarray, m: int):
+    """(offsets, elo, ehi, ed2): the first m records sorted by (d2, lo, hi), and the CSR
+    row offsets of the h vertices (their degrees summed).
 
     The arrays are numpy's: large numpy arrays are backed by huge pages where the system
     allows it, and the page faults of arrays allocated inside compiled code measured a
     third of a kernel call.
+
+    Two distribution passes by value instead of a multi-pass radix sort plus a gather:
+    u = d2 * scale is non-decreasing in d2 (a product by a positive constant, a
+    difference with a constant and floor are all monotone), so coarse buckets floor(u),
+    fine buckets floor((u - coarse) * nfine) inside them, and a sort of every fine bucket
+    by (d2, lo, hi) sort the whole edge list, ties included. The coarse pass writes to
+    few streams and each coarse bucket fits in cache for the fine pass, where one random
+    scatter over all edges would miss the cache on nearly every write.
     """
-    graph = (np.empty(h + 1, dtype=np.int64), np.empty(2 * m, dtype=np.int32),
-             np.empty(2 * m, dtype=np.int32), np.empty(m, dtype=np.int32),
-             np.empty(m, dtype=np.int32), np.empty(m, dtype=np.float64))
-    _sort_into(lo0, hi0, d20, m, *graph)
-    return graph
-
-
-@nb.njit(nogil=True, cache=True)
-def _sort_into(lo0, hi0, d20, m, offsets, nbrs, erank, elo, ehi, ed2):
-    """Fill the arrays of _sorted_graph (offsets has h + 1 entries, the others 2m or m)."""
-    h = offsets.shape[0] - 1
-    # Two distribution passes by value instead of a multi-pass radix sort plus a gather:
-    # u = d2 * scale is non-decreasing in d2 (a product by a positive constant, a
-    # difference with a constant and floor are all monotone), so coarse buckets floor(u),
-    # fine buckets floor((u - coarse) * nfine) inside them, and a sort of every fine
-    # bucket by (d2, lo, hi) sort the whole edge list, ties included. The coarse pass
-    # writes to few streams and each coarse bucket fits in cache for the fine pass, where
-    # one random scatter over all edges would miss the cache on nearly every write.
-    dmax = 0.0
-    for g in range(m):
-        if d20[g] > dmax:
-            dmax = d20[g]
+    offsets = np.zeros(h + 1, dtype=np.int64)
+    elo = np.empty(m, dtype=np.int32)
+    ehi = np.empty(m, dtype=np.int32)
+    ed2 = np.empty(m, dtype=np.float64)
+    dmax = float(d20[:m].max()) if m else 0.0
     ncoarse = _COARSE if m > 4 * _COARSE else max(1, m >> 2)
     # dmax == 0 (all duplicates) or inf gives scale 0: every finite d2 goes to bucket 0
     # and an infinite one (inf * 0 is nan) to the last bucket, which is still monotone
@@ -244,21 +299,54 @@ def _sort_into(lo0, hi0, d20, m, offsets, nbrs, erank, elo, ehi, ed2):
         scale = 0.0
     top = ncoarse - 1
     start = np.zeros(ncoarse + 1, dtype=np.int64)
-    offsets[:] = 0
-    for g in range(m):
+    _edge_blocks(m, lambda a, b: _coarse_count(lo0, hi0, d20, a, b, scale, top, start, offsets))
+    np.cumsum(start, out=start)
+    np.cumsum(offsets, out=offsets)
+    fill = start[:-1].copy()
+    _edge_blocks(m, lambda a, b: _coarse_scatter(lo0, hi0, d20, a, b, scale, top, fill, elo, ehi, ed2))
+    biggest = int(np.diff(start).max())
+    fend = np.empty((biggest >> 2) + 1, dtype=np.int64)
+    tlo = np.empty(biggest, dtype=np.int32)
+    thi = np.empty(biggest, dtype=np.int32)
+    td2 = np.empty(biggest, dtype=np.float64)
+
+    def fine(a: int, b: int) -> None:
+        _fine_sort(elo, ehi, ed2, start, a, b, scale, fend, tlo, thi, td2)
+
+    if m <= _FIRST_EDGES:
+        fine(0, ncoarse)
+    else:
+        # a coarse bucket costs about its edges
+        run_blocks(0, ncoarse, fine, Pacer(_FIRST_EDGES), weights=start.astype(np.float64))
+    return offsets, elo, ehi, ed2
+
+
+def _rows(offsets: np.ndarray, elo: np.ndarray, ehi: np.ndarray):
+    """(nbrs, erank): the CSR rows of the sorted edges, each row in increasing rank."""
+    m = elo.shape[0]
+    nbrs = np.empty(2 * m, dtype=np.int32)
+    erank = np.empty(2 * m, dtype=np.int32)
+    fill = offsets[:-1].copy()
+    _edge_blocks(m, lambda a, b: _fill_rows(elo, ehi, a, b, fill, nbrs, erank))
+    return nbrs, erank
+
+
+@nb.njit(nogil=True, cache=True)
+def _coarse_count(lo0, hi0, d20, g0, g1, scale, top, start, offsets):
+    """Count records [g0, g1) into coarse buckets (start[c + 1]) and degrees."""
+    for g in range(g0, g1):
         u = d20[g] * scale
         c = int(u) if u < top else top
         start[c + 1] += 1
         # degrees do not depend on the order, so the CSR row sizes are counted here too
         offsets[lo0[g] + 1] += 1
         offsets[hi0[g] + 1] += 1
-    for c in range(ncoarse):
-        start[c + 1] += start[c]
-    for i in range(h):
-        offsets[i + 1] += offsets[i]
-    fill = start[:-1].copy()
-    biggest = 0
-    for g in range(m):
+
+
+@nb.njit(nogil=True, cache=True)
+def _coarse_scatter(lo0, hi0, d20, g0, g1, scale, top, fill, elo, ehi, ed2):
+    """Move records [g0, g1) to the next free slot of their coarse bucket."""
+    for g in range(g0, g1):
         x = d20[g]
         u = x * scale
         c = int(u) if u < top else top
@@ -267,20 +355,19 @@ def _sort_into(lo0, hi0, d20, m, offsets, nbrs, erank, elo, ehi, ed2):
         ehi[y] = hi0[g]
         ed2[y] = x
         fill[c] = y + 1
-    for c in range(ncoarse):
-        biggest = max(biggest, start[c + 1] - start[c])
-    fend = np.empty((biggest >> 2) + 1, dtype=np.int64)
-    tlo = np.empty(biggest, dtype=np.int32)
-    thi = np.empty(biggest, dtype=np.int32)
-    td2 = np.empty(biggest, dtype=np.float64)
-    for c in range(ncoarse):
+
+
+@nb.njit(nogil=True, cache=True)
+def _fine_sort(elo, ehi, ed2, start, c0, c1, scale, fend, tlo, thi, td2):
+    """Sort coarse buckets [c0, c1): distribute each into about four edges a fine
+    bucket through the scratch arrays, then sort every fine bucket."""
+    for c in range(c0, c1):
         a = start[c]
         e = start[c + 1]
         if e - a <= _SMALL_BUCKET:
             if e - a > 1:
                 _sort_bucket_small(elo, ehi, ed2, a, e)
             continue
-        # about four edges a fine bucket
         nf = (e - a) >> 2
         last = nf - 1
         for f in range(nf):
@@ -306,7 +393,7 @@ def _sort_into(lo0, hi0, d20, m, offsets, nbrs, erank, elo, ehi, ed2):
             elo[a + t] = tlo[t]
             ehi[a + t] = thi[t]
             ed2[a + t] = td2[t]
-        # fend[f] is now where fine bucket f ends
+        # fend[f] is now where fine bucket f ends; the scratch arrays are free again
         p = a
         for f in range(nf):
             q = a + fend[f]
@@ -314,10 +401,14 @@ def _sort_into(lo0, hi0, d20, m, offsets, nbrs, erank, elo, ehi, ed2):
                 if q - p <= _SMALL_BUCKET:
                     _sort_bucket_small(elo, ehi, ed2, p, q)
                 else:
-                    _sort_bucket_large(elo, ehi, ed2, p, q, h)
+                    _sort_bucket_large(elo, ehi, ed2, p, q, tlo, thi, td2)
             p = q
-    fill = offsets[:-1].copy()
-    for g in range(m):
+
+
+@nb.njit(nogil=True, cache=True)
+def _fill_rows(elo, ehi, g0, g1, fill, nbrs, erank):
+    """Append edges [g0, g1) to the CSR rows of both endpoints."""
+    for g in range(g0, g1):
         a = elo[g]
         b = ehi[g]
         nbrs[fill[a]] = b
@@ -349,11 +440,27 @@ _UNROLLED_DIMS = 8
 _TREE_LEAF = 64
 
 
-def _unrolled_kernels(width: int):
-    @nb.njit(inline="always", nogil=True)
-    def within_mask(X, i, j0, e2):
-        """Bit u set when d2(i, j0 + u) <= e2, for the _TREE_LEAF rows from j0."""
-        mask = ZERO
+def width_tag(dims: int) -> tuple:
+    """The compile-time width of the distance loops: a tuple of `dims` zeros for 1 to
+    _UNROLLED_DIMS coordinates, () for any other count.
+
+    The compiled functions that take it are specialised on its type, so a run compiles
+    the loops of its own number of coordinates only (numba compiles one signature per
+    tuple length, on first use), where one function holding every width compiled them
+    all.
+    """
+    return (0,) * dims if 1 <= dims <= _UNROLLED_DIMS else ()
+
+
+@nb.njit(inline="always", nogil=True)
+def _within_mask(X, tag, i, j0, e2, buf):
+    """Bit u set when d2(i, j0 + u) <= e2, for the _TREE_LEAF rows from j0.
+
+    len(tag) coordinates unrolled; with an empty tag, the X.shape[0] coordinates build
+    up in buf one at a time (the same order, so the same bits)."""
+    width = len(tag)
+    mask = ZERO
+    if width > 0:
         for u in range(_TREE_LEAF):
             s = 0.0
             for k in range(width):
@@ -361,134 +468,131 @@ def _unrolled_kernels(width: int):
                 s += d * d
             mask |= np.uint64(s <= e2) << np.uint64(u)
         return mask
-
-    @nb.njit(inline="always", nogil=True)
-    def closer(X, c, thr):
-        """(#j < c with d2(j, c) < thr, #j < c with d2(j, c) == thr)."""
-        below = 0
-        equal = 0
-        # whole blocks of 8 with the tail masked: no scalar remainder loop
-        for j in range((c + 7) & ~7):
-            s = 0.0
-            for k in range(width):
-                d = X[k, j] - X[k, c]
-                s += d * d
-            inside = j < c
-            below += (s < thr) & inside
-            equal += (s == thr) & inside
-        return below, equal
-
-    return within_mask, closer
-
-
-(_within1, _closer1), (_within2, _closer2), (_within3, _closer3), (_within4, _closer4), \
-    (_within5, _closer5), (_within6, _closer6), (_within7, _closer7), (_within8, _closer8) = (
-        _unrolled_kernels(w) for w in range(1, _UNROLLED_DIMS + 1))
-
-
-@nb.njit(inline="always", nogil=True)
-def _within_mask(X, m, i, j0, e2, buf):
-    """within_mask for m coordinates; beyond _UNROLLED_DIMS the sums build up in buf one
-    coordinate at a time (the same order, so the same bits)."""
-    if m == 1:
-        return _within1(X, i, j0, e2)
-    if m == 2:
-        return _within2(X, i, j0, e2)
-    if m == 3:
-        return _within3(X, i, j0, e2)
-    if m == 4:
-        return _within4(X, i, j0, e2)
-    if m == 5:
-        return _within5(X, i, j0, e2)
-    if m == 6:
-        return _within6(X, i, j0, e2)
-    if m == 7:
-        return _within7(X, i, j0, e2)
-    if m == 8:
-        return _within8(X, i, j0, e2)
     for u in range(_TREE_LEAF):
         buf[u] = 0.0
-    for k in range(m):
+    for k in range(X.shape[0]):
         xi = X[k, i]
         for u in range(_TREE_LEAF):
             d = xi - X[k, j0 + u]
             buf[u] += d * d
-    mask = ZERO
     for u in range(_TREE_LEAF):
         mask |= np.uint64(buf[u] <= e2) << np.uint64(u)
     return mask
 
 
 @nb.njit(inline="always", nogil=True)
-def _closer_count(X, m, c, thr):
-    """closer for 1 <= m <= _UNROLLED_DIMS coordinates."""
-    if m == 1:
-        return _closer1(X, c, thr)
-    if m == 2:
-        return _closer2(X, c, thr)
-    if m == 3:
-        return _closer3(X, c, thr)
-    if m == 4:
-        return _closer4(X, c, thr)
-    if m == 5:
-        return _closer5(X, c, thr)
-    if m == 6:
-        return _closer6(X, c, thr)
-    if m == 7:
-        return _closer7(X, c, thr)
-    return _closer8(X, c, thr)
+def _closer_count(X, tag, c, thr):
+    """(#j < c with d2(j, c) < thr, #j < c with d2(j, c) == thr) for len(tag) >= 1
+    coordinates."""
+    width = len(tag)
+    below = 0
+    equal = 0
+    # whole blocks of 8 with the tail masked: no scalar remainder loop
+    for j in range((c + 7) & ~7):
+        s = 0.0
+        for k in range(width):
+            d = X[k, j] - X[k, c]
+            s += d * d
+        inside = j < c
+        below += (s < thr) & inside
+        equal += (s == thr) & inside
+    return below, equal
+
+
+def _new_tree(x: np.ndarray, leaf_size: int):
+    """kdtree._new_tree in numpy (one compiled function fewer to wait for): the depth,
+    a copy of the rows to reorder, and the node arrays, the root holding every row."""
+    n, m = x.shape
+    depth = 0
+    while (n + (1 << depth) - 1) >> depth > leaf_size:
+        depth += 1
+    n_nodes = (1 << (depth + 1)) - 1
+    start = np.empty(n_nodes, dtype=np.int64)
+    stop = np.empty(n_nodes, dtype=np.int64)
+    start[0] = 0
+    stop[0] = n
+    return (depth, x.copy(), np.arange(n, dtype=np.int64), start, stop,
+            np.empty((n_nodes, m), dtype=np.float64), np.empty((n_nodes, m), dtype=np.float64))
 
 
 @nb.njit(nogil=True, cache=True)
-def _sampled_edge_count(X, dims, h, e2, buf):
-    """A generous estimate of the edges among h rows, from the degrees of 64 evenly spaced
-    rows: the join then rarely grows (and copies) its output."""
-    samples = min(h, 64)
-    if samples == 0:
-        return 0
+def _split_nodes(xs, perm, start, stop, box_lo, box_hi, first, last, first_leaf):
+    """kdtree's split of nodes [first, last), one level of the tree at a time."""
+    for node in range(first, last):
+        kdtree._split_node(xs, perm, start, stop, box_lo, box_hi, node, first_leaf)
+
+
+def build_tree(x: np.ndarray, leaf_size: int):
+    """`kdtree.build_tree` in blocks of nodes (the same splits in the same order, so the
+    same tree): (xs, perm, start, stop, box_lo, box_hi)."""
+    x = _plain(x)
+    n = x.shape[0]
+    depth, xs, perm, start, stop, box_lo, box_hi = _new_tree(x, int(leaf_size))
+    first_leaf = (1 << depth) - 1
+    if n <= _FIRST_ROWS:
+        _split_nodes(xs, perm, start, stop, box_lo, box_hi, 0, start.shape[0], first_leaf)
+        return xs, perm, start, stop, box_lo, box_hi
+    pacer = Pacer(_FIRST_ROWS)  # in rows: splitting a node costs about its rows
+    for level in range(depth + 1):
+        first = (1 << level) - 1
+        run_blocks(first, 2 * first + 1,
+                   lambda a, b: _split_nodes(xs, perm, start, stop, box_lo, box_hi, a, b, first_leaf),
+                   pacer, unit=max(1.0, n / (first + 1)))
+    return xs, perm, start, stop, box_lo, box_hi
+
+
+@nb.njit(nogil=True, cache=True)
+def _sampled_edges(X, tag, h, e2, buf, samples, t0, t1):
+    """Rows within reach of samples [t0, t1) of `samples` evenly spaced rows (themselves
+    included)."""
     found = 0
-    for t in range(samples):
+    for t in range(t0, t1):
         i = t * h // samples
         for j0 in range(0, h, _TREE_LEAF):
-            mask = _within_mask(X, dims, i, j0, e2, buf)
+            mask = _within_mask(X, tag, i, j0, e2, buf)
             if h - j0 < _TREE_LEAF:
                 mask &= ALL_ONES >> np.uint64(_TREE_LEAF - (h - j0))
             found += _popcount(mask)
-    found -= samples  # each row is within reach of itself
-    return int(1.25 * h * found / (2 * samples))
+    return found
+
+
+def _sampled_edge_count(X: np.ndarray, tag: tuple, h: int, e2: float, buf: np.ndarray) -> int:
+    """A generous estimate of the edges among h rows, from the degrees of 64 evenly
+    spaced rows: the join then rarely grows (and copies) its output. None (0) below
+    _SAMPLED_ROWS rows, where 64 samples would cost a good part of the join itself and
+    growing the output is cheap."""
+    if h < _SAMPLED_ROWS:
+        return 0
+    samples = 64
+    found = [0]
+
+    def count(a: int, b: int) -> None:
+        found[0] += _sampled_edges(X, tag, h, e2, buf, samples, a, b)
+
+    if samples * h <= _FIRST_ROWS:
+        count(0, samples)
+    else:
+        run_blocks(0, samples, count, Pacer(_FIRST_ROWS), unit=float(h))  # a sample costs h rows
+    # each row is within reach of itself
+    return int(1.25 * h * (found[0] - samples) / (2 * samples))
+
+
+def _rows_by_coordinate(xs: np.ndarray, pad: int) -> np.ndarray:
+    """X[k, i] = xs[i, k], with pad zero columns after the last row."""
+    h, dims = xs.shape
+    X = np.zeros((dims, h + pad))
+    X[:, :h] = xs.T
+    return X
 
 
 @nb.njit(nogil=True, cache=True)
-def _tree_edges(coords, eps, prune2, max_edges):
-    """Every pair within eps by the one rule, as (lo, hi, d2, m) like _filter_pairs;
-    m = -1 when there are more than max_edges.
-
-    Leaf by leaf: one walk finds the leaves at or after it in leaf order whose boxes come
-    within the pruning bound of its box, then each row is tested against the boxes of
-    those leaves and joined with the rows of the ones it can reach (rows after it in its
-    own leaf), so each pair is seen once: a whole leaf at a time, as a bit mask of the
-    rows within the widened bound. The boxes and the mask only propose (with the widened
-    bound of metric.query_radius); membership is the one rule.
-    """
-    h, dims = coords.shape
-    xs, perm, start, stop, box_lo, box_hi = kdtree.build_tree(coords, _TREE_LEAF)
-    # coordinates in rows; a leaf's mask may read up to _TREE_LEAF rows past the end
-    X = np.zeros((dims, h + _TREE_LEAF))
-    for i in range(h):
-        for k in range(dims):
-            X[k, i] = xs[i, k]
-    buf = np.empty(_TREE_LEAF)
-    n_nodes = start.shape[0]
-    first_leaf = (n_nodes - 1) // 2
-    near = np.empty(64, dtype=np.int64)
-    e2 = eps * eps * (1.0 + 1e-12) + 1e-300
-    # a dense halo's estimate may be huge: beyond 2**27 edges the output grows as it fills
-    cap = max(1024, 4 * h, min(_sampled_edge_count(X, dims, h, e2, buf), 1 << 27))
-    olo = np.empty(cap, dtype=np.int32)
-    ohi = np.empty(cap, dtype=np.int32)
-    od2 = np.empty(cap, dtype=np.float64)
-    m = 0
-    for a in range(first_leaf, n_nodes):
+def _join_leaves(X, tag, xs, perm, start, stop, box_lo, box_hi, eps, e2, prune2, max_edges,
+                 a_from, a_to, olo, ohi, od2, m, near, buf):
+    """The pairs within eps of leaves [a_from, a_to) (heap node numbers) with every leaf
+    at or after them, appended to (olo, ohi, od2) from m; returns the arrays (grown when
+    full), the new m (-1 past max_edges) and the near-leaf buffer (grown when short).
+    buf is scratch of _TREE_LEAF values for the loops of an empty tag."""
+    for a in range(a_from, a_to):
         a0 = start[a]
         a1 = stop[a]
         if a0 == a1:
@@ -511,21 +615,22 @@ def _tree_edges(coords, eps, prune2, max_edges):
                     continue
                 # room for the whole leaf first, so that the hot loop never reallocates
                 need = m + (b1 - jfrom)
-                if need > cap:
+                if need > olo.shape[0]:
                     if m > max_edges:
-                        return olo, ohi, od2, -1
-                    cap = max(2 * cap, need)
+                        return olo, ohi, od2, -1, near
+                    cap = max(2 * olo.shape[0], need)
                     nlo = np.empty(cap, dtype=np.int32)
                     nhi = np.empty(cap, dtype=np.int32)
                     nd2 = np.empty(cap, dtype=np.float64)
-                    nlo[:m] = olo[:m]
-                    nhi[:m] = ohi[:m]
-                    nd2[:m] = od2[:m]
+                    for k in range(m):
+                        nlo[k] = olo[k]
+                        nhi[k] = ohi[k]
+                        nd2[k] = od2[k]
                     olo = nlo
                     ohi = nhi
                     od2 = nd2
                 # the mask proposes (rows jfrom..b1-1 of the leaf only); the one rule decides
-                mask = _within_mask(X, dims, i, b0, e2, buf)
+                mask = _within_mask(X, tag, i, b0, e2, buf)
                 mask &= ALL_ONES >> np.uint64(_TREE_LEAF - (b1 - b0))
                 mask &= ~((ONE << np.uint64(jfrom - b0)) - ONE)
                 while mask != ZERO:
@@ -543,8 +648,48 @@ def _tree_edges(coords, eps, prune2, max_edges):
                         od2[m] = d2
                         m += 1
     if m > max_edges:
-        return olo, ohi, od2, -1
-    return olo, ohi, od2, m
+        return olo, ohi, od2, -1, near
+    return olo, ohi, od2, m, near
+
+
+def _tree_edges(coords: np.ndarray, eps: float, prune2: float, max_edges: int):
+    """Every pair within eps by the one rule, as (lo, hi, d2, m) like _filter_pairs;
+    m = -1 when there are more than max_edges.
+
+    Leaf by leaf: one walk finds the leaves at or after it in leaf order whose boxes come
+    within the pruning bound of its box, then each row is tested against the boxes of
+    those leaves and joined with the rows of the ones it can reach (rows after it in its
+    own leaf), so each pair is seen once: a whole leaf at a time, as a bit mask of the
+    rows within the widened bound. The boxes and the mask only propose (with the widened
+    bound of metric.query_radius); membership is the one rule.
+    """
+    coords = _plain(coords)
+    h, dims = coords.shape
+    eps = float(eps)
+    tag = width_tag(dims)
+    xs, perm, start, stop, box_lo, box_hi = build_tree(coords, _TREE_LEAF)
+    # coordinates in rows; a leaf's mask may read up to _TREE_LEAF rows past the end
+    X = _rows_by_coordinate(xs, _TREE_LEAF)
+    buf = np.empty(_TREE_LEAF)
+    n_nodes = start.shape[0]
+    first_leaf = (n_nodes - 1) // 2
+    e2 = eps * eps * (1.0 + 1e-12) + 1e-300
+    # a dense halo's estimate may be huge: beyond 2**27 edges the output grows as it fills
+    cap = max(1024, 4 * h, min(_sampled_edge_count(X, tag, h, e2, buf), 1 << 27))
+    out = [np.empty(cap, dtype=np.int32), np.empty(cap, dtype=np.int32), np.empty(cap, dtype=np.float64),
+           0, np.empty(64, dtype=np.int64)]
+
+    def join(a: int, b: int) -> None:
+        if out[3] >= 0:  # past max_edges: the rest is skipped
+            out[:] = _join_leaves(X, tag, xs, perm, start, stop, box_lo, box_hi, eps, e2, prune2,
+                                  max_edges, a, b, out[0], out[1], out[2], out[3], out[4], buf)
+
+    if n_nodes - first_leaf <= _FIRST_LEAVES:
+        join(first_leaf, n_nodes)
+    else:
+        run_blocks(first_leaf, n_nodes, join, Pacer(_FIRST_LEAVES))
+    return out[0], out[1], out[2], out[3]
+
 
 
 # ---------------------------------------------------------------------------------------
@@ -825,8 +970,9 @@ def _reduced_euler(adj, L, W, stack, signs, degs, verts, stats):
 
 
 @nb.njit(nogil=True, cache=True)
-def _count_cap2_near(coords, offsets, nbrs, erank, own_lo, own_hi, out_jump):
-    """Cap 2 for 1 to _UNROLLED_DIMS coordinates: c(e) = -1 + |L(e)| by distances."""
+def _cap2_near(coords, tag, offsets, nbrs, erank, own_lo, own_hi, out_jump):
+    """Cap 2 for len(tag) = the 1 to _UNROLLED_DIMS coordinates: c(e) = -1 + |L(e)| by
+    distances."""
     m = coords.shape[1]
     maxdeg = 0
     for p in range(own_lo, own_hi):
@@ -854,7 +1000,7 @@ def _count_cap2_near(coords, offsets, nbrs, erank, own_lo, own_hi, out_jump):
             if q < p:
                 continue
             thr = T[c]
-            below, equal = _closer_count(X, m, c, thr)
+            below, equal = _closer_count(X, tag, c, thr)
             if equal:
                 # equal lengths: the edge order breaks the tie by (lower id, higher id).
                 # e = (p, q) with p < q, and r is neither p nor q, so (r, q) comes first
@@ -867,6 +1013,11 @@ def _count_cap2_near(coords, offsets, nbrs, erank, own_lo, own_hi, out_jump):
                     if d2 == thr and min(nbrs[s + j], q) < p:
                         below += 1
             out_jump[erank[s + c]] = below - 1
+
+
+def _count_cap2_near(coords, offsets, nbrs, erank, own_lo, own_hi, out_jump):
+    """_cap2_near for the number of coordinates of coords."""
+    _cap2_near(coords, width_tag(coords.shape[1]), offsets, nbrs, erank, own_lo, own_hi, out_jump)
 
 
 @nb.njit(nogil=True, cache=True)
@@ -915,11 +1066,37 @@ def _pending_bound(offsets, nbrs, own_lo, own_hi):
     return best, maxdeg
 
 
+@nb.njit(inline="always", nogil=True, cache=True)
+def _compact(adj, L, Wr, cadj):
+    """G_e (vertex set L, at most 64 vertices) as one word per vertex in cadj; returns
+    its number of vertices."""
+    n = np.int64(0)
+    for w in range(Wr):
+        word = L[w]
+        while word != 0:
+            b = _trailing_zeros(word)
+            word &= word - ONE
+            v = w * 64 + b
+            row = ZERO
+            off = 0
+            for x in range(Wr):
+                lx = L[x]
+                if lx != 0:
+                    row |= _pext(adj[v, x], lx) << np.uint64(off)
+                    off += _popcount(lx)
+            cadj[n] = row
+            n += 1
+    return n
+
+
 @nb.njit(nogil=True, cache=True)
-def _vertex(p, offsets, nbrs, erank, max_dim, out_jump, stats, rank_of, prow, adj,
+def _vertex(p, offsets, nbrs, erank, max_dim, collapse, out_jump, stats, rank_of, prow, adj,
             pend_g, pend_b, pend_i, pend_j, srt_i, srt_j, bstart, tab, L, cadj, rem1, rem, wstart, counts,
             stack1, signs, stack, degs, verts):
-    """The jumps of every edge (p, q), q > p."""
+    """The jumps of every edge (p, q), q > p: capped (max_dim >= 3, collapse None) by
+    clique counts, uncapped (max_dim None, collapse 0) by collapses. numba prunes a
+    branch on `x is not None` before typing when x is None, so a capped run compiles no
+    collapse code and an uncapped one no clique counts."""
     s = offsets[p]
     t = offsets[p + 1]
     last = t - 1
@@ -936,7 +1113,6 @@ def _vertex(p, offsets, nbrs, erank, max_dim, out_jump, stats, rank_of, prow, ad
         for w in range(W):
             adj[a, w] = 0
     gmax = prow[n_act - 1]
-    depth_max = max_dim - 1
     # the frame: edges among N(p). The row of w_c is in edge order, so it splits at
     # (w_c, p): a pair (w_j, w_c), j < c, met before it is shorter than (p, w_c) and is
     # in the frame from the start (a pair with j > c there is met again, as such, in the
@@ -1021,116 +1197,129 @@ def _vertex(p, offsets, nbrs, erank, max_dim, out_jump, stats, rank_of, prow, ad
             size += _popcount(word)
         if size == 0:
             c = -1
-        elif max_dim == 3:
-            # -1 + |L| - |edges of G_e|
-            ne = 0
-            for w in range(Wr):
-                word = L[w]
-                while word != 0:
-                    b = _trailing_zeros(word)
-                    word &= word - ONE
-                    v = w * 64 + b
-                    for x in range(Wr):
-                        ne += _popcount(adj[v, x] & L[x])
-            c = size - 1 - (ne >> 1)
-        elif size <= 64:
-            # compact G_e to one word per vertex
-            n = 0
-            for w in range(Wr):
-                word = L[w]
-                while word != 0:
-                    b = _trailing_zeros(word)
-                    word &= word - ONE
-                    v = w * 64 + b
-                    row = ZERO
-                    off = 0
-                    for x in range(Wr):
-                        lx = L[x]
-                        if lx != 0:
-                            row |= _pext(adj[v, x], lx) << np.uint64(off)
-                            off += _popcount(lx)
-                    cadj[n] = row
-                    n += 1
-            if max_dim >= 0:
-                c = _count_capped1(cadj, n, depth_max, rem1, counts)
+        elif max_dim is not None:
+            if max_dim == 3:
+                # -1 + |L| - |edges of G_e|
+                ne = 0
+                for w in range(Wr):
+                    word = L[w]
+                    while word != 0:
+                        b = _trailing_zeros(word)
+                        word &= word - ONE
+                        v = w * 64 + b
+                        for x in range(Wr):
+                            ne += _popcount(adj[v, x] & L[x])
+                c = size - 1 - (ne >> 1)
+            elif size <= 64:
+                c = _count_capped1(cadj, _compact(adj, L, Wr, cadj), max_dim - 1, rem1, counts)
             else:
-                c = _reduced_euler1(cadj, n, stack1, signs, stats)
-        elif max_dim >= 0:
-            c = _count_capped(adj, L, Wr, depth_max, rem, wstart, counts)
+                c = _count_capped(adj, L, Wr, max_dim - 1, rem, wstart, counts)
+        elif collapse is not None:
+            if size <= 64:
+                c = _reduced_euler1(cadj, _compact(adj, L, Wr, cadj), stack1, signs, stats)
+            else:
+                c = _reduced_euler(adj, L, Wr, stack, signs, degs, verts, stats)
         else:
-            c = _reduced_euler(adj, L, Wr, stack, signs, degs, verts, stats)
+            c = 0  # not reached: one of max_dim and collapse is None
         out_jump[prow[r]] = c
     for a in range(n_act):
         rank_of[nbrs[s + a]] = dummy
 
 
 @nb.njit(nogil=True, cache=True)
-def count_range(offsets, nbrs, erank, own_lo, own_hi, max_dim, out_jump, stats):
-    """Per-edge jumps for every edge whose lower endpoint p is in [own_lo, own_hi).
+def _count_rows(offsets, nbrs, erank, own_lo, own_hi, max_dim, collapse, out_jump, stats, rank_of, prow, adj,
+                pend_g, pend_b, pend_i, pend_j, srt_i, srt_j, bstart, tab, L, cadj, rem1, rem, wstart,
+                counts, stack1, signs, stack, degs, verts):
+    """Per-edge jumps for every edge whose lower endpoint p is in [own_lo, own_hi), for
+    max_dim >= 3 (collapse None) or uncapped (max_dim None, collapse 0), in a workspace
+    (see _Frame) that fits these rows.
 
     out_jump is indexed by edge rank; each edge is written by its lower endpoint only,
     so several calls on disjoint vertex ranges may run in parallel threads.
     """
-    h = offsets.shape[0] - 1
-    if max_dim == 2:
-        mark = np.zeros(h, dtype=np.int64)
-        _count_cap2(offsets, nbrs, erank, own_lo, own_hi, out_jump, mark)
-        return
-    bound, maxdeg = _pending_bound(offsets, nbrs, own_lo, own_hi)
-    if maxdeg == 0:
-        return
-    Wmax = (maxdeg + 63) // 64
-    # the dummy rank: a column past every real one, with an unreachable threshold
-    dummy = 64 * Wmax
-    rank_of = np.full(h, dummy, dtype=np.int32)
-    prow = np.empty(dummy + 1, dtype=np.int64)
-    prow[dummy] = np.iinfo(np.int64).max
-    adj = np.zeros((maxdeg, Wmax), dtype=np.uint64)
-    pend_g = np.empty(bound, dtype=np.int64)
-    pend_b = np.empty(bound, dtype=np.int32)
-    tab = np.empty(1024, dtype=np.int32)
-    pend_i = np.empty(bound, dtype=np.int32)
-    pend_j = np.empty(bound, dtype=np.int32)
-    srt_i = np.empty(bound, dtype=np.int32)
-    srt_j = np.empty(bound, dtype=np.int32)
-    bstart = np.empty(maxdeg + 2, dtype=np.int64)
-    L = np.empty(Wmax, dtype=np.uint64)
-    cadj = np.empty(64, dtype=np.uint64)
-    depth = max(max_dim - 1, 1) + 1
-    rem1 = np.empty(depth, dtype=np.uint64)
-    rem = np.empty((depth, Wmax), dtype=np.uint64)
-    wstart = np.empty(depth, dtype=np.int64)
-    counts = np.empty(depth, dtype=np.int64)
-    stack1 = np.empty(2 * 64 + 2, dtype=np.uint64)
-    signs = np.empty(2 * maxdeg + 130, dtype=np.int64)
-    stack = np.empty((2 * maxdeg + 2, Wmax), dtype=np.uint64)
-    degs = np.empty(maxdeg, dtype=np.int64)
-    verts = np.empty(maxdeg, dtype=np.int64)
     for p in range(own_lo, own_hi):
-        _vertex(p, offsets, nbrs, erank, max_dim, out_jump, stats, rank_of, prow, adj,
+        _vertex(p, offsets, nbrs, erank, max_dim, collapse, out_jump, stats, rank_of, prow, adj,
                 pend_g, pend_b, pend_i, pend_j, srt_i, srt_j, bstart, tab, L, cadj, rem1, rem, wstart, counts,
                 stack1, signs, stack, degs, verts)
 
 
-@nb.njit(nogil=True, cache=True)
-def _owned_edges(elo, own_lo, own_hi, out_jump, unit):
-    """Set every owned edge's jump to -1 (unit) and count the owned edges."""
-    c = 0
-    for g in range(elo.shape[0]):
-        if own_lo <= elo[g] < own_hi:
-            c += 1
-            if unit:
-                out_jump[g] = -1
-    return c
+class _Frame:
+    """One thread's workspace for _count_rows, grown to the largest block it met: the
+    frame of a neighbourhood as bitsets, the pending frame pairs, the clique and
+    collapse stacks. Allocated once per thread and call, not once per block."""
+
+    # a thread keeps its last workspace up to this size for its next call: many small
+    # halos in a row then allocate nothing
+    KEEP_BYTES = 1 << 22
+    _kept = threading.local()
+
+    def __init__(self, h: int, max_dim: int) -> None:
+        self.h = h
+        self.depth = max(max_dim - 1, 1) + 1
+        self.maxdeg = 0
+        self.bound = 0
+        self.arrays: tuple = ()
+        self.stats = np.zeros(len(STAT_NAMES), dtype=np.int64)
+
+    @classmethod
+    def take(cls, h: int, max_dim: int) -> "_Frame":
+        """This thread's kept workspace if it serves h rows and max_dim, else a new one.
+        A kept workspace is as good as new: every vertex leaves rank_of as it found it."""
+        frame = getattr(cls._kept, "frame", None)
+        cls._kept.frame = None
+        if frame is None or frame.h < h or frame.depth < max(max_dim - 1, 1) + 1:
+            return cls(h, max_dim)
+        frame.stats[:] = 0
+        return frame
+
+    def keep(self) -> None:
+        """Offer this workspace to the calling thread's next call, if it is small."""
+        if sum(a.nbytes for a in self.arrays) <= self.KEEP_BYTES:
+            type(self)._kept.frame = self
+
+    def fit(self, bound: int, maxdeg: int) -> tuple:
+        if maxdeg > self.maxdeg or bound > self.bound:
+            self.maxdeg = maxdeg = max(maxdeg, self.maxdeg)
+            self.bound = bound = max(bound, self.bound)
+            Wmax = (maxdeg + 63) // 64
+            # the dummy rank: a column past every real one, with an unreachable threshold
+            dummy = 64 * Wmax
+            prow = np.empty(dummy + 1, dtype=np.int64)
+            prow[dummy] = np.iinfo(np.int64).max
+            depth = self.depth
+            self.arrays = (
+                np.full(self.h, dummy, dtype=np.int32),  # rank_of
+                prow,
+                np.zeros((maxdeg, Wmax), dtype=np.uint64),  # adj
+                np.empty(bound, dtype=np.int64),  # pend_g
+                np.empty(bound, dtype=np.int32),  # pend_b
+                np.empty(bound, dtype=np.int32),  # pend_i
+                np.empty(bound, dtype=np.int32),  # pend_j
+                np.empty(bound, dtype=np.int32),  # srt_i
+                np.empty(bound, dtype=np.int32),  # srt_j
+                np.empty(maxdeg + 2, dtype=np.int64),  # bstart
+                np.empty(1024, dtype=np.int32),  # tab
+                np.empty(Wmax, dtype=np.uint64),  # L
+                np.empty(64, dtype=np.uint64),  # cadj
+                np.empty(depth, dtype=np.uint64),  # rem1
+                np.empty((depth, Wmax), dtype=np.uint64),  # rem
+                np.empty(depth, dtype=np.int64),  # wstart
+                np.empty(depth, dtype=np.int64),  # counts
+                np.empty(2 * 64 + 2, dtype=np.uint64),  # stack1
+                np.empty(2 * maxdeg + 130, dtype=np.int64),  # signs
+                np.empty((2 * maxdeg + 2, Wmax), dtype=np.uint64),  # stack
+                np.empty(maxdeg, dtype=np.int64),  # degs
+                np.empty(maxdeg, dtype=np.int64),  # verts
+            )
+        return self.arrays
 
 
 @nb.njit(nogil=True, cache=True)
-def _collect_in_place(ed2, elo, own_lo, own_hi, out_jump):
-    """Group the owned edges' nonzero jumps by length (edges are in increasing d2) into
-    the first k entries of ed2 (now lengths) and out_jump; returns k. Entry g is written
-    at an index of at most g, after it was read."""
-    n = 0
-    for g in range(ed2.shape[0]):
+def _group_lengths(ed2, elo, g0, g1, own_lo, own_hi, out_jump, n):
+    """Group the nonzero jumps of the owned edges in [g0, g1) by length (edges are in
+    increasing d2) after the first n groups, in ed2 (now lengths) and out_jump; returns
+    the new n. Entry g is written at an index of at most g, after it was read."""
+    for g in range(g0, g1):
         if own_lo <= elo[g] < own_hi:
             j = out_jump[g]
             if j != 0:
@@ -1141,21 +1330,51 @@ def _collect_in_place(ed2, elo, own_lo, own_hi, out_jump):
                     ed2[n] = v
                     out_jump[n] = j
                     n += 1
-    k = 0
-    for a in range(n):
-        if out_jump[a] != 0:
-            ed2[k] = ed2[a]
-            out_jump[k] = out_jump[a]
-            k += 1
-    return k
+    return n
+
+
+def _owned_count(elo: np.ndarray, lo: int, hi: int, h: int) -> int:
+    """The edges whose lower endpoint is in [lo, hi) of the h rows."""
+    if lo == 0 and hi == h:
+        return elo.shape[0]
+    total = [0]
+
+    def count(a: int, b: int) -> None:
+        e = elo[a:b]
+        total[0] += int(np.count_nonzero((e >= lo) & (e < hi)))
+
+    _edge_blocks(elo.shape[0], count)
+    return total[0]
 
 
 def _collect(ed2: np.ndarray, elo: np.ndarray, lo: int, hi: int, out_jump: np.ndarray,
              n_vertices: int) -> tuple[np.ndarray, np.ndarray]:
     """The jump table of the owned edges and vertices; consumes ed2 and out_jump."""
-    k = _collect_in_place(ed2, elo, lo, hi, out_jump)
-    values, jumps = ed2[:k], out_jump[:k]  # views: a copy of tens of MB costs page faults
-    if k and values[0] == 0.0:  # coincident points: their 0-length edges meet the vertices
+    n = [0]
+
+    def group(a: int, b: int) -> None:
+        n[0] = _group_lengths(ed2, elo, a, b, lo, hi, out_jump, n[0])
+
+    _edge_blocks(ed2.shape[0], group)
+    k = [0]
+
+    def drop(a: int, b: int) -> None:
+        # the groups with a nonzero jump move down, after the first k; boolean indexing
+        # reads into a copy before the write
+        keep = out_jump[a:b] != 0
+        c = int(np.count_nonzero(keep))
+        ed2[k[0] : k[0] + c] = ed2[a:b][keep]
+        out_jump[k[0] : k[0] + c] = out_jump[a:b][keep]
+        k[0] += c
+
+    _edge_blocks(n[0], drop)
+    # views: a copy of tens of MB costs page faults
+    return _with_vertices(ed2[: k[0]], out_jump[: k[0]], n_vertices)
+
+
+def _with_vertices(values: np.ndarray, jumps: np.ndarray, n_vertices: int) -> tuple[np.ndarray, np.ndarray]:
+    """The edges' table (increasing lengths, nonzero jumps) with the vertices at 0.0."""
+    if values.shape[0] and values[0] == 0.0:  # coincident points: their 0-length edges meet the vertices
         jumps[0] += n_vertices
         if jumps[0] == 0:
             values, jumps = values[1:], jumps[1:]
@@ -1202,70 +1421,206 @@ class JumpTable:
     stats: KernelStats = field(default_factory=KernelStats, compare=False)
 
 
-def _halo_graph_ckdtree(coords: np.ndarray, eps: float):
-    """_halo_graph through cKDTree: the path for input the compiled tree does not take."""
-    tree = cKDTree(coords)
-    pairs = tree.query_pairs(query_radius(eps), output_type="ndarray")
-    if pairs.shape[0] > _MAX_EDGES:
-        raise ValueError(f"a halo of {pairs.shape[0]} candidate pairs is too large for one task")
-    if pairs.dtype != np.int64 and pairs.dtype != np.int32:
-        pairs = pairs.astype(np.int64)
-    return _edge_graph(coords, pairs, float(eps))
-
-
-def _halo_graph(coords: np.ndarray, eps: float):
-    """(offsets, nbrs, erank, elo, ehi, ed2) of the halo; see _edge_graph."""
+def _halo_edges(coords: np.ndarray, eps: float):
+    """(lo, hi, d2, m): the m edges of the halo, in any order."""
     eps = float(eps)
     h = coords.shape[0]
     if not eps >= 0.0:  # negative or nan: no pair passes the rule
         none = np.empty(0, dtype=np.int32)
-        return _sorted_graph(h, none, none, np.empty(0, dtype=np.float64), 0)
+        return none, none, np.empty(0, dtype=np.float64), 0
     if h == 0 or coords.shape[1] == 0 or not np.isfinite(coords).all():
         # the tree's boxes and median splits assume finite coordinates; keep the old
         # behaviour for anything else
-        return _halo_graph_ckdtree(coords, eps)
+        tree = cKDTree(coords)
+        pairs = tree.query_pairs(query_radius(eps), output_type="ndarray")
+        if pairs.shape[0] > _MAX_EDGES:
+            raise ValueError(f"a halo of {pairs.shape[0]} candidate pairs is too large for one task")
+        if pairs.dtype != np.int64 and pairs.dtype != np.int32:
+            pairs = pairs.astype(np.int64)
+        return _filter_pairs(coords, pairs, eps)
     reach = query_radius(eps)
     lo0, hi0, d20, m = _tree_edges(coords, eps, reach * reach, _MAX_EDGES)
     if m < 0:
         raise ValueError(f"a halo of more than {_MAX_EDGES} edges is too large for one task")
-    return _sorted_graph(h, lo0, hi0, d20, m)
+    return lo0, hi0, d20, m
 
 
-def _cap1_table(coords: np.ndarray, eps: float, lo: int, hi: int, stats: KernelStats, t0: float) -> JumpTable:
-    """Cap 1: -1 per owned edge at its length. No edge order or CSR is needed, only
-    the lengths of the edges whose lower endpoint is owned, grouped by value."""
-    import time
+def _halo_graph(coords: np.ndarray, eps: float):
+    """(offsets, nbrs, erank, elo, ehi, ed2) of the halo; see _edge_graph."""
+    return _sorted_graph(coords.shape[0], *_halo_edges(coords, eps))
 
-    reach = query_radius(eps)
-    elo, _ehi, ed2, m = _tree_edges(coords, float(eps), reach * reach, _MAX_EDGES)
-    if m < 0:
-        raise ValueError(f"a halo of more than {_MAX_EDGES} edges is too large for one task")
-    elo, ed2 = elo[:m], ed2[:m]
-    t1 = time.perf_counter()
-    lengths = np.sqrt(ed2[(elo >= lo) & (elo < hi)])
-    stats.edges = int(lengths.shape[0])
-    values, counts = np.unique(lengths, return_counts=True)
-    jumps = -counts.astype(np.int64)
-    if values.shape[0] and values[0] == 0.0:
-        jumps[0] += hi - lo  # coincident points: their 0-length edges meet the vertices
+
+@nb.njit(nogil=True, cache=True)
+def _keep_owned(lo0, d20, g0, g1, own_lo, own_hi, k):
+    """Move the lengths of the records of [g0, g1) with an owned lower endpoint after the
+    first k; returns the new k (values move to lower indices only)."""
+    for g in range(g0, g1):
+        if own_lo <= lo0[g] < own_hi:
+            d20[k] = d20[g]
+            k += 1
+    return k
+
+
+@nb.njit(nogil=True, cache=True)
+def _bucket_values(d2, g0, g1, scale, top, fill, out, scatter):
+    """Values [g0, g1) by coarse bucket, as in _coarse_count / _coarse_scatter: count
+    them (fill[c + 1] += 1), or move each to the next free slot of its bucket in out."""
+    for g in range(g0, g1):
+        x = d2[g]
+        u = x * scale
+        c = int(u) if u < top else top
+        if scatter:
+            y = fill[c]
+            out[y] = x
+            fill[c] = y + 1
+        else:
+            fill[c + 1] += 1
+
+
+@nb.njit(nogil=True, cache=True)
+def _group_values(d2, g0, g1, counts, n):
+    """Group the square roots of the sorted d2[g0:g1] after the first n groups: lengths
+    into d2 itself (entry g is written at an index of at most g, after it was read),
+    their multiplicities into counts; returns the new n."""
+    for g in range(g0, g1):
+        v = math.sqrt(d2[g])
+        if n > 0 and v == d2[n - 1]:
+            counts[n - 1] += 1
+        else:
+            d2[n] = v
+            counts[n] = 1
+            n += 1
+    return n
+
+
+def _sorted_values(d2: np.ndarray) -> np.ndarray:
+    """d2 sorted (a new array or d2 itself): coarse buckets by value as in _sorted_edges,
+    then numpy's sort on runs of whole buckets, all in blocks."""
+    m = d2.shape[0]
+    if m <= _FIRST_EDGES:
+        d2.sort()
+        return d2
+    dmax = float(d2.max())
+    ncoarse = _COARSE
+    scale = ncoarse / dmax if dmax > 0.0 else 0.0
+    if not (scale < math.inf):
+        scale = 0.0
+    top = ncoarse - 1
+    start = np.zeros(ncoarse + 1, dtype=np.int64)
+    _edge_blocks(m, lambda a, b: _bucket_values(d2, a, b, scale, top, start, d2, False))
+    np.cumsum(start, out=start)
+    out = np.empty(m, dtype=np.float64)
+    fill = start[:-1].copy()
+    _edge_blocks(m, lambda a, b: _bucket_values(d2, a, b, scale, top, fill, out, True))
+
+    def sort(a: int, b: int) -> None:
+        out[start[a] : start[b]].sort()  # whole buckets: sorted runs side by side
+
+    run_blocks(0, ncoarse, sort, Pacer(_FIRST_EDGES), weights=start.astype(np.float64))
+    return out
+
+
+def _cap1(h: int, edges: tuple, lo: int, hi: int):
+    """Cap 1: -1 per owned edge at its length. Only the owned edges' squared lengths are
+    sorted, and their square roots grouped: no edge order, no CSR. Returns (values,
+    jumps, owned edges)."""
+    lo0, _hi0, d20, m = edges
+    if (lo, hi) != (0, h):
+        k = [0]
+
+        def keep(a: int, b: int) -> None:
+            k[0] = _keep_owned(lo0, d20, a, b, lo, hi, k[0])
+
+        _edge_blocks(m, keep)
+        m = k[0]
+    d2 = _sorted_values(d20[:m])
+    counts = np.empty(m, dtype=np.int64)
+    n = [0]
+
+    def group(a: int, b: int) -> None:
+        n[0] = _group_values(d2, a, b, counts, n[0])
+
+    _edge_blocks(m, group)
+    jumps = counts[: n[0]]
+    np.negative(jumps, out=jumps)
+    values, jumps = _with_vertices(d2[: n[0]], jumps, hi - lo)
+    return values, jumps, m
+
+
+def default_threads(work: float) -> int:
+    """Threads for counting `work` units (the sum over owned rows of degree^2 + 1)
+    when none are asked for: one below AUTO_THREADS_WORK, else every core this process
+    may use. Below the threshold, starting and joining threads costs more than they save
+    (measured by benchmarks/bench_threads.py)."""
+    if work < AUTO_THREADS_WORK:
+        return 1
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # not on every platform
+        return os.cpu_count() or 1
+
+
+# see default_threads
+AUTO_THREADS_WORK = 1 << 20
+
+# first block of the counting, in units of degree^2 + 1: small enough that even the
+# costliest rows met (dense neighbourhoods, high caps: microseconds a unit) finish it
+# well within a second, large enough that a small halo is one block
+_FIRST_WORK = 1 << 16
+
+
+def _count(coords, offsets, nbrs, erank, lo: int, hi: int, cap: int, out_jump: np.ndarray,
+           threads: int | None) -> np.ndarray:
+    """Fill out_jump for the owned edges (cap >= 2) in blocks of rows over threads;
+    returns the summed counters."""
+    h = offsets.shape[0] - 1
+    stats = np.zeros(len(STAT_NAMES), dtype=np.int64)
+    if cap == 2 and 1 <= coords.shape[1] <= _UNROLLED_DIMS:
+        tag = width_tag(coords.shape[1])
+
+        def call(a: int, b: int, _state: None) -> None:
+            _cap2_near(coords, tag, offsets, nbrs, erank, a, b, out_jump)
+
+        def state() -> None:
+            return None
+    elif cap == 2:
+        def call(a: int, b: int, mark: np.ndarray) -> None:
+            _count_cap2(offsets, nbrs, erank, a, b, out_jump, mark)
+
+        def state() -> np.ndarray:
+            return np.zeros(h, dtype=np.int64)
     else:
-        values = np.concatenate([[0.0], values])
-        jumps = np.concatenate([[hi - lo], jumps])
-    keep = jumps != 0
-    stats.seconds_graph = t1 - t0
-    stats.seconds_count = time.perf_counter() - t1
-    return JumpTable(values[keep], jumps[keep], stats)
+        # one of the two is None: see _vertex
+        max_dim, collapse = (None, 0) if cap == UNCAPPED else (cap, None)
 
+        def call(a: int, b: int, frame: _Frame) -> None:
+            bound, maxdeg = _pending_bound(offsets, nbrs, a, b)
+            if maxdeg:
+                _count_rows(offsets, nbrs, erank, a, b, max_dim, collapse, out_jump, frame.stats,
+                            *frame.fit(bound, maxdeg))
 
-def _split_evenly(offsets: np.ndarray, lo: int, hi: int, pieces: int) -> list[tuple[int, int]]:
-    """Cut [lo, hi) into pieces of about equal deg^2 weight (the frame dominates)."""
-    if pieces <= 1 or hi - lo <= 1:
-        return [(lo, hi)]
-    deg = np.diff(offsets[lo : hi + 1]).astype(np.float64)
-    weight = np.cumsum(deg * deg + 1.0)
-    cuts = np.searchsorted(weight, weight[-1] * np.arange(1, pieces) / pieces)
-    bounds = np.unique(np.concatenate([[0], cuts, [hi - lo]])) + lo
-    return [(int(a), int(b)) for a, b in zip(bounds[:-1], bounds[1:]) if b > a]
+        def state() -> _Frame:
+            return _Frame.take(h, cap)
+
+    deg = np.diff(offsets[lo : hi + 1])
+    # the frame of a row costs about its degree squared: a small halo (bounded through
+    # the largest degree) is one call, without the blocks' bookkeeping
+    if hi - lo + int(deg.max(initial=0)) * int(offsets[hi] - offsets[lo]) <= _FIRST_WORK:
+        states = [state()]
+        call(lo, hi, states[0])
+    else:
+        deg = deg.astype(np.float64)
+        weights = np.zeros(hi - lo + 1)
+        np.cumsum(deg * deg + 1.0, out=weights[1:])
+        if threads is None:
+            threads = default_threads(float(weights[-1]))
+        states = run_blocks(lo, hi, call, Pacer(_FIRST_WORK), weights=weights, threads=threads,
+                            state=state)
+    for s in states:
+        if isinstance(s, _Frame):
+            stats += s.stats
+            s.keep()
+    return stats
 
 
 def count_jumps(
@@ -1273,7 +1628,9 @@ def count_jumps(
     eps: float,
     max_dim: int | None = None,
     owned: tuple[int, int] | None = None,
-    threads: int = 1,
+    threads: int | None = 1,
+    *,
+    blocks: bool = True,
 ) -> JumpTable:
     """The jump table of the owned rows of a halo.
 
@@ -1288,8 +1645,14 @@ def count_jumps(
         Cap on simplex dimension; None counts every dimension.
     owned : (start, stop), optional
         Local rows owned by this call (default: all rows).
-    threads : int
-        Threads over which the owned rows are spread (the kernel releases the GIL).
+    threads : int or None
+        Threads over which the owned rows are spread (the kernel releases the GIL);
+        None chooses from the size of the counting (see `default_threads`).
+    blocks : bool
+        Run every compiled loop in blocks of about `blocks.BLOCK_SECONDS` each, so that
+        a KeyboardInterrupt is raised within a fraction of a second (default). False
+        makes one call per loop, which cannot be interrupted before its end; the result
+        is the same.
 
     Returns
     -------
@@ -1303,48 +1666,85 @@ def count_jumps(
     >>> t.values.tolist(), t.jumps.tolist()
     ([0.0, 1.0], [3, -2])
     """
-    coords = np.ascontiguousarray(coords, dtype=np.float64)
+    coords = _plain(coords)
     h = coords.shape[0]
     lo, hi = (0, h) if owned is None else (int(owned[0]), int(owned[1]))
     if not (0 <= lo <= hi <= h):
         raise ValueError(f"owned rows [{lo}, {hi}) do not fit a halo of {h} rows")
     cap = UNCAPPED if max_dim is None else int(max_dim)
     stats = KernelStats(vertices=hi - lo)
-    t0 = time.perf_counter()
     if cap == 0 or hi == lo:
         values = np.zeros(1 if hi > lo else 0, dtype=np.float64)
         jumps = np.full(values.shape, hi - lo, dtype=np.int64)
         return JumpTable(values, jumps, stats)
-    if cap == 1 and eps >= 0.0 and coords.shape[1] > 0 and np.isfinite(coords).all():
-        return _cap1_table(coords, eps, lo, hi, stats, t0)
-    offsets, nbrs, erank, elo, _ehi, ed2 = _halo_graph(coords, eps)
-    t1 = time.perf_counter()
-    out_jump = np.empty(ed2.shape[0], dtype=np.int64)
-    stats.edges = int(_owned_edges(elo, lo, hi, out_jump, cap == 1))
-    raw = np.zeros((1, len(STAT_NAMES)), dtype=np.int64)
-    if cap != 1:
-        ranges = _split_evenly(offsets, lo, hi, max(1, threads) * 8 if threads > 1 else 1)
-        raw = np.zeros((len(ranges), len(STAT_NAMES)), dtype=np.int64)
-
-        near = cap == 2 and 1 <= coords.shape[1] <= _UNROLLED_DIMS
-
-        def work(k: int) -> None:
-            a, b = ranges[k]
-            if near:
-                _count_cap2_near(coords, offsets, nbrs, erank, a, b, out_jump)
-            else:
-                count_range(offsets, nbrs, erank, a, b, cap, out_jump, raw[k])
-
-        if len(ranges) == 1:
-            work(0)
+    with contextlib.nullcontext() if blocks else whole_calls():
+        t0 = time.perf_counter()
+        edges = _halo_edges(coords, eps)
+        if cap == 1:
+            t1 = time.perf_counter()
+            values, jumps, stats.edges = _cap1(h, edges, lo, hi)
+            counted = np.zeros(len(STAT_NAMES), dtype=np.int64)
         else:
-            with ThreadPoolExecutor(max_workers=threads) as pool:
-                list(pool.map(work, range(len(ranges))))
-    values, jumps = _collect(ed2, elo, lo, hi, out_jump, hi - lo)
+            offsets, nbrs, erank, elo, _ehi, ed2 = _sorted_graph(h, *edges)
+            del edges
+            t1 = time.perf_counter()
+            out_jump = np.empty(ed2.shape[0], dtype=np.int64)
+            stats.edges = _owned_count(elo, lo, hi, h)
+            counted = _count(coords, offsets, nbrs, erank, lo, hi, cap, out_jump, threads)
+            values, jumps = _collect(ed2, elo, lo, hi, out_jump, hi - lo)
     t2 = time.perf_counter()
-    counted = raw.sum(axis=0)
     for name, value in zip(STAT_NAMES[1:], counted[1:]):
         setattr(stats, name, int(value))
     stats.seconds_graph = t1 - t0
     stats.seconds_count = t2 - t1
     return JumpTable(values, jumps, stats)
+
+
+# ---------------------------------------------------------------------------------------
+# what a run compiles
+# ---------------------------------------------------------------------------------------
+
+
+def compiled_calls(max_dim: int | None, dims: int) -> list[tuple[object, tuple]]:
+    """The compiled functions `count_jumps` calls from Python for one cap and number of
+    coordinates, each with the numba argument types of its call.
+
+    Their callees are compiled into them, so this list is what a run needs compiled or
+    loaded from numba's cache (see warmup.py); caps from 3 up share one signature. The
+    cKDTree fallback for halos the compiled tree does not take (no rows, no coordinates,
+    non-finite values, eps < 0) is not listed: `euler_curve` never takes it.
+    tests/test_warmup.py checks the list against the calls a run makes.
+    """
+    cap = UNCAPPED if max_dim is None else int(max_dim)
+    if cap == 0:
+        return []
+    i8, f8 = types.int64, types.float64
+    I4, I8, F8, U8 = (types.Array(t, 1, "C") for t in (types.int32, types.int64, types.float64, types.uint64))
+    F8_2, U8_2 = types.Array(types.float64, 2, "C"), types.Array(types.uint64, 2, "C")
+    tag = nb.typeof(width_tag(int(dims)))
+    calls: list[tuple[object, tuple]] = [
+        (_split_nodes, (F8_2, I8, I8, I8, F8_2, F8_2, i8, i8, i8)),
+        (_sampled_edges, (F8_2, tag, i8, f8, F8, i8, i8, i8)),
+        (_join_leaves, (F8_2, tag, F8_2, I8, I8, I8, F8_2, F8_2, f8, f8, f8, i8, i8, i8, I4, I4, F8, i8, I8, F8)),
+    ]
+    if cap == 1:
+        calls += [(_keep_owned, (I4, F8, i8, i8, i8, i8, i8)),
+                  (_bucket_values, (F8, i8, i8, f8, i8, I8, F8, types.boolean)),
+                  (_group_values, (F8, i8, i8, I8, i8))]
+        return calls
+    calls += [(_coarse_count, (I4, I4, F8, i8, i8, f8, i8, I8, I8)),
+              (_coarse_scatter, (I4, I4, F8, i8, i8, f8, i8, I8, I4, I4, F8)),
+              (_fine_sort, (I4, I4, F8, I8, i8, i8, f8, I8, I4, I4, F8)),
+              (_fill_rows, (I4, I4, i8, i8, I8, I4, I4)),
+              (_group_lengths, (F8, I4, i8, i8, i8, i8, I8, i8))]
+    if cap == 2 and 1 <= dims <= _UNROLLED_DIMS:
+        calls.append((_cap2_near, (F8_2, tag, I8, I4, I4, i8, i8, I8)))
+    elif cap == 2:
+        calls.append((_count_cap2, (I8, I4, I4, i8, i8, I8, I8)))
+    else:
+        max_dim_t, collapse_t = (types.none, i8) if cap == UNCAPPED else (i8, types.none)
+        workspace = (I4, I8, U8_2, I8, I4, I4, I4, I4, I4, I8, I4, U8, U8, U8, U8_2, I8, I8, U8, I8,
+                     U8_2, I8, I8)
+        calls += [(_pending_bound, (I8, I4, i8, i8)),
+                  (_count_rows, (I8, I4, I4, i8, i8, max_dim_t, collapse_t, I8, I8) + workspace)]
+    return calls

@@ -1,0 +1,105 @@
+"""Threads by problem size: where threads start to pay, and what the default costs on
+many small clouds.
+
+Part 1 (--crossover): count_jumps on clouds of growing size, one thread against every
+core, best of 5 each; the counting work (the sum over rows of degree^2 + 1, what
+`kernel.default_threads` looks at) is printed beside the ratio, to place
+`kernel.AUTO_THREADS_WORK`.
+
+Part 2: per-cloud time of euler_curve on 1,000 clouds of 100 points in R^3 and in R^64
+(uniform in the unit cube, eps the 10% quantile of the distances: about 10 neighbours a
+point), uncapped, with the old default (threads = every core), the new default
+(threads=None) and the old code's default (the package at --baseline, imported beside
+this one). Best of 3 passes over the 1,000 clouds, in this one process.
+
+Run:  python benchmarks/bench_threads.py [--crossover] [--clouds 1000] [--baseline REV]
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import time
+
+import numpy as np
+
+import baseline
+from chitally import kernel
+from chitally.inprocess import euler_curve
+
+
+def cores() -> int:
+    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1
+
+
+def best(fn, repeat: int) -> float:
+    times = []
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - t0)
+    return min(times)
+
+
+def work_of(points: np.ndarray, eps: float) -> float:
+    offsets = kernel._halo_graph(points, eps)[0]
+    deg = np.diff(offsets).astype(np.float64)
+    return float(np.sum(deg * deg + 1.0))
+
+
+def crossover() -> None:
+    print(f"count_jumps, 1 thread against {cores()}; best of 5; counting work = sum(deg^2 + 1)")
+    print(f"{'case':<26} {'work':>10} {'1 thread ms':>12} {'all ms':>9} {'all/1':>7}")
+    rng = np.random.default_rng(0)
+    for dims, cap in ((3, None), (3, 3), (3, 2), (64, None), (64, 2)):
+        for n in (100, 300, 1000, 3000, 10000):
+            points = rng.random((n, dims))
+            # about 12 neighbours a row whatever n: the 12/n quantile of the distances
+            sample = points[:400]
+            d = np.sqrt(((sample[:, None, :] - sample[None, :, :]) ** 2).sum(-1))
+            eps = float(np.quantile(d[np.triu_indices(len(sample), 1)], min(0.5, 12.0 / n)))
+            work = work_of(points, eps)
+            one = best(lambda: kernel.count_jumps(points, eps, cap, threads=1), 5)
+            every = best(lambda: kernel.count_jumps(points, eps, cap, threads=cores()), 5)
+            name = f"R^{dims} n={n} cap {cap}"
+            print(f"{name:<26} {work:10.3g} {one * 1e3:12.3f} {every * 1e3:9.3f} {every / one:7.2f}", flush=True)
+
+
+def many_clouds(count: int, rev: str) -> None:
+    base = baseline.load(rev)
+    print(f"\n{count} clouds of 100 points, uncapped; ms per cloud, best of 3 passes; {cores()} cores")
+    print(f"{'points':<8} {'old code, default':>18} {'threads=all':>12} {'threads=None':>13} {'threads=1':>10}")
+    for dims in (3, 64):
+        rng = np.random.default_rng(dims)
+        clouds = [rng.random((100, dims)) for _ in range(count)]
+        d = np.sqrt(((clouds[0][:, None, :] - clouds[0][None, :, :]) ** 2).sum(-1))
+        eps = float(np.quantile(d[np.triu_indices(100, 1)], 0.1))
+        for c in clouds[:3]:  # compile (or load) outside the timing
+            base.euler_curve(c, eps)
+            euler_curve(c, eps)
+            euler_curve(c, eps, threads=cores())
+
+        def run(fn) -> float:
+            return best(lambda: [fn(c) for c in clouds], 3) / count * 1e3
+
+        old = run(lambda c: base.euler_curve(c, eps))
+        every = run(lambda c: euler_curve(c, eps, threads=cores()))
+        auto = run(lambda c: euler_curve(c, eps))
+        one = run(lambda c: euler_curve(c, eps, threads=1))
+        print(f"R^{dims:<6} {old:18.3f} {every:12.3f} {auto:13.3f} {one:10.3f}", flush=True)
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--crossover", action="store_true", help="only part 1")
+    ap.add_argument("--clouds", type=int, default=1000)
+    ap.add_argument("--baseline", default=baseline.DEFAULT_REV)
+    args = ap.parse_args()
+    if args.crossover:
+        crossover()
+        return
+    many_clouds(args.clouds, args.baseline)
+
+
+if __name__ == "__main__":
+    main()
