@@ -1748,3 +1748,25 @@ def compiled_calls(max_dim: int | None, dims: int) -> list[tuple[object, tuple]]
         calls += [(_pending_bound, (I8, I4, i8, i8)),
                   (_count_rows, (I8, I4, I4, i8, i8, max_dim_t, collapse_t, I8, I8) + workspace)]
     return calls
+
+
+def count_range(offsets: np.ndarray, nbrs: np.ndarray, erank: np.ndarray, own_lo: int, own_hi: int,
+                max_dim: int, out_jump: np.ndarray, stats: np.ndarray) -> None:
+    """Per-edge jumps of every edge whose lower endpoint is in [own_lo, own_hi), on a
+    sorted graph given as CSR in edge order (``max_dim`` >= 2, or UNCAPPED): the entry
+    the graph filtrations use with an edge order read from weights. ``out_jump`` is
+    indexed by edge rank; counters are added into ``stats``."""
+    h = offsets.shape[0] - 1
+    if max_dim == 2:
+        _count_cap2(offsets, nbrs, erank, own_lo, own_hi, out_jump, np.zeros(h, dtype=np.int64))
+        return
+    bound, maxdeg = _pending_bound(offsets, nbrs, own_lo, own_hi)
+    if maxdeg == 0:
+        return
+    cap, collapse = (None, 0) if max_dim == UNCAPPED else (int(max_dim), None)
+    frame = _Frame.take(h, UNCAPPED if cap is None else cap)
+    _count_rows(offsets, nbrs, erank, own_lo, own_hi, cap, collapse, out_jump, frame.stats,
+                *frame.fit(bound, maxdeg))
+    n = min(stats.shape[0], frame.stats.shape[0])
+    stats[:n] += frame.stats[:n]
+    frame.keep()
