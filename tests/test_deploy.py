@@ -202,6 +202,30 @@ def s3_commits(fs, prefix: str) -> set[int]:
     return {int(m.group(1)) for n in names if (m := re.search(r"task-(\d+)\.json$", n))}
 
 
+def test_object_store_sees_keys_another_process_wrote_after_a_listing(s3):
+    """A commit record or lease generation written elsewhere after this process listed
+    the folder must be visible at once (fsspec's listings cache would hide it)."""
+    import s3fs
+
+    from chitally.store.io import StoreIO
+
+    endpoint, fs = s3
+    fs.mkdir("listing")
+    opts = {"key": "deploytest", "secret": SECRET, "endpoint_url": endpoint}
+    io = StoreIO("s3://listing/run", opts)
+    io.set("commits/task-000001.json", b"{}", what="test")
+    assert io.list("commits/") == ["commits/task-000001.json"]
+    other = s3fs.S3FileSystem(skip_instance_cache=True, **opts)  # as another process would
+    other.pipe("listing/run/commits/task-000002.json", b'{"a": 1}')
+    assert io.exists("commits/task-000002.json")
+    assert io.get("commits/task-000002.json") == b'{"a": 1}'
+    # a conditional create refuses an existing key on this backend (S3 If-None-Match)
+    assert io.create_only("commits/task-000003.json", b"mine", what="test")
+    other.pipe("listing/run/commits/task-000004.json", b"theirs")
+    assert not io.create_only("commits/task-000004.json", b"mine", what="test")
+    assert other.cat("listing/run/commits/task-000004.json") == b"theirs"
+
+
 def test_object_store_run_killed_then_resumed_and_a_second_writer_refused(
         tmp_path, processes, points, expected, s3, faults):
     endpoint, fs = s3
@@ -508,6 +532,58 @@ def test_workers_reaching_their_lifetime_mid_run_then_the_next_allocation_resume
     assert not (again & set(np.flatnonzero(first)))
 
 
+# ----------------------------------------------------------------------- Compose
+
+def interpolate(text: str, variables: dict[str, str]) -> str:
+    """Compose's ``${NAME:-default}`` and ``${NAME}`` substitution."""
+    def one(m: re.Match) -> str:
+        return variables.get(m.group(1)) or (m.group(3) or "")
+    return re.sub(r"\$\{([A-Z_][A-Z0-9_]*)(:-([^}]*))?\}", one, text)
+
+
+def test_compose_topology_emulated_with_processes(tmp_path, processes, points, expected):
+    """No Docker engine can run here: the compose file's own commands run as processes,
+    with only the names Docker would resolve replaced (the service name `scheduler`, its
+    ports, the volumes /runs and /data, the worker's scratch folder) and every server
+    held to 127.0.0.1."""
+    spec = yaml.safe_load((DEPLOY / "compose" / "compose.yaml").read_text())
+    services = spec["services"]
+    assert services["scheduler"]["ports"] == ["127.0.0.1:8786:8786", "127.0.0.1:8787:8787"]
+    assert "runs" in spec["volumes"]
+    for name in ("worker", "client"):
+        assert "runs:/runs" in services[name]["volumes"]
+    limits = services["worker"]["deploy"]["resources"]["limits"]
+    assert limits["memory"] == "4g"
+    variables = {"INPUT": "points.npy", "EPS": repr(EPS), "WORKERS": "2"}
+    port, dash = free_port(), free_port()
+    (tmp_path / "data").mkdir()
+    (tmp_path / "runs").mkdir()
+    write_points(tmp_path / "data" / "points.npy", points)
+    names = {"tcp://scheduler:8786": f"tcp://{HOST}:{port}", "/data/": f"{tmp_path}/data/",
+             "/runs/": f"{tmp_path}/runs/", "/tmp/dask": str(tmp_path / "scratch")}
+
+    def argv(service: str, host: bool = True) -> list[str]:
+        words = [interpolate(str(w), variables) for w in services[service]["command"]]
+        for old, new in names.items():
+            words = [w.replace(old, new) for w in words]
+        return words + (["--host", HOST] if host else [])
+
+    sched = argv("scheduler")
+    sched[sched.index("--port") + 1] = str(port)
+    sched[sched.index("--dashboard-address") + 1] = f"{HOST}:{dash}"
+    processes.start([str(BIN / w) if i == 0 else w for i, w in enumerate(sched)], env=env(), name="scheduler")
+    replicas = int(interpolate(str(services["worker"]["deploy"]["replicas"]), variables))
+    assert replicas == 2
+    for k in range(replicas):
+        words = argv("worker")
+        processes.start([str(BIN / words[0]), *words[1:]], env=env(), name=f"worker{k}")
+    client = argv("client", host=False)
+    assert client[:2] == ["chitally", "run"] and "--wait-workers" in client
+    res = command(*client[1:], timeout=240)  # waits for the workers itself
+    assert res.returncode == 0, explain(res)
+    assert read_result(open_run(str(tmp_path / "runs" / "points.run"))) == expected
+
+
 # ---------------------------------------------------------- the files and their commands
 
 _HELP: dict[tuple[str, ...], set[str]] = {}
@@ -595,7 +671,7 @@ def test_every_deployment_file_parses_and_its_commands_exist():
     files = deployment_files()
     kinds = {p.suffix for p in files.values()}
     assert {".yaml", ".sbatch", ".md"} <= kinds, files
-    seen: set[tuple[str, str]] = set()
+    seen: dict[str, set[tuple[str, str]]] = {}
     for name, path in files.items():
         text = path.read_text()
         lines: list[list[str]] = []
@@ -616,10 +692,14 @@ def test_every_deployment_file_parses_and_its_commands_exist():
             if path.name == "Dockerfile":
                 assert re.search(r"^FROM \S+:\S+@sha256:[0-9a-f]{64}", text, re.M) or \
                     re.search(r"^FROM python:\d+\.\d+\.\d+-", text, re.M), "pin the base image"
-        for words in lines:
-            seen.add(check_options(words, name))
-    # the files start every role they are meant to
-    assert {("dask", "scheduler"), ("dask", "worker"), ("chitally", "run"), ("chitally", "resume")} <= seen
+        seen[name] = {check_options(words, name) for words in lines}
+    # each file starts every role it is meant to
+    roles = {("dask", "scheduler"), ("dask", "worker"), ("chitally", "run")}
+    assert roles | {("chitally", "resume")} <= seen["deploy/slurm/chitally.sbatch"]
+    assert roles <= seen["deploy/compose/compose.yaml"]
+    for name in ("daskjob-pvc.yaml", "daskjob-s3.yaml"):
+        assert roles <= seen[f"deploy/kubernetes/{name}"]
+    assert ("chitally", "run") in seen["deploy/kubernetes/client-job.yaml"]
 
 
 def test_kubernetes_manifests_follow_the_operator_schema():
@@ -629,7 +709,7 @@ def test_kubernetes_manifests_follow_the_operator_schema():
     for path in sorted((DEPLOY / "kubernetes").glob("*.yaml")):
         docs += [d for d in yaml.safe_load_all(path.read_text()) if d]
     kinds = {d["kind"] for d in docs}
-    assert {"DaskCluster", "DaskJob", "DaskAutoscaler", "Service", "PersistentVolumeClaim"} <= kinds
+    assert {"DaskCluster", "DaskJob", "DaskAutoscaler", "PersistentVolumeClaim", "NetworkPolicy"} <= kinds
     for d in docs:
         if d["apiVersion"] != "kubernetes.dask.org/v1":
             continue
@@ -653,3 +733,6 @@ def test_kubernetes_manifests_follow_the_operator_schema():
                         assert "valueFrom" in e and "value" not in e, e
         svc = cluster["scheduler"]["service"]
         assert svc.get("type", "ClusterIP") == "ClusterIP"
+        # the operator reaches the scheduler's HTTP API by the port named http-dashboard
+        assert {p["name"] for p in svc["ports"]} == {"tcp-comm", "http-dashboard"}
+        assert svc["selector"]["dask.org/cluster-name"] == d["metadata"]["name"]
