@@ -146,6 +146,40 @@ def test_packaged_config_is_loaded_and_overridable_the_dask_way(tmp_path):
     assert res.stdout.split() == ["6", "17.0", "5"]
 
 
+class _Info:
+    """A client stand-in that answers scheduler_info() only."""
+
+    def __init__(self, threads: list[int]) -> None:
+        self.threads = threads
+
+    def scheduler_info(self, **_: object) -> dict:
+        return {"workers": {f"w{i}": {"nthreads": n} for i, n in enumerate(self.threads)}}
+
+
+def test_window_follows_the_configured_factor_and_the_live_threads():
+    from chitally.runs import _ClusterExecutor
+
+    ex = _ClusterExecutor(_Info([2, 2, 2]), factor=4)
+    assert ex.window() == 24
+    assert _ClusterExecutor(_Info([2, 2, 2]), factor=1.5).window() == 9
+    assert _ClusterExecutor(_Info([]), factor=3).window() == 3  # never zero
+
+
+def test_workers_may_open_the_store_with_their_own_storage_options(tmp_path, points):
+    import pickle
+
+    from chitally.jobs.cloud import Params, create_or_open
+    from chitally.runs import _for_workers
+
+    store = create_or_open(str(tmp_path / "run"), points, Params.checked(EPS, None, None, COST))
+    assert _for_workers(store, None) is store
+    view = _for_workers(store, {"endpoint_url": "http://in-cluster:9000"})
+    again = pickle.loads(pickle.dumps(view))  # as a worker receives it
+    assert again.io.storage_options == {"endpoint_url": "http://in-cluster:9000"}
+    assert (again.url, again.plan_digest, again.n_tasks) == (store.url, store.plan_digest, store.n_tasks)
+    assert store.io.storage_options == {}
+
+
 def test_storage_options_from_pairs_and_a_file(tmp_path):
     from chitally.cli import parse_storage_options
 
@@ -226,6 +260,31 @@ def test_object_store_sees_keys_another_process_wrote_after_a_listing(s3):
     assert other.cat("listing/run/commits/task-000004.json") == b"theirs"
 
 
+def test_object_store_run_keeps_its_secret_out_of_the_store_and_the_output(tmp_path, points, expected, s3):
+    endpoint, fs = s3
+    fs.mkdir("plain")
+    src = write_points(tmp_path / "points.npy", points)
+    secret_file = tmp_path / "storage.json"
+    secret_file.write_text(json.dumps({"secret": SECRET}))
+    store_args = ["--storage-options", secret_file, "--storage-option", "key=deploytest",
+                  "--storage-option", f"endpoint_url={endpoint}"]
+    res = command("-v", "run", src, "--eps", EPS, "--task-cost", COST, "--out", "s3://plain/run",
+                  *store_args, "--serial", "--no-progress")  # -v: the info log too
+    assert res.returncode == 0, explain(res)
+    opts = {"key": "deploytest", "secret": SECRET, "endpoint_url": endpoint}
+    assert read_result(open_run("s3://plain/run", storage_options=opts)) == expected
+    exported = command("-v", "export", "s3://plain/run", *store_args, "--out", tmp_path / "curve.npz")
+    assert exported.returncode == 0, explain(exported)
+    assert ct.Curve.load(tmp_path / "curve.npz") == expected
+    keys = fs.find("plain")
+    assert any(k.endswith("created.json") for k in keys) and any("/commits/" in k for k in keys)
+    for key in keys:
+        assert SECRET.encode() not in fs.cat(key), key
+    for out in (res, exported):
+        assert SECRET not in out.stdout + out.stderr
+
+
+@pytest.mark.slow
 def test_object_store_run_killed_then_resumed_and_a_second_writer_refused(
         tmp_path, processes, points, expected, s3, faults):
     endpoint, fs = s3
