@@ -375,6 +375,29 @@ def test_memory_store_runs_serially_and_is_refused_by_workers_that_cannot_see_it
     assert "cannot open the run store memory://deploy/run2" in one_error_line(res)
 
 
+def test_local_cluster_listens_on_loopback_only():
+    """The default cluster: scheduler, workers, nannies and dashboard bound to 127.0.0.1."""
+    import psutil
+
+    from chitally.cluster import connect
+
+    before = {c.laddr for c in psutil.Process().net_connections(kind="inet") if c.status == "LISTEN"}
+    conn = connect(workers=1, threads=1)
+    try:
+        pids = [os.getpid(), *conn.client.run(os.getpid).values()]
+        pids += [psutil.Process(p).ppid() for p in pids[1:]]  # the nannies
+        listening = set()
+        for pid in set(pids):
+            listening |= {c.laddr for c in psutil.Process(pid).net_connections(kind="inet")
+                          if c.status == "LISTEN"}
+        listening -= before
+        assert len(listening) >= 4  # scheduler, dashboard, worker, nanny at least
+        assert {a.ip for a in listening} == {HOST}, listening
+        assert conn.dashboard and conn.dashboard.startswith(f"http://{HOST}:")
+    finally:
+        conn.close()
+
+
 # ------------------------------------------------------------------------------- TLS
 
 
