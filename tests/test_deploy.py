@@ -268,7 +268,8 @@ def test_object_store_run_keeps_its_secret_out_of_the_store_and_the_output(tmp_p
     secret_file.write_text(json.dumps({"secret": SECRET}))
     store_args = ["--storage-options", secret_file, "--storage-option", "key=deploytest",
                   "--storage-option", f"endpoint_url={endpoint}"]
-    res = command("-v", "run", src, "--eps", EPS, "--task-cost", COST, "--out", "s3://plain/run",
+    # few, larger tasks: every task costs tens of requests to the local server
+    res = command("-v", "run", src, "--eps", EPS, "--task-cost", 4 * COST, "--out", "s3://plain/run",
                   *store_args, "--serial", "--no-progress")  # -v: the info log too
     assert res.returncode == 0, explain(res)
     opts = {"key": "deploytest", "secret": SECRET, "endpoint_url": endpoint}
@@ -468,6 +469,22 @@ def _tls_workers(address: str, pki: dict[str, Path]) -> int:
                    tls_client_key=str(pki["key"]), require_encryption=True)
     with Client(address, security=sec, timeout="10s") as client:
         return len(client.scheduler_info()["workers"])
+
+
+def test_local_cluster_speaks_tls_when_given_certificates(tmp_path):
+    from chitally.cluster import connect, make_security
+
+    pki = _write_pki(tmp_path / "pki", "local")
+    conn = connect(workers=1, threads=1,
+                   security=make_security(str(pki["ca"]), str(pki["cert"]), str(pki["key"])))
+    try:
+        assert conn.client.scheduler.address.startswith(f"tls://{HOST}:")
+        assert all(w.startswith(f"tls://{HOST}:") for w in conn.client.scheduler_info()["workers"])
+        assert conn.client.submit(sum, [1, 2, 3]).result(timeout=60) == 6
+    finally:
+        conn.close()
+    with pytest.raises(ValueError, match="--tls-ca-file"):
+        make_security(None, str(pki["cert"]), str(pki["key"]))
 
 
 def test_tls_cluster_gives_the_curve_and_refuses_clients_without_the_right_certificate(

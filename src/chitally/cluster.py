@@ -190,7 +190,8 @@ def connect(
 
     scheduler = scheduler or os.environ.get("DASK_SCHEDULER_ADDRESS") or None
     if scheduler_file or scheduler:
-        where = scheduler or _address_in(scheduler_file) or f"the scheduler of {scheduler_file}"
+        where = (_address_in(scheduler_file) or f"the scheduler of {scheduler_file}"
+                 if scheduler_file else str(scheduler))
         timeout = seconds("scheduler.connect-timeout", connect_timeout)
         try:
             if scheduler_file:
