@@ -210,18 +210,31 @@ def _cloud_params(eps: float, max_dim: int | None, cover_radius: float | None = 
 def _executor_options(fn: Callable[..., Any]) -> Callable[..., Any]:
     for opt in reversed([
         click.option("--scheduler", default=None, envvar="DASK_SCHEDULER_ADDRESS", show_envvar=True,
-                     help="Address of a running Dask scheduler (default: start a LocalCluster)."),
+                     help="Address of a running Dask scheduler, tcp:// or tls:// (default: start a LocalCluster)."),
         click.option("--scheduler-file", default=None, type=click.Path(exists=True, dir_okay=False),
                      help="Dask scheduler file of a running cluster."),
         click.option("--workers", type=int, default=None,
                      help="LocalCluster worker processes (default: one per core)."),
         click.option("--threads", type=int, default=None, help="Threads per LocalCluster worker."),
         click.option("--serial", is_flag=True, help="Run the tasks one by one in this process (no Dask)."),
-        click.option("--retries", type=int, default=2, show_default=True,
-                     help="Retries of a task that raised an error."),
+        click.option("--retries", type=int, default=None,
+                     help="Retries of a task that raised an error (default: chitally.retries "
+                          "of the Dask config, 2)."),
         click.option("--takeover", is_flag=True, help="Take over the lease of a run that stopped heartbeating."),
-        click.option("--lost-after", type=float, default=60.0, show_default=True,
-                     help="Seconds without any worker before a run stops as lost (exit 3, resumable)."),
+        click.option("--lost-after", type=float, default=None,
+                     help="Seconds without any worker before a run stops as lost, exit 3, "
+                          "resumable (default: chitally.lost-after, 60 s)."),
+        click.option("--wait-workers", type=int, default=None,
+                     help="Workers an existing scheduler must have before tasks are sent "
+                          "(default: chitally.scheduler.wait-workers, 1; 0: do not wait)."),
+        click.option("--wait-timeout", type=float, default=None,
+                     help="Seconds to wait for them (default: chitally.scheduler.wait-timeout, 300)."),
+        click.option("--tls-ca-file", default=None, type=click.Path(exists=True, dir_okay=False),
+                     help="TLS: the authority that signed the scheduler's and workers' certificates."),
+        click.option("--tls-cert", default=None, type=click.Path(exists=True, dir_okay=False),
+                     help="TLS: this client's certificate (PEM)."),
+        click.option("--tls-key", default=None, type=click.Path(exists=True, dir_okay=False),
+                     help="TLS: this client's private key (PEM), unless --tls-cert holds it."),
         click.option("--progress/--no-progress", default=True, help="Terminal progress bar."),
     ]):
         fn = opt(fn)
@@ -229,8 +242,10 @@ def _executor_options(fn: Callable[..., Any]) -> Callable[..., Any]:
 
 
 def _where(scheduler: str | None, scheduler_file: str | None, workers: int | None,
-           threads: int | None, serial: bool, retries: int, takeover: bool,
-           lost_after: float) -> Any:
+           threads: int | None, serial: bool, retries: int | None, takeover: bool,
+           lost_after: float | None, wait_workers: int | None = None,
+           wait_timeout: float | None = None, tls_ca_file: str | None = None,
+           tls_cert: str | None = None, tls_key: str | None = None) -> Any:
     from .runs import Where
     from .validate import validate_count, validate_positive
 
@@ -238,11 +253,78 @@ def _where(scheduler: str | None, scheduler_file: str | None, workers: int | Non
         validate_count(workers, name="--workers", minimum=1)
     if threads is not None:
         validate_count(threads, name="--threads", minimum=1)
-    validate_count(retries, name="--retries", minimum=0)
-    validate_positive(lost_after, name="--lost-after")
+    if retries is not None:
+        validate_count(retries, name="--retries", minimum=0)
+    if lost_after is not None:
+        validate_positive(lost_after, name="--lost-after")
+    if wait_workers is not None:
+        validate_count(wait_workers, name="--wait-workers", minimum=0)
+    if wait_timeout is not None:
+        validate_positive(wait_timeout, name="--wait-timeout")
+    security = None
+    if tls_ca_file or tls_cert or tls_key:
+        from .cluster import make_security
+
+        security = make_security(tls_ca_file, tls_cert, tls_key)
     return Where(scheduler=scheduler, scheduler_file=scheduler_file, workers=workers,
                  threads=threads, serial=serial, retries=retries, takeover=takeover,
-                 lost_after=lost_after)
+                 lost_after=lost_after, wait_workers=wait_workers, wait_timeout=wait_timeout,
+                 security=security)
+
+
+def parse_storage_options(pairs: tuple[str, ...] | list[str] = (),
+                          file: str | None = None) -> dict[str, Any] | None:
+    """Storage options for fsspec from a JSON file and KEY=VALUE pairs (pairs win).
+
+    A VALUE that parses as JSON is taken as such (``anon=true``, ``config_kwargs={...}``),
+    anything else as a string. Returns None when neither is given.
+    """
+    if not pairs and file is None:
+        return None
+    options: dict[str, Any] = {}
+    if file is not None:
+        try:
+            with open(file, encoding="utf-8") as f:
+                loaded = json.load(f)
+        except (OSError, ValueError) as exc:
+            raise click.BadParameter(f"{file}: {exc}", param_hint="--storage-options") from None
+        if not isinstance(loaded, dict):
+            raise click.BadParameter(f"{file} holds a JSON {type(loaded).__name__}, not an object",
+                                     param_hint="--storage-options")
+        options.update(loaded)
+    for pair in pairs:
+        key, sep, text = pair.partition("=")
+        if not sep or not key.strip():
+            # never echo the pair: it may hold a secret
+            raise click.BadParameter("expected KEY=VALUE", param_hint="--storage-option")
+        try:
+            value: Any = json.loads(text)
+        except ValueError:
+            value = text
+        options[key.strip()] = value
+    return options
+
+
+def storage_opts(fn: Callable[..., Any]) -> Callable[..., Any]:
+    """--storage-option KEY=VALUE (repeatable) and --storage-options FILE.json, handed to
+    the command as one `store_options` dict (or None)."""
+
+    @functools.wraps(fn)
+    def wrapper(*args: Any, storage_option: tuple[str, ...] = (),
+                storage_options_file: str | None = None, **kwargs: Any) -> Any:
+        kwargs["store_options"] = parse_storage_options(storage_option, storage_options_file)
+        return fn(*args, **kwargs)
+
+    for opt in reversed([
+        click.option("--storage-option", "storage_option", multiple=True, metavar="KEY=VALUE",
+                     help="An fsspec option for an object-store run store (repeatable; VALUE "
+                          "may be JSON). Prefer credentials from the environment."),
+        click.option("--storage-options", "storage_options_file", default=None, metavar="FILE.json",
+                     type=click.Path(exists=True, dir_okay=False),
+                     help="fsspec options for the run store from a JSON object (--storage-option wins)."),
+    ]):
+        wrapper = opt(wrapper)
+    return wrapper
 
 
 class ProgressBar:
@@ -452,11 +534,12 @@ def plan_cmd(input: str, eps: float, max_dim: int | None, key: str | None, colum
 @click.option("--grid", default=None, help=GRID_HELP)
 @click.option("--discard", is_flag=True, help="Delete committed work of an unfinished store at --out.")
 @_executor_options
+@storage_opts
 @guarded
 def run_cmd(input: str, eps: float, max_dim: int | None, key: str | None, columns: str | None,
             index_col: str | None, out: str,
             cover_radius: float | None, task_cost: float | None, grid: str | None, discard: bool,
-            progress: bool, **how: Any) -> None:
+            progress: bool, store_options: dict[str, Any] | None, **how: Any) -> None:
     """Plan, execute and reduce: the exact curve of INPUT on a Dask cluster."""
     from .jobs.cloud import create_or_open, plan_warnings
 
@@ -464,7 +547,8 @@ def run_cmd(input: str, eps: float, max_dim: int | None, key: str | None, column
     grid_values = _grid(grid)
     where = _where(**how)
     points = _read(input, key, columns, index_col)  # validated before any store exists
-    store = create_or_open(_store_url(out), points, params, discard=discard)
+    store = create_or_open(_store_url(out), points, params, storage_options=store_options,
+                           discard=discard)
     from .jobs.cloud import read_plan
 
     for w in plan_warnings(read_plan(store)):
@@ -485,11 +569,12 @@ def run_cmd(input: str, eps: float, max_dim: int | None, key: str | None, column
 @click.option("--out", "out", required=True, help="The run store: a local path or an fsspec URL all workers reach.")
 @click.option("--discard", is_flag=True, help="Delete committed work of an unfinished store at --out.")
 @_executor_options
+@storage_opts
 @guarded
 def batch_cmd(input: str, eps: float, grid: str, max_dim: int | None, normalise: bool,
               labels: str | None, key: str | None, columns: str | None, index_col: str | None,
               task_cost: float | None, out: str, discard: bool,
-              progress: bool, **how: Any) -> None:
+              progress: bool, store_options: dict[str, Any] | None, **how: Any) -> None:
     """A feature matrix: every cloud of INPUT (a folder of point files, an .npz of
     arrays, a 3-D .npy or a Zarr group) as its exact curve sampled on the grid."""
     from .clouds import Collection, read_collection, read_labels
@@ -504,7 +589,8 @@ def batch_cmd(input: str, eps: float, grid: str, max_dim: int | None, normalise:
     col = read_collection(input, key=key)
     if labels is not None:
         col = Collection(col.names, col.clouds, read_labels(labels, col.names))
-    store = create_or_open(_store_url(out), col, params, discard=discard)
+    store = create_or_open(_store_url(out), col, params, storage_options=store_options,
+                           discard=discard)
     say(f"{len(col)} clouds in R^{col.dim}, {sum(c.shape[0] for c in col.clouds)} points, "
         f"{store.n_tasks} tasks")
     _report(_run_store(store, where, progress))
@@ -518,16 +604,18 @@ def batch_cmd(input: str, eps: float, grid: str, max_dim: int | None, normalise:
 @click.option("--max-dim", type=int, default=None, help="Check the store was made for this cap.")
 @click.option("--grid", default=None, help=GRID_HELP)
 @_executor_options
+@storage_opts
 @guarded
 def resume_cmd(run: str, input_: str | None, key: str | None, eps: float | None, max_dim: int | None,
-               grid: str | None, progress: bool, **how: Any) -> None:
+               grid: str | None, progress: bool, store_options: dict[str, Any] | None,
+               **how: Any) -> None:
     """Continue RUN: compute only the tasks without a valid commit, then reduce."""
     from .runs import open_run
     from .store import fingerprint
 
     grid_values = _grid(grid)
     where = _where(**how)
-    store = open_run(_store_url(run))
+    store = open_run(_store_url(run), storage_options=store_options)
     if eps is not None or max_dim is not None or input_ is not None:
         from .sources import read_points
 
@@ -544,12 +632,13 @@ def resume_cmd(run: str, input_: str | None, key: str | None, eps: float | None,
 @main.command("status")
 @click.argument("run", metavar="RUN")
 @click.option("--json", "as_json", is_flag=True, help="Print as JSON.")
+@storage_opts
 @guarded
-def status_cmd(run: str, as_json: bool) -> None:
+def status_cmd(run: str, as_json: bool, store_options: dict[str, Any] | None) -> None:
     """Tasks done, pending and failed, cost-weighted progress and a time estimate."""
     from .runs import open_run, status
 
-    info = status(open_run(_store_url(run)))
+    info = status(open_run(_store_url(run), storage_options=store_options))
     if as_json:
         click.echo(json.dumps(info, indent=2))
         return
@@ -576,13 +665,15 @@ def status_cmd(run: str, as_json: bool) -> None:
               help="Output format (default: from --out's ending, else csv).")
 @click.option("--grid", default=None, help="Export a curve's samples on START:STOP:COUNT instead of its exact steps.")
 @click.option("--out", "out", default=None, help="File to write (default: stdout, csv/json only).")
+@storage_opts
 @guarded
-def export_cmd(run: str, fmt: str | None, grid: str | None, out: str | None) -> None:
+def export_cmd(run: str, fmt: str | None, grid: str | None, out: str | None,
+               store_options: dict[str, Any] | None) -> None:
     """Write the result of a complete RUN: a curve's exact steps or samples, or a feature matrix."""
     from .runs import open_run, read_result
 
     grid_values = _grid(grid)
-    store = open_run(_store_url(run))
+    store = open_run(_store_url(run), storage_options=store_options)
     formats = {"cloud": CURVE_FORMATS, "bands": ("csv", "json", "npz")}.get(
         store.kind, ("csv", "npy", "npz", "parquet"))
     if fmt is not None and fmt not in formats:
@@ -895,7 +986,7 @@ def demo_cmd(n_points: int, out: str, workers: int | None, seed: int) -> None:
     from .demo import demo_scenario
     from .jobs.cloud import create_or_open
 
-    where = _where(None, None, workers, None, False, 2, False, 60.0)
+    where = _where(None, None, workers, None, False, None, False, None)
     points, eps, story = demo_scenario(n_points, seed)
     say(story)
     store = create_or_open(_store_url(out), points, _cloud_params(eps, None))

@@ -1,8 +1,14 @@
 """Where the work runs: an embedded LocalCluster or an existing Dask scheduler.
 
-Connects, checks that the workers run the same chitally and numba and can open the run
-store, and refuses to dispatch a task whose estimated memory exceeds what a worker
-thread may use. Nothing here computes or writes.
+Connects (over TLS when given a `Security` or the ``distributed.comm.tls.*`` keys), waits
+for the workers an existing scheduler must have, checks that the workers run the same
+chitally and numba and can open the run store, and refuses to dispatch a task whose
+estimated memory exceeds what a worker thread may use. Nothing here computes or writes.
+
+chitally's defaults live in the packaged ``chitally.yaml``, loaded into the Dask
+configuration when this module is imported: a user's Dask config file or a
+``DASK_CHITALLY__...`` environment variable overrides them, and a keyword argument given
+to a function overrides both (`setting`, `seconds`).
 """
 
 from __future__ import annotations
@@ -19,13 +25,67 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any
 
+import dask.config
 import numba
+import yaml
+from dask.utils import parse_timedelta
 
 from . import __version__
 
+_DEFAULTS = os.path.join(os.path.dirname(__file__), "chitally.yaml")
+with open(_DEFAULTS, encoding="utf-8") as _f:
+    # Defaults only: values a user already set (config files, DASK_* variables) win.
+    dask.config.update_defaults(yaml.safe_load(_f))
+
+
+def setting(name: str, given: Any = None) -> Any:
+    """`given` if it is not None, else the Dask config value ``chitally.<name>``."""
+    return given if given is not None else dask.config.get(f"chitally.{name}")
+
+
+def seconds(name: str, given: float | str | None = None) -> float:
+    """A duration in seconds: `given`, else ``chitally.<name>`` ("90s", "5m" or a number)."""
+    value = parse_timedelta(setting(name, given), default="seconds")
+    if value is None or value < 0:
+        raise ValueError(f"chitally.{name} = {value!r}: a duration must be 0 or more")
+    return float(value)
+
 
 class ClusterError(RuntimeError):
-    """The cluster cannot run this job (versions, store access, memory)."""
+    """The cluster cannot run this job (unreachable, refused, too few workers, versions,
+    store access, memory)."""
+
+
+def make_security(ca_file: str | None = None, cert: str | None = None,
+                  key: str | None = None) -> Any:
+    """A distributed `Security` for TLS with these files, or None when none is given
+    (then the ``distributed.comm.tls.*`` keys of the Dask config apply, if any).
+
+    One certificate serves the client, and the scheduler and workers of a LocalCluster
+    started here; `key` may be omitted when `cert` holds the key too.
+
+    Raises
+    ------
+    ValueError
+        A certificate without its certificate authority, or the other way round.
+    """
+    if not (ca_file or cert or key):
+        return None
+    if not ca_file or not cert:
+        raise ValueError("TLS needs both --tls-ca-file (the authority that signed the "
+                         "scheduler's and workers' certificates) and --tls-cert (this "
+                         "client's certificate, with --tls-key unless it holds the key)")
+    from distributed import Security
+
+    return Security(tls_ca_file=ca_file, tls_client_cert=cert, tls_client_key=key,
+                    tls_scheduler_cert=cert, tls_scheduler_key=key,
+                    tls_worker_cert=cert, tls_worker_key=key, require_encryption=True)
+
+
+def _uses_tls(security: Any) -> bool:
+    if security is None:
+        return bool(dask.config.get("distributed.comm.tls.client.cert", None))
+    return bool(getattr(security, "tls_client_cert", None))
 
 
 @dataclass
@@ -166,22 +226,54 @@ def connect(
     threads: int | None = None,
     memory_limit: str | None = None,
     dashboard_address: str | None = None,
+    *,
+    security: Any = None,
+    wait_workers: int | None = None,
+    wait_timeout: float | None = None,
+    connect_timeout: float | None = None,
 ) -> Connection:
     """A Dask client: to `scheduler` / `scheduler_file` / DASK_SCHEDULER_ADDRESS if given,
     else to a new LocalCluster sized to this machine (one single-threaded worker process
     per core by default: the kernel holds no GIL, but the store I/O around it does).
 
     The LocalCluster and its dashboard listen on 127.0.0.1 only; the dashboard takes port
-    8787 when it is free, else another free port (the link printed says which)."""
+    8787 when it is free, else another free port (the link printed says which). With
+    `security` (see `make_security`) it speaks TLS too.
+
+    An existing scheduler is given `connect_timeout` seconds to answer, then until
+    `wait_timeout` seconds to have `wait_workers` workers (each falls back to
+    ``chitally.scheduler.*`` in the Dask config; 0 workers means do not wait).
+
+    Raises
+    ------
+    ClusterError
+        The scheduler cannot be reached or refuses us (TLS), or too few workers came.
+    """
     from distributed import Client, LocalCluster
 
     scheduler = scheduler or os.environ.get("DASK_SCHEDULER_ADDRESS") or None
     if scheduler_file or scheduler:
-        client = Client(scheduler_file=scheduler_file) if scheduler_file else Client(scheduler)
+        where = (_address_in(scheduler_file) or f"the scheduler of {scheduler_file}"
+                 if scheduler_file else str(scheduler))
+        timeout = seconds("scheduler.connect-timeout", connect_timeout)
+        try:
+            if scheduler_file:
+                client = Client(scheduler_file=scheduler_file, security=security, timeout=timeout)
+            else:
+                client = Client(scheduler, security=security, timeout=timeout)
+        except Exception as exc:  # OSError, TimeoutError, ssl errors: all one line
+            raise ClusterError(_refusal(where, exc, security)) from None
+        try:
+            _wait_for_workers(client, where, int(setting("scheduler.wait-workers", wait_workers)),
+                              seconds("scheduler.wait-timeout", wait_timeout))
+        except BaseException:
+            client.close()
+            raise
         return Connection(client, None, _dashboard_of(client))
     cores = os.cpu_count() or 1
     n_workers = workers or cores
     threads = threads or max(1, cores // n_workers)
+    tls = security is not None and _uses_tls(security)
     with _children_ignore_sigint():
         cluster = LocalCluster(
             n_workers=n_workers,
@@ -191,13 +283,58 @@ def connect(
             dashboard_address=dashboard_address or f"127.0.0.1:{free_port()}",
             memory_limit=memory_limit or "auto",
             silence_logs=logging.WARNING,
+            **({"security": security, "protocol": "tls://"} if tls else {}),
         )
-    client = Client(cluster)
+    client = Client(cluster, security=security) if tls else Client(cluster)
     from .workerlogs import QuietTaskErrors
 
     # its workers write to our terminal, where the driver reports task errors itself
     client.register_plugin(QuietTaskErrors(), name=QuietTaskErrors.name)
     return Connection(client, cluster, _dashboard_of(client))
+
+
+def _address_in(scheduler_file: str | None) -> str | None:
+    import json
+
+    try:
+        with open(str(scheduler_file), encoding="utf-8") as f:
+            return str(json.load(f)["address"])
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
+
+
+def _refusal(where: str, exc: BaseException, security: Any) -> str:
+    """One line on why the scheduler at `where` could not be reached, and what to do."""
+    text = " ".join(str(exc).split()) or type(exc).__name__
+    tls = _uses_tls(security)
+    if where.startswith("tls://") and not tls:
+        hint = ("it speaks TLS: give --tls-ca-file, --tls-cert and --tls-key (or the "
+                "distributed.comm.tls.* keys of the Dask config)")
+    elif tls and not where.startswith("tls://") and "://" in where:
+        hint = "TLS certificates were given but the address is not tls://"
+    elif tls:
+        hint = ("check that --tls-cert was signed by the authority the scheduler trusts and "
+                "--tls-ca-file is the authority that signed the scheduler's certificate")
+    else:
+        hint = ("check the address, that the scheduler runs, and that this machine may "
+                "reach its port")
+    return f"cannot connect to the Dask scheduler at {where}: {text}; {hint}"
+
+
+def _wait_for_workers(client: Any, where: str, n: int, timeout: float) -> None:
+    if n <= 0:
+        return
+    try:
+        client.wait_for_workers(n, timeout=timeout)
+    except (TimeoutError, OSError) as exc:
+        try:
+            have = len(client.scheduler_info()["workers"])
+        except Exception:
+            have = 0
+        raise ClusterError(
+            f"{have} of {n} workers connected to the scheduler at {where} within "
+            f"{timeout:g} s; start workers (`dask worker {where}`), check that they can reach "
+            "the scheduler, or wait longer (--wait-timeout)") from exc
 
 
 def _worker_facts(store: Any) -> dict[str, Any]:

@@ -6,11 +6,17 @@ cluster is connected (or the serial executor chosen), the workers checked, the m
 the heaviest task compared with what a worker thread may use, and the tasks executed
 with the lease held and fenced. Every job kind runs through here; the CLI only parses
 and prints.
+
+Defaults not given here (retries, the window per worker thread, lost_after, the lease's
+staleness, waiting for workers) come from the Dask configuration's ``chitally`` section
+(see `chitally.cluster`). Storage options travel to the workers inside the pickled store
+and are never written into the store or the logs.
 """
 
 from __future__ import annotations
 
 import logging
+import math
 import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
@@ -144,8 +150,11 @@ class _Driver(Callbacks):
 def acquire_lease(store: RunStore, *, takeover: bool = False) -> Lease:
     """The store's writer lease for this process (raises `LeaseHeld` if another run has
     it), beating from now on: starting a cluster can take a while."""
+    from .cluster import seconds
+
     # the lease records host and pid itself: the owner names only what is running
-    lease = store.acquire_lease(f"chitally {store.kind} run", takeover=takeover)
+    lease = store.acquire_lease(f"chitally {store.kind} run", takeover=takeover,
+                                stale_after=seconds("lease.stale-after"))
     lease.start()
     return lease
 
@@ -208,16 +217,74 @@ def execute(store: RunStore, executor: Executor, *, events: Events | None = None
 class Where:
     """Where a run's tasks execute: in this process (`serial`), on an existing Dask
     scheduler (`scheduler`, `scheduler_file`, or DASK_SCHEDULER_ADDRESS), or on a
-    LocalCluster started here (the default) with `workers` processes of `threads`."""
+    LocalCluster started here (the default) with `workers` processes of `threads`.
+
+    `retries`, `lost_after`, `wait_workers` and `wait_timeout` left at None take the
+    Dask config's ``chitally`` values. `security` is a distributed `Security` (see
+    `chitally.cluster.make_security`); None means the ``distributed.comm.tls.*`` config
+    keys, if any. `storage_options` are the workers' options for the run store when they
+    reach it otherwise than this process (another endpoint, say); None means the
+    store's own, which travel with it.
+    """
 
     scheduler: str | None = None
     scheduler_file: str | None = None
     workers: int | None = None
     threads: int | None = None
     serial: bool = False
-    retries: int = 2
+    retries: int | None = None
     takeover: bool = False
-    lost_after: float = 60.0
+    lost_after: float | None = None
+    storage_options: Mapping[str, Any] | None = None
+    security: Any = None
+    wait_workers: int | None = None
+    wait_timeout: float | None = None
+
+
+class _ClusterExecutor(DaskExecutor):
+    """The Dask executor with ``chitally.window-factor`` tasks in flight per live worker
+    thread (at least that many in all), recounted at most once a second."""
+
+    def __init__(self, client: Any, *, factor: float, **kwargs: Any) -> None:
+        super().__init__(client, **kwargs)
+        self.factor = float(factor)
+        self._scaled_at = -math.inf
+        self._scaled = max(1, math.ceil(self.factor))
+
+    def window(self) -> int:
+        now = time.monotonic()
+        if now - self._scaled_at > 1.0:
+            try:
+                workers = self.client.scheduler_info(n_workers=-1)["workers"].values()
+            except TypeError:  # older distributed: no n_workers argument
+                workers = self.client.scheduler_info()["workers"].values()
+            except Exception:
+                workers = []
+            slots = sum(w.get("nthreads", 1) for w in workers)
+            self._scaled = max(1, math.ceil(self.factor), math.ceil(self.factor * slots))
+            self._scaled_at = now
+        return self._scaled
+
+
+class _OnWorkers:
+    """An executor that hands its workers the run store opened with other storage options."""
+
+    def __init__(self, inner: Executor, store: RunStore) -> None:
+        self.inner, self.store = inner, store
+
+    def run(self, store: RunStore, tasks: Any, events: Events) -> Outcome:
+        return self.inner.run(self.store, tasks, events)
+
+
+def _for_workers(store: RunStore, storage_options: Mapping[str, Any] | None) -> RunStore:
+    """`store` as the workers open it: with `storage_options` instead of the driver's."""
+    if storage_options is None:
+        return store
+    from .store.io import StoreIO
+
+    # a store pickles as (reattach, (io, root record)): the same record, another io
+    reattach, args = store.__reduce__()
+    return reattach(StoreIO(store.url, storage_options), *args[1:])
 
 
 def run(store: RunStore, where: Where = Where(), *, events: Events | None = None,
@@ -227,10 +294,11 @@ def run(store: RunStore, where: Where = Where(), *, events: Events | None = None
 
     A complete store is reported as it is, without a lease (a read-only store is fine).
     Otherwise the lease is taken before any cluster starts, so a refused run costs
-    nothing; the cluster is checked (versions, store access, memory per thread) before
-    dispatch; SIGINT and SIGTERM raise `Interrupted` after the lease is released and the
-    cluster closed.
+    nothing; an existing scheduler is given time for its workers to arrive; the cluster
+    is checked (versions, store access, memory per thread) before dispatch; SIGINT and
+    SIGTERM raise `Interrupted` after the lease is released and the cluster closed.
     """
+    from .cluster import check_workers, connect, preflight_memory, seconds, setting
     from .interrupts import signals_as_interrupts
 
     if store.is_complete():
@@ -241,22 +309,28 @@ def run(store: RunStore, where: Where = Where(), *, events: Events | None = None
         if result is not None:
             return RunReport(url=store.url, kind=store.kind, n_tasks=store.n_tasks,
                              done=store.n_tasks, result=result)
+    retries = int(setting("retries", where.retries))
     lease = acquire_lease(store, takeover=where.takeover)
     with signals_as_interrupts() as caught:
         try:
             with lease:
                 if where.serial:
-                    executor: Executor = SerialExecutor(threads=where.threads or 1, retries=where.retries)
+                    executor: Executor = SerialExecutor(threads=where.threads or 1, retries=retries)
                     return execute(store, executor, events=events, on_pending=on_pending, lease=lease)
-                from .cluster import check_workers, connect, preflight_memory
-
-                conn = connect(where.scheduler, where.scheduler_file, where.workers, where.threads)
+                conn = connect(where.scheduler, where.scheduler_file, where.workers, where.threads,
+                               security=where.security, wait_workers=where.wait_workers,
+                               wait_timeout=where.wait_timeout)
                 try:
                     if on_connect is not None:
                         on_connect(conn)
-                    check_workers(conn.client, store)
+                    remote = _for_workers(store, where.storage_options)
+                    check_workers(conn.client, remote)
                     preflight_memory(conn.client, int(store.task_memory().max(initial=0)))
-                    executor = DaskExecutor(conn.client, retries=where.retries, lost_after=where.lost_after)
+                    executor = _ClusterExecutor(conn.client, factor=setting("window-factor"),
+                                                retries=retries,
+                                                lost_after=seconds("lost-after", where.lost_after))
+                    if remote is not store:
+                        executor = _OnWorkers(executor, remote)
                     return execute(store, executor, events=events, on_pending=on_pending, lease=lease)
                 finally:
                     conn.close()

@@ -113,7 +113,12 @@ def open_zarr_store(url: str, storage_options: Mapping[str, Any] | None = None) 
         # LocalStore rather than fsspec's local filesystem: its create-only write is an
         # atomic link(2), where fsspec's is a check followed by a write.
         return LocalStore(rest)
-    return FsspecStore.from_url(url, storage_options=dict(storage_options or {}))
+    # No listings cache: fsspec answers exists() and size lookups from a cached listing
+    # of the parent folder, so a commit record, failure record or lease generation
+    # written by another process after a listing would stay invisible to this one (the
+    # reducer would set committed work aside, the lease fence would miss a takeover).
+    options = {**dict(storage_options or {}), "use_listings_cache": False}
+    return FsspecStore.from_url(url, storage_options=options)
 
 
 def local_path(url: str) -> str | None:
