@@ -157,12 +157,12 @@ class _Info:
 
 
 def test_window_follows_the_configured_factor_and_the_live_threads():
-    from chitally.runs import _ClusterExecutor
+    from chitally.execute import DaskExecutor
 
-    ex = _ClusterExecutor(_Info([2, 2, 2]), factor=4)
+    ex = DaskExecutor(_Info([2, 2, 2]), window_factor=4)
     assert ex.window() == 24
-    assert _ClusterExecutor(_Info([2, 2, 2]), factor=1.5).window() == 9
-    assert _ClusterExecutor(_Info([]), factor=3).window() == 3  # never zero
+    assert DaskExecutor(_Info([2, 2, 2]), window_factor=1.5).window() == 9
+    assert DaskExecutor(_Info([]), window_factor=3).window() == 3  # never zero
 
 
 def test_workers_may_open_the_store_with_their_own_storage_options(tmp_path, points):

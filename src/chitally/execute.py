@@ -12,6 +12,7 @@ Executors never print; progress, logging and checkpointing hang off `Events`.
 from __future__ import annotations
 
 import logging
+import math
 import socket
 import time
 import traceback
@@ -137,8 +138,8 @@ class SerialExecutor:
 class DaskExecutor:
     """Runs tasks on a Dask cluster through `client`.
 
-    At most `window` tasks are in flight; by default four per worker thread of the live
-    cluster, recounted as workers come and go. Keys are
+    At most `window` tasks are in flight; by default `window_factor` per worker thread of
+    the live cluster, recounted (at most once a second) as workers come and go. Keys are
     ``chitally-<kind>-<plan digest>-<store hash>-<task>[-r<retry>]`` so the dashboard
     groups them by run; tasks arrive heaviest first and keep that priority. When the
     client closes, or no worker is connected for `lost_after` seconds, `SchedulerLost`
@@ -146,15 +147,17 @@ class DaskExecutor:
     """
 
     def __init__(self, client: Any, retries: int = 2, window: int | None = None, threads: int = 1,
-                 task_function: TaskFunction | None = None, lost_after: float = 60.0) -> None:
+                 task_function: TaskFunction | None = None, lost_after: float = 60.0,
+                 window_factor: float = 4.0) -> None:
         self.client = client
         self.retries = retries
         self.threads = threads
         self.fixed_window = window
+        self.window_factor = float(window_factor)
         self.task_function = task_function
         self.lost_after = float(lost_after)
         self._window_at = -1.0
-        self._window = 4
+        self._window = max(1, math.ceil(self.window_factor))
 
     def window(self) -> int:
         if self.fixed_window is not None:
@@ -168,7 +171,8 @@ class DaskExecutor:
             except Exception:
                 workers = []
             slots = sum(w.get("nthreads", 1) for w in workers)
-            self._window = max(4, 4 * slots)
+            factor = self.window_factor
+            self._window = max(1, math.ceil(factor), math.ceil(factor * slots))
             self._window_at = now
         return self._window
 

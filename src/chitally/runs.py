@@ -16,7 +16,6 @@ and are never written into the store or the logs.
 from __future__ import annotations
 
 import logging
-import math
 import time
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
@@ -241,31 +240,6 @@ class Where:
     wait_timeout: float | None = None
 
 
-class _ClusterExecutor(DaskExecutor):
-    """The Dask executor with ``chitally.window-factor`` tasks in flight per live worker
-    thread (at least that many in all), recounted at most once a second."""
-
-    def __init__(self, client: Any, *, factor: float, **kwargs: Any) -> None:
-        super().__init__(client, **kwargs)
-        self.factor = float(factor)
-        self._scaled_at = -math.inf
-        self._scaled = max(1, math.ceil(self.factor))
-
-    def window(self) -> int:
-        now = time.monotonic()
-        if now - self._scaled_at > 1.0:
-            try:
-                workers = self.client.scheduler_info(n_workers=-1)["workers"].values()
-            except TypeError:  # older distributed: no n_workers argument
-                workers = self.client.scheduler_info()["workers"].values()
-            except Exception:
-                workers = []
-            slots = sum(w.get("nthreads", 1) for w in workers)
-            self._scaled = max(1, math.ceil(self.factor), math.ceil(self.factor * slots))
-            self._scaled_at = now
-        return self._scaled
-
-
 class _OnWorkers:
     """An executor that hands its workers the run store opened with other storage options."""
 
@@ -326,9 +300,9 @@ def run(store: RunStore, where: Where = Where(), *, events: Events | None = None
                     remote = _for_workers(store, where.storage_options)
                     check_workers(conn.client, remote)
                     preflight_memory(conn.client, int(store.task_memory().max(initial=0)))
-                    executor = _ClusterExecutor(conn.client, factor=setting("window-factor"),
-                                                retries=retries,
-                                                lost_after=seconds("lost-after", where.lost_after))
+                    executor = DaskExecutor(conn.client, window_factor=setting("window-factor"),
+                                            retries=retries,
+                                            lost_after=seconds("lost-after", where.lost_after))
                     if remote is not store:
                         executor = _OnWorkers(executor, remote)
                     return execute(store, executor, events=events, on_pending=on_pending, lease=lease)
