@@ -38,7 +38,7 @@ def _env() -> dict[str, str]:
     return env
 
 
-@pytest.mark.parametrize("name", ["single_cloud.py", "feature_matrix.py", "classifier.py",
+@pytest.mark.parametrize("name", ["single_cloud.py", "feature_matrix.py", "classifier.py", "compare_catalogues.py",
                                   "distributed_run.py"])
 def test_python_examples_run_as_scripts(name, tmp_path):
     res = subprocess.run([sys.executable, str(EXAMPLES / name)], cwd=tmp_path, env=_env(),
