@@ -23,7 +23,17 @@ BATCH = JobKind(
     unit="clouds",
 )
 
-KINDS: dict[str, JobKind] = {k.name: k for k in (CLOUD, BATCH)}
+# one large graph: vertex ranges with their halos, jump tables summed as for a cloud
+GRAPH = JobKind(
+    name="graph",
+    task="chitally.jobs.graph:compute_task",
+    fold="chitally.jobs.cloud:JumpSum",
+    outputs=(("values", "<f8"), ("jumps", "<i8")),
+    read="chitally.jobs.cloud:read_curve",
+    unit="vertices",
+)
+
+KINDS: dict[str, JobKind] = {k.name: k for k in (CLOUD, BATCH, GRAPH)}
 
 
 def kind_of(name: str) -> JobKind:
@@ -34,4 +44,4 @@ def kind_of(name: str) -> JobKind:
         raise ValueError(f"unknown job kind {name!r}; this chitally runs {sorted(KINDS)}") from None
 
 
-__all__ = ["BATCH", "CLOUD", "KINDS", "Fold", "JobKind", "TaskOutput", "kind_of"]
+__all__ = ["BATCH", "CLOUD", "GRAPH", "KINDS", "Fold", "JobKind", "TaskOutput", "kind_of"]
