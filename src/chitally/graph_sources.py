@@ -53,6 +53,7 @@ __all__ = [
     "read_graph",
     "read_matrix",
     "read_tu",
+    "read_vertex_values",
 ]
 
 #: File endings read as edge lists (also compressed, e.g. ``.csv.gz``, for the first three).
@@ -251,6 +252,35 @@ def read_matrix(source: str | os.PathLike[str]) -> np.ndarray:
     if src.fmt != "npy":
         raise InputError(f"{src.display}: a dense distance matrix is read from a .npy file")
     return validate_distance_matrix(np.asarray(_read_npy(src, None)), where=src.display)
+
+
+def read_vertex_values(source: str | os.PathLike[str]) -> np.ndarray:
+    """Read one value per vertex: a 1-D ``.npy`` array, or a text file of one number a
+    line (``.csv``, ``.tsv``, ``.txt``; a header line is allowed).
+
+    Returns
+    -------
+    ndarray of float64
+        As read; its length and finiteness are checked against the graph when used.
+
+    Raises
+    ------
+    InputError
+        For a missing or malformed file, or more than one value a line.
+    """
+    src = _locate(source)
+    if src.fmt == "npy":
+        arr = np.asarray(_read_npy(src, None))
+        if arr.ndim == 2 and arr.shape[1] == 1:
+            arr = arr[:, 0]
+        if arr.ndim != 1:
+            raise InputError(f"{src.display}: vertex values are a 1-D array, got shape {arr.shape}")
+        if arr.size and arr.dtype.kind not in "fiu":
+            raise InputError(f"{src.display}: vertex values must be real numbers, got dtype {arr.dtype}")
+        return arr.astype(np.float64)
+    if src.fmt != "text":
+        raise InputError(f"{src.display}: vertex values are read from a .npy file or a text file of one number a line")
+    return _one_column(_table(src), src.display).astype(np.float64)
 
 
 # --------------------------------------------------------------------- collections

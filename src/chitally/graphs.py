@@ -474,10 +474,11 @@ def filtered_graph(
         vals = sign * vertex_values(g, values) + 0.0
         return vertex_filtration(g, vals, None if thr is None else sign * thr)
     if isinstance(weights, str):
-        if weights not in g.edge_data:
+        # a graph without edges has every edge attribute, with no value
+        if weights not in g.edge_data and g.n_edges:
             known = ", ".join(repr(k) for k in g.edge_data) or "none"
             raise InputError(f"weights {weights!r}: the graph has no such edge attribute (its numeric edge attributes: {known})")
-        w = g.edge_data[weights]
+        w = g.edge_data.get(weights, np.zeros(0))
     else:
         w = _input_order_weights(graph, g, weights)
     vals = None if values is None else sign * vertex_values(g, values) + 0.0

@@ -294,14 +294,15 @@ def graph_fingerprint(col: GraphCollection, params: GraphBatchParams) -> dict[st
 
 
 def _check_data(col: GraphCollection, params: GraphBatchParams) -> None:
-    """Every graph has the node and edge attributes the parameters name."""
+    """Every graph has the node and edge attributes the parameters name (a graph
+    without vertices, or edges, has them all)."""
     column = _node_column(params)
     for g in col.graphs:
-        if column is not None and column not in g.node_data:
+        if column is not None and column not in g.node_data and g.n > 0:
             known = ", ".join(repr(k) for k in g.node_data) or "none"
             raise InputError(f"graph {g.name!r}: vertex values {column!r}: not 'degree', 'closeness', "
                              f"'heat:<t>' nor a node attribute of this graph (its numeric node attributes: {known})")
-        if params.weights is not None and params.weights not in g.edge_data:
+        if params.weights is not None and params.weights not in g.edge_data and g.n_edges > 0:
             known = ", ".join(repr(k) for k in g.edge_data) or "none"
             raise InputError(f"graph {g.name!r}: weights {params.weights!r}: no such edge attribute "
                              f"(its numeric edge attributes: {known})")
@@ -327,10 +328,11 @@ def graph_job_spec(col: GraphCollection, params: GraphBatchParams) -> JobSpec:
                               "edges": edges.astype(np.int32), "sizes": sizes}
     column = _node_column(params)
     if column is not None:
-        inputs["node_values"] = np.concatenate([col.graphs[i].node_data[column] for i in graph_ids] + [np.zeros(0)])
+        inputs["node_values"] = np.concatenate([col.graphs[i].node_data.get(column, np.zeros(0))
+                                                for i in graph_ids] + [np.zeros(0)])
     if params.weights is not None:
-        inputs["edge_weights"] = np.concatenate([col.graphs[i].edge_data[params.weights] for i in graph_ids]
-                                                + [np.zeros(0)])
+        inputs["edge_weights"] = np.concatenate([col.graphs[i].edge_data.get(params.weights, np.zeros(0))
+                                                 for i in graph_ids] + [np.zeros(0)])
     task_cost = np.array([costs[g].sum() for g in groups])
     memory = np.array([int(max(sizes[g].max() ** 2 // 4, 1) + 96 * m[g].max()) + 1_000_000 for g in groups],
                       dtype=np.int64)
