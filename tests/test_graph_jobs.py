@@ -279,6 +279,24 @@ def test_graph_feature_matrix_rows_are_the_curves_on_the_grid(tmp_path, options,
             assert np.all(row[grid > c.eps] == c.final)
 
 
+@pytest.mark.parametrize("values", ["degree", "closeness", "heat:0.5"])
+def test_rows_do_not_depend_on_how_many_graphs_are_counted_together(monkeypatch, values):
+    import chitally.jobs.batch as batch
+
+    graphs = collection(5, count=12)
+    grid = np.linspace(-1.0, 12.0, 27) if values == "degree" else np.linspace(-0.1, 1.1, 25)
+    together = feature_matrix(graphs, grid=grid, values=values, threads=1)
+    monkeypatch.setattr(batch, "_UNION_ENTRIES", 40)  # a few graphs at a time, or one
+    apart = feature_matrix(graphs, grid=grid, values=values, threads=1)
+    assert apart == together
+    for G, row in zip(graphs, together.values):
+        # each graph alone, in process (checked against networkx and gudhi in test_graphs.py)
+        c = graph_curve(G, values=values)
+        inside = (grid >= c.start) & (grid <= c.eps)
+        assert np.array_equal(row[inside], c.sample(grid[inside]))
+        assert np.all(row[grid < c.start] == 0) and np.all(row[grid > c.eps] == c.final)
+
+
 def test_normalised_graph_rows_divide_by_vertices_and_labels_travel(tmp_path):
     graphs = collection(3, count=6)
     grid = [0.0, 2.0, 4.0]

@@ -71,6 +71,7 @@ __all__ = [
     "graph_curve",
     "graph_jumps",
     "matrix_curve",
+    "owned_jumps",
     "matrix_filtration",
     "vertex_filtration",
     "vertex_values",
@@ -378,6 +379,26 @@ def graph_jumps(
     jumps : ndarray of int64
         Nonzero net jumps.
     """
+    values, jumps, _ = owned_jumps(graph, lo, hi, max_dim)
+    return merge_jumps(values, jumps)
+
+
+def owned_jumps(
+    graph: FilteredGraph, lo: int = 0, hi: int | None = None, max_dim: int | None = None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """`graph_jumps` before merging: one entry per counted vertex and edge of the range,
+    with the vertex that owns it (the vertex itself, an edge's lower endpoint).
+
+    The jumps owned by a connected component depend on that component alone, so one call
+    on a disjoint union of graphs gives every graph's table (entries grouped by owner).
+
+    Returns
+    -------
+    values : ndarray of float64
+    jumps : ndarray of int64
+    owners : ndarray of int64
+        In the order counted, not sorted; zero jumps included.
+    """
     n = graph.n_vertices
     hi = n if hi is None else int(hi)
     lo = int(lo)
@@ -386,28 +407,29 @@ def graph_jumps(
     cap = _check_max_dim(max_dim)
     vvals = graph.vertex_values[lo:hi]
     vkeep = vvals <= graph.threshold
+    vowners = np.arange(lo, hi, dtype=np.int64)[vkeep]
     stats = np.zeros(_STAT_SLOTS, dtype=np.int64)
     if graph.kind == "vertex":
         out = np.empty(hi - lo, dtype=np.int64)
         if hi > lo:
             lower_star_range(graph.offsets, graph.nbrs, graph.vrank, lo, hi, cap, out, stats)
-        return merge_jumps(vvals[vkeep], out[vkeep])
+        return vvals[vkeep], out[vkeep], vowners
     if graph.kind != "edge":
         raise ValueError(f"unknown filtration kind {graph.kind!r}")
     owned = (graph.edge_lo >= lo) & (graph.edge_lo < hi)
     if cap == 0:
-        evals, ejumps = np.empty(0), np.empty(0, dtype=np.int64)
+        owned[:] = False
+        ejumps = np.empty(0, dtype=np.int64)
     elif cap == 1:
-        evals = graph.edge_values[owned]
-        ejumps = np.full(evals.shape[0], -1, dtype=np.int64)
+        ejumps = np.full(int(owned.sum()), -1, dtype=np.int64)
     else:
         out = np.zeros(graph.edge_values.shape[0], dtype=np.int64)
         if hi > lo and graph.n_edges:
             count_range(graph.offsets, graph.nbrs, graph.erank, lo, hi, cap, out, stats)
-        evals, ejumps = graph.edge_values[owned], out[owned]
-    return merge_jumps(
-        [vvals[vkeep], evals], [np.ones(int(vkeep.sum()), dtype=np.int64), ejumps]
-    )
+        ejumps = out[owned]
+    return (np.concatenate([vvals[vkeep], graph.edge_values[owned]]),
+            np.concatenate([np.ones(vowners.shape[0], dtype=np.int64), ejumps]),
+            np.concatenate([vowners, graph.edge_lo[owned].astype(np.int64)]))
 
 
 def curve_domain(fg: FilteredGraph, start: float | None = None) -> tuple[float, float, int]:

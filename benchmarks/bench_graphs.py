@@ -1,0 +1,252 @@
+"""Graphs side by side: feature matrices of many graphs, and one large graph over tasks.
+
+(a) Many graphs: 10,000 random graphs G(n, m) of our own (n uniform in 100..500, mean
+    degree uniform in 5..20), degree filtration (lower star), uncapped, sampled on the
+    integer scales 0..48:
+
+    1. chitally `feature_matrix` in process (threads over groups of graphs);
+    2. the same on the embedded default (a 2-worker LocalCluster through a run store:
+       start, store, planning, tasks and reduction included);
+    3. the gudhi route on a sample of the graphs, scaled to all of them: a SimplexTree
+       with every vertex inserted at its degree and every edge at the larger degree of
+       its ends, `expansion` to a dimension above the largest clique (n), every simplex
+       read out into a curve, sampled on the grid.
+
+    Every sampled row is checked against gudhi's, and the engine's matrix against the
+    in-process one.
+
+(b) One large graph: a random geometric graph of our own (N points uniform in the unit
+    square, joined within the radius that gives mean degree 20: about 10 N edges;
+    vertices numbered along rows of cells of that radius, so a range of vertices is a
+    strip of the square and its halo a little wider), degree filtration capped at 3:
+    time and peak memory in process (`graph_curve`) and on a 2-worker LocalCluster (the
+    `graph` kind; driver peak RSS, and the largest worker peak RSS from the commit
+    records). Each measurement runs in a fresh process that loads the edges from disk.
+
+Run:
+
+    python benchmarks/bench_graphs.py                     # both parts, full size
+    python benchmarks/bench_graphs.py --part a --graphs 2000 --sample 40
+    python benchmarks/bench_graphs.py --part b --vertices 250000
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+# ----------------------------------------------------------------------- (a)
+
+
+def random_graphs(count: int, seed: int = 0) -> list:
+    """G(n, m) graphs: n uniform in 100..500, m = n * d / 2 for d uniform in 5..20."""
+    from chitally.graph_data import GraphData
+
+    rng = np.random.default_rng(seed)
+    out = []
+    for _ in range(count):
+        n = int(rng.integers(100, 501))
+        m = int(round(n * rng.uniform(5, 20) / 2))
+        keys = rng.choice(n * (n - 1) // 2, size=m, replace=False)
+        # pair number -> (i, j), i < j, numbering the upper triangle row by row
+        rows = np.arange(n, dtype=np.int64)
+        first = rows * n - rows * (rows + 1) // 2
+        i = np.searchsorted(first, keys, side="right") - 1
+        j = keys - first[i] + i + 1
+        out.append(GraphData.from_edges(np.stack([i, j], axis=1), n))
+    return out
+
+
+def gudhi_row(graph, grid: np.ndarray) -> np.ndarray:
+    import gudhi
+
+    deg = graph.degrees().astype(np.float64)
+    st = gudhi.SimplexTree()
+    for v in range(graph.n):
+        st.insert([v], filtration=float(deg[v]))
+    for u, v in graph.edges.tolist():
+        st.insert([u, v], filtration=float(max(deg[u], deg[v])))
+    st.expansion(graph.n)  # above the largest clique: every clique is a simplex
+    values, jumps = [], []
+    for simplex, value in st.get_simplices():
+        values.append(value)
+        jumps.append(1 if len(simplex) % 2 else -1)
+    values, jumps = np.asarray(values), np.asarray(jumps, dtype=np.int64)
+    order = np.argsort(values, kind="stable")
+    cum = np.concatenate([[0], np.cumsum(jumps[order])])
+    return cum[np.searchsorted(values[order], grid, side="right")]
+
+
+def part_a(args: argparse.Namespace) -> None:
+    from chitally import feature_matrix
+    from chitally.runs import Where, open_run
+
+    t0 = time.perf_counter()
+    graphs = random_graphs(args.graphs)
+    t_make = time.perf_counter() - t0
+    grid = np.arange(0.0, 49.0)
+    feature_matrix(graphs[:4], grid=grid, threads=1)  # compile or load the kernels
+    edges = sum(g.n_edges for g in graphs)
+    vertices = sum(g.n for g in graphs)
+
+    t0 = time.perf_counter()
+    inproc = feature_matrix(graphs, grid=grid)
+    t_inproc = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    inproc1 = feature_matrix(graphs, grid=grid, threads=1)
+    t_inproc1 = time.perf_counter() - t0
+
+    tmp = Path(tempfile.mkdtemp(prefix="chitally-bench-graphs-"))
+    t0 = time.perf_counter()
+    engine = feature_matrix(graphs, grid=grid, store=str(tmp / "fm.zarr"), where=Where(workers=2))
+    t_engine = time.perf_counter() - t0
+    store = open_run(str(tmp / "fm.zarr"))
+    compute = sum(float(store.commits.record(t)["seconds"]) for t in range(store.n_tasks))
+    n_tasks = store.n_tasks
+    shutil.rmtree(tmp)
+
+    rng = np.random.default_rng(1)
+    sample = rng.choice(args.graphs, args.sample, replace=False)
+    t0 = time.perf_counter()
+    rows = [gudhi_row(graphs[i], grid) for i in sample]
+    t_gudhi_sample = time.perf_counter() - t0
+    t_gudhi = t_gudhi_sample * args.graphs / args.sample
+    t0 = time.perf_counter()
+    ours_sample = feature_matrix([graphs[i] for i in sample], grid=grid, threads=1)
+    t_ours_sample = time.perf_counter() - t0
+
+    same = all(np.array_equal(r, inproc.values[i]) for r, i in zip(rows, sample))
+    print(f"(a) {args.graphs} graphs G(n, m), n 100..500, mean degree 5..20 ({vertices} vertices, "
+          f"{edges} edges; made in {t_make:.1f} s), degree filtration, uncapped, {grid.size} scales")
+    print(f"  chitally feature_matrix in process, all threads: {t_inproc:.1f} s; one thread: {t_inproc1:.1f} s "
+          f"({1000 * t_inproc1 / args.graphs:.2f} ms a graph)")
+    print(f"  chitally batch on the embedded 2-worker LocalCluster (start, store, tasks, reduce): "
+          f"{t_engine:.1f} s ({n_tasks} tasks; {compute:.1f} s of task time)")
+    print(f"  gudhi route on {args.sample} graphs: {t_gudhi_sample:.2f} s "
+          f"({1000 * t_gudhi_sample / args.sample:.1f} ms a graph), scaled to all: {t_gudhi:.1f} s")
+    print(f"  same {args.sample} graphs, chitally one thread: {t_ours_sample:.3f} s "
+          f"({t_gudhi_sample / t_ours_sample:.1f}x)")
+    print(f"  ratio gudhi / chitally: in process {t_gudhi / t_inproc:.1f}x (one thread "
+          f"{t_gudhi / t_inproc1:.1f}x), on the cluster {t_gudhi / t_engine:.1f}x")
+    print(f"  rows identical to gudhi's on the sample: {same}; engine == in process: "
+          f"{engine == inproc}; one thread == all threads: {inproc1 == inproc}")
+
+
+# ----------------------------------------------------------------------- (b)
+
+
+def geometric_graph(n: int, degree: float, seed: int = 0) -> np.ndarray:
+    """Edges of a random geometric graph in the unit square (mean degree `degree`),
+    vertices numbered along rows of cells (row by row, left to right)."""
+    from scipy.spatial import cKDTree
+
+    rng = np.random.default_rng(seed)
+    pts = rng.random((n, 2))
+    r = float(np.sqrt(degree / (np.pi * n)))
+    cells = np.floor(pts / r).astype(np.int64)
+    pts = pts[np.lexsort((pts[:, 0], cells[:, 0], cells[:, 1]))]
+    return cKDTree(pts).query_pairs(r, output_type="ndarray").astype(np.int64)
+
+
+def peak_rss() -> int:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+
+
+def child_inproc(edges_path: str, n: int, cap: int) -> dict:
+    from chitally.graphs import graph_curve
+
+    edges = np.load(edges_path)
+    graph_curve(np.array([[0, 1], [1, 2], [0, 2]]), max_dim=cap)  # load the kernels
+    base = peak_rss()
+    t0 = time.perf_counter()
+    curve = graph_curve(edges, n=n, max_dim=cap)
+    return {"seconds": time.perf_counter() - t0, "peak": peak_rss(), "before": base,
+            "digest": curve.digest(), "final": curve.final}
+
+
+def child_engine(edges_path: str, n: int, cap: int, store: str) -> dict:
+    from chitally.graphs import filtered_graph
+    from chitally.jobs.graph import GraphParams, create_or_open
+    from chitally.runs import Where, run
+
+    edges = np.load(edges_path)
+    base = peak_rss()
+    t0 = time.perf_counter()
+    fg = filtered_graph(edges, n=n)
+    rs = create_or_open(store, fg, GraphParams.checked(max_dim=cap))
+    t_plan = time.perf_counter() - t0
+    del fg
+    report = run(rs, Where(workers=2, threads=1))
+    seconds = time.perf_counter() - t0
+    records = [rs.commits.record(t) for t in range(rs.n_tasks)]
+    return {"seconds": seconds, "plan_seconds": t_plan, "tasks": rs.n_tasks, "peak": peak_rss(),
+            "before": base, "worker_peak": max(int(r["peak_memory"]) for r in records),
+            "task_seconds": sum(float(r["seconds"]) for r in records),
+            "halo_vertices": rs.attrs["halo_vertices"], "digest": report.curve.digest(),
+            "final": report.curve.final}
+
+
+def part_b(args: argparse.Namespace) -> None:
+    tmp = Path(tempfile.mkdtemp(prefix="chitally-bench-graph-"))
+    try:
+        t0 = time.perf_counter()
+        edges = geometric_graph(args.vertices, 20.0)
+        np.save(tmp / "edges.npy", edges)
+        t_make = time.perf_counter() - t0
+        m = edges.shape[0]
+        del edges
+        me = [sys.executable, __file__, "--child"]
+        inproc = json.loads(subprocess.run(me + ["inproc", str(tmp / "edges.npy"), str(args.vertices), "3"],
+                                           check=True, capture_output=True, text=True).stdout.splitlines()[-1])
+        engine = json.loads(subprocess.run(me + ["engine", str(tmp / "edges.npy"), str(args.vertices), "3",
+                                                 str(tmp / "g.zarr")],
+                                           check=True, capture_output=True, text=True).stdout.splitlines()[-1])
+        gib = 2.0**30
+        print(f"(b) random geometric graph: {args.vertices} vertices, {m} edges (made in {t_make:.1f} s), "
+              "degree filtration, max_dim 3")
+        print(f"  in process (graph_curve): {inproc['seconds']:.1f} s, peak RSS {inproc['peak'] / gib:.2f} GiB "
+              f"({inproc['before'] / gib:.2f} GiB with the edges loaded, before)")
+        print(f"  2-worker LocalCluster (graph kind): {engine['seconds']:.1f} s in all ({engine['plan_seconds']:.1f} s "
+              f"filtration, plan and store; {engine['tasks']} tasks, {engine['task_seconds']:.1f} s of task time; "
+              f"halos {engine['halo_vertices'] / args.vertices:.2f} x the vertices)")
+        print(f"    driver peak RSS {engine['peak'] / gib:.2f} GiB ({engine['before'] / gib:.2f} GiB with the edges "
+              f"loaded); largest worker peak RSS {engine['worker_peak'] / gib:.2f} GiB")
+        print(f"  same curve: {inproc['digest'] == engine['digest']} (chi at the end {inproc['final']})")
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+
+
+def main() -> None:
+    if len(sys.argv) > 2 and sys.argv[1] == "--child":
+        what, rest = sys.argv[2], sys.argv[3:]
+        if what == "inproc":
+            out = child_inproc(rest[0], int(rest[1]), int(rest[2]))
+        else:
+            out = child_engine(rest[0], int(rest[1]), int(rest[2]), rest[3])
+        print(json.dumps(out))
+        return
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--part", choices=["a", "b", "all"], default="all")
+    ap.add_argument("--graphs", type=int, default=10_000)
+    ap.add_argument("--sample", type=int, default=100, help="graphs the gudhi route runs on")
+    ap.add_argument("--vertices", type=int, default=1_000_000)
+    args = ap.parse_args()
+    os.environ.setdefault("PYTHONWARNINGS", "ignore")
+    if args.part in ("a", "all"):
+        part_a(args)
+    if args.part in ("b", "all"):
+        part_b(args)
+
+
+if __name__ == "__main__":
+    main()
