@@ -181,7 +181,7 @@ def gather_halo(kind: str, lo: int, hi: int, take: Callable[[str, Any], np.ndarr
     """The halo of the vertex range [lo, hi), read from a filtered graph's arrays by `take`.
 
     ``take(name, selection)`` returns ``array[selection]`` of the array `name` of
-    `FILTRATION_ARRAYS` (a slice, or a sorted int64 index array, possibly empty). In
+    `FILTRATION_ARRAYS` (a slice, or a sorted int64 index array, never empty). In
     memory it indexes the arrays (`FilteredGraph.halo`); a run store's task reads them
     from the store, so a task never holds more of the graph than its halo.
 
@@ -204,8 +204,11 @@ def gather_halo(kind: str, lo: int, hi: int, take: Callable[[str, Any], np.ndarr
     own = take("offsets", slice(lo, hi + 1))
     around = take("nbrs", slice(int(own[0]), int(own[-1])))
     ids = np.unique(np.concatenate([np.arange(lo, hi, dtype=np.int64), around.astype(np.int64)]))
-    starts = take("offsets", ids).astype(np.int64)
-    deg = take("offsets", ids + 1).astype(np.int64) - starts
+    # each halo vertex's row bounds, in one read
+    bounds = np.union1d(ids, ids + 1)
+    row_ends = take("offsets", bounds).astype(np.int64)
+    starts = row_ends[np.searchsorted(bounds, ids)]
+    deg = row_ends[np.searchsorted(bounds, ids + 1)] - starts
     total = int(deg.sum())
     # every CSR entry of every halo vertex, row by row (rows ascending, so sorted)
     entry = np.repeat(starts - np.concatenate([[0], np.cumsum(deg)[:-1]]), deg) + np.arange(total)

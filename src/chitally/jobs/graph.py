@@ -206,6 +206,11 @@ def create_or_open(url: str, fg: FilteredGraph, params: GraphParams, *,
 # ------------------------------------------------------------------------ the task
 
 
+#: A gather reads the slice between its first and last index when that slice is at most
+#: this many times longer than the gather (zarr decompresses whole chunks either way).
+_DENSE = 8
+
+
 def task_halo(store: RunStore, i: int) -> tuple[FilteredGraph, int, int]:
     """Task `i`'s halo, read from the store, and its owned range in local ids."""
     lo = int(store.read_input("range_lo", slice(i, i + 1), task=i)[0])
@@ -214,6 +219,11 @@ def task_halo(store: RunStore, i: int) -> tuple[FilteredGraph, int, int]:
     threshold = math.inf if a["threshold"] is None else float(a["threshold"])
 
     def take(name: str, sel: Any) -> np.ndarray:
+        if isinstance(sel, np.ndarray):
+            a, b = int(sel[0]), int(sel[-1]) + 1  # sorted
+            if b - a <= _DENSE * sel.shape[0]:
+                # indices close together: one slice read, then numpy picks
+                return store.read_input(name, slice(a, b), task=i)[sel - a]
         return store.read_input(name, sel, task=i)
 
     return gather_halo(a["filtration"], lo, hi, take, threshold)
