@@ -265,7 +265,7 @@ def vertex_filtration(graph: GraphData, values: np.ndarray, threshold: float | N
     n = graph.n
     vals = vertex_values_array(values, n)
     thr = _check_threshold(threshold)
-    order = np.lexsort((np.arange(n), vals))
+    order = np.argsort(vals, kind="stable")  # (value, id): a stable sort keeps ids in order
     vrank = np.empty(n, dtype=np.int64)
     vrank[order] = np.arange(n)
     offsets = np.empty(n + 1, dtype=np.int64)

@@ -300,6 +300,7 @@ def graph_rows(graphs: Sequence[GraphData], values: str | None, weights: str | N
     order of vertices and edges, so ties break as in the graph alone.
     """
     out = np.zeros((len(graphs), grid.size + 1), dtype=np.int64)
+    flat = out.reshape(-1)  # a view: exact int64 sums at (graph, first grid point) cells
     # unions small enough for the caches: the kernels visit vertices in filtration
     # order, which jumps from graph to graph
     size = np.cumsum([g.n + 2 * g.n_edges for g in graphs])
@@ -311,9 +312,9 @@ def graph_rows(graphs: Sequence[GraphData], values: str | None, weights: str | N
         union, spec, starts = _union(graphs[a:b], values, weights)
         fg = filtered_graph(union, spec, weights, superlevel, threshold)
         v, j, owners = owned_jumps(fg, max_dim=max_dim)
-        item = a + np.searchsorted(starts, owners, side="right") - 1
+        item_of = np.repeat(np.arange(a, b, dtype=np.int64), np.diff(np.append(starts, union.n)))
         # a jump at v counts at every grid point t >= v: from the first one not below v on
-        np.add.at(out, (item, np.searchsorted(grid, v, side="left")), j)
+        np.add.at(flat, item_of[owners] * (grid.size + 1) + np.searchsorted(grid, v, side="left"), j)
     return np.cumsum(out, axis=1)[:, :grid.size]
 
 
