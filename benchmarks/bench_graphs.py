@@ -59,7 +59,7 @@ def random_graphs(count: int, seed: int = 0) -> list:
     out = []
     for _ in range(count):
         n = int(rng.integers(100, 501))
-        m = int(round(n * rng.uniform(5, 20) / 2))
+        m = round(n * rng.uniform(5, 20) / 2)
         keys = rng.choice(n * (n - 1) // 2, size=m, replace=False)
         # pair number -> (i, j), i < j, numbering the upper triangle row by row
         rows = np.arange(n, dtype=np.int64)

@@ -27,7 +27,13 @@ from chitally.graph_data import as_graph
 from chitally.graph_sources import read_tu
 from chitally.graphs import filtered_graph, graph_curve
 from chitally.jobs.batch import GraphBatchParams, create_or_open_graphs
-from chitally.jobs.graph import GraphParams, create_or_open, graph_run, split_ranges, vertex_costs
+from chitally.jobs.graph import (
+    GraphParams,
+    create_or_open,
+    graph_run,
+    split_ranges,
+    vertex_costs,
+)
 from chitally.runs import Where, execute, open_run, run, status
 from chitally.sources import InputError
 
@@ -140,7 +146,7 @@ def test_graph_run_equals_in_process_and_networkx(tmp_path, seed, kind, cap, tas
     assert store.n_tasks > 1 or tasks == 1
     # tasks own disjoint vertex ranges covering every vertex, heaviest first
     lo, hi = store.read_input("range_lo"), store.read_input("range_hi")
-    assert sorted(zip(lo.tolist(), hi.tolist()))[0][0] == 0
+    assert min(lo.tolist()) == 0
     assert np.array_equal(np.sort(lo)[1:], np.sort(hi)[:-1]) and hi.max() == G.number_of_nodes()
     assert np.all(np.diff(store.task_cost()) <= 0)
 
@@ -281,7 +287,7 @@ def test_graph_feature_matrix_rows_are_the_curves_on_the_grid(tmp_path, options,
 
 @pytest.mark.parametrize("values", ["degree", "closeness", "heat:0.5"])
 def test_rows_do_not_depend_on_how_many_graphs_are_counted_together(monkeypatch, values):
-    import chitally.jobs.batch as batch
+    from chitally.jobs import batch
 
     graphs = collection(5, count=12)
     grid = np.linspace(-1.0, 12.0, 27) if values == "degree" else np.linspace(-0.1, 1.1, 25)
@@ -357,7 +363,6 @@ def test_batch_of_graphs_resumes_only_the_failed_tasks(tmp_path):
     grid = np.arange(0.0, 12.0)
     ref = feature_matrix(graphs, grid=grid, max_dim=3)
     from chitally.graph_sources import graph_collection
-
     from chitally.jobs.batch import graph_cost
 
     total = sum(graph_cost(as_graph(G)) for G in graphs)

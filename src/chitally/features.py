@@ -31,9 +31,9 @@ from .clouds import Collection, read_collection, read_labels
 from .jobs.batch import (
     BatchParams,
     GraphBatchParams,
+    checked_grid,
     cloud_cost,
     cloud_rows,
-    checked_grid,
     graph_cost,
     graph_rows,
     group,

@@ -71,8 +71,8 @@ __all__ = [
     "graph_curve",
     "graph_jumps",
     "matrix_curve",
-    "owned_jumps",
     "matrix_filtration",
+    "owned_jumps",
     "vertex_filtration",
     "vertex_values",
 ]

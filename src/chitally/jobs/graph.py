@@ -26,7 +26,6 @@ from typing import Any
 import numpy as np
 
 from ..graphs import (
-    FILTRATION_ARRAYS,
     FilteredGraph,
     check_start,
     curve_domain,
