@@ -2,8 +2,9 @@
 
 The public API is small: `euler_curve` computes a point cloud's curve in process, `Curve`
 is the exact step function, `read_points` loads any supported input, `feature_matrix` and
-`CurveFeatures` turn many clouds into an exact feature matrix, and `chitally.runs` drives
-resumable runs on a run store. Attributes are imported on first use, so that
+`CurveFeatures` turn many clouds or graphs into an exact feature matrix, `graph_curve`
+and `graph_run` give the curve of a graph filtration (in process, or over tasks on the
+engine), and `chitally.runs` drives resumable runs on a run store. Attributes are imported on first use, so that
 ``import chitally`` (and the command line) starts fast.
 """
 
@@ -29,6 +30,8 @@ _LAZY = {
     "FeatureMatrix": "chitally.features",
     "CurveFeatures": "chitally.features",
     "open_run": "chitally.runs",
+    "graph_curve": "chitally.graphs",
+    "graph_run": "chitally.jobs.graph",
 }
 
 __all__ = sorted([*_LAZY, "__version__"])

@@ -32,6 +32,7 @@ EXIT_SIGTERM = 143
 
 GRID_HELP = "Also sample on START:STOP:COUNT evenly spaced scales."
 CURVE_FORMATS = ("csv", "json", "npz")
+_CURVE_KINDS = ("cloud", "graph")  # job kinds whose result is one curve
 
 
 def fail(message: str, code: int) -> NoReturn:
@@ -414,9 +415,10 @@ def _report(report: Any, grid: Any = None) -> None:
     if not report.complete:
         say(f"incomplete: fix the cause, then `chitally resume {report.url}`")
         sys.exit(EXIT_INCOMPLETE)
-    if report.kind == "cloud":
+    if report.kind in _CURVE_KINDS:
         c = report.result
-        say(f"curve: {c.n_jumps} jumps, chi(0) = {c.at(0.0)}, chi(eps) = {c.final}, "
+        end = "eps" if report.kind == "cloud" else f"{c.eps:g}"
+        say(f"curve: {c.n_jumps} jumps, chi({c.start:g}) = {c.at(c.start)}, chi({end}) = {c.final}, "
             f"digest {c.digest()[:16]}")
         _emit_curve(c, grid, None, None)
     elif report.kind == "bands":
@@ -556,31 +558,73 @@ def run_cmd(input: str, eps: float, max_dim: int | None, key: str | None, column
     _report(_run_store(store, where, progress), grid_values)
 
 
+_GRAPH_NAMES = {"max_dim": "--max-dim", "threshold": "--threshold", "task_cost": "--task-cost",
+                "grid": "--grid", "values": "--values", "weights": "--weights", "tasks": "--tasks",
+                "superlevel": "--superlevel", "start": "--start"}
+values_opt = click.option("--values", default=None,
+                          help="Vertex values: degree (the default without --weights), closeness, heat:T, "
+                               "or a node attribute.")
+weights_opt = click.option("--weights", default=None,
+                           help="Edge attribute to filter by (edge weights, flag filtration); an edge "
+                                "list's third column is 'weight'.")
+superlevel_opt = click.option("--superlevel", is_flag=True,
+                              help="Filter from the largest value down (the curve's scale is the negated values).")
+threshold_opt = click.option("--threshold", type=float, default=None,
+                             help="Count only simplices of value <= X (>= X with --superlevel).")
+
+
 @main.command("batch")
 @input_arg
-@eps_opt
-@click.option("--grid", required=True, help="Sample every curve on START:STOP:COUNT scales in [0, eps].")
+@click.option("--eps", type=float, default=None,
+              help="Point clouds: largest scale (> 0): edges join points at distance <= eps.")
+@click.option("--grid", required=True,
+              help="Sample every curve on START:STOP:COUNT scales (in [0, eps] for clouds).")
 @dim_opt
-@click.option("--normalise", is_flag=True, help="Divide each row by its cloud's number of points.")
+@click.option("--normalise", is_flag=True, help="Divide each row by its cloud's points (graph's vertices).")
 @click.option("--labels", default=None, type=click.Path(exists=True, dir_okay=False),
-              help="CSV of name,label lines; labels travel with the rows.")
+              help="CSV of name,label lines; labels travel with the rows (a graph collection's own "
+                   "labels otherwise).")
 @key_opt
+@click.option("--graphs", is_flag=True,
+              help="INPUT is a folder of edge lists (detected for the benchmark layout and for "
+                   ".edges/.edgelist files).")
+@values_opt
+@weights_opt
+@superlevel_opt
+@threshold_opt
 @cost_opt
 @click.option("--out", "out", required=True, help="The run store: a local path or an fsspec URL all workers reach.")
 @click.option("--discard", is_flag=True, help="Delete committed work of an unfinished store at --out.")
 @_executor_options
 @storage_opts
 @guarded
-def batch_cmd(input: str, eps: float, grid: str, max_dim: int | None, normalise: bool,
+def batch_cmd(input: str, eps: float | None, grid: str, max_dim: int | None, normalise: bool,
               labels: str | None, key: str | None, columns: str | None, index_col: str | None,
-              task_cost: float | None, out: str, discard: bool,
+              graphs: bool, values: str | None, weights: str | None, superlevel: bool,
+              threshold: float | None, task_cost: float | None, out: str, discard: bool,
               progress: bool, store_options: dict[str, Any] | None, **how: Any) -> None:
     """A feature matrix: every cloud of INPUT (a folder of point files, an .npz of
-    arrays, a 3-D .npy or a Zarr group) as its exact curve sampled on the grid."""
+    arrays, a 3-D .npy or a Zarr group), or every graph of INPUT (a folder in the graph
+    benchmark layout, or of edge lists), as its exact curve sampled on the grid. A
+    graph's row is 0 at scales below its smallest vertex value."""
+    from .graph_sources import is_graph_collection
+
+    grid_values = _grid(grid)
+    if graphs or is_graph_collection(input):
+        _graph_batch(input, eps, grid_values, max_dim, normalise, labels, key, columns, index_col,
+                     values, weights, superlevel, threshold, task_cost, out, discard, progress, how,
+                     store_options)
+        return
     from .clouds import Collection, read_collection, read_labels
     from .jobs.batch import BatchParams, create_or_open
 
-    grid_values = _grid(grid)
+    for option, value in (("--values", values), ("--weights", weights), ("--threshold", threshold),
+                          ("--superlevel", superlevel or None)):
+        if value is not None:
+            fail(f"{option} applies to graphs; {input} is read as point clouds (--graphs says otherwise)",
+                 EXIT_USAGE)
+    if eps is None:
+        fail("--eps is required for point clouds (the largest scale)", EXIT_USAGE)
     params = BatchParams.checked(eps, grid_values, max_dim, normalise, task_cost,
                                  names={**_NAMES, "grid": "--grid"})
     where = _where(**how)
@@ -594,6 +638,131 @@ def batch_cmd(input: str, eps: float, grid: str, max_dim: int | None, normalise:
     say(f"{len(col)} clouds in R^{col.dim}, {sum(c.shape[0] for c in col.clouds)} points, "
         f"{store.n_tasks} tasks")
     _report(_run_store(store, where, progress))
+
+
+def _graph_batch(input: str, eps: float | None, grid_values: Any, max_dim: int | None, normalise: bool,
+                 labels: str | None, key: str | None, columns: str | None, index_col: str | None,
+                 values: str | None, weights: str | None, superlevel: bool, threshold: float | None,
+                 task_cost: float | None, out: str, discard: bool, progress: bool,
+                 how: dict[str, Any], store_options: dict[str, Any] | None = None) -> None:
+    import numpy as np
+
+    from .clouds import read_labels
+    from .graph_sources import GraphCollection, graph_collection
+    from .jobs.batch import GraphBatchParams, create_or_open_graphs
+
+    if eps is not None:
+        fail("--eps is the largest scale of point clouds; graphs take --threshold", EXIT_USAGE)
+    if key is not None or columns is not None or index_col is not None:
+        fail("--key, --columns and --index-col apply to point files, not to graphs", EXIT_USAGE)
+    params = GraphBatchParams.checked(grid_values, "auto" if values is None else values, weights, max_dim,
+                                      superlevel, threshold, normalise, task_cost, names=_GRAPH_NAMES)
+    where = _where(**how)
+    col = graph_collection(input)
+    if labels is not None:
+        names = [g.name for g in col.graphs]
+        col = GraphCollection(col.graphs, np.asarray(read_labels(labels, names), dtype=object), col.name)
+    store = create_or_open_graphs(_store_url(out), col, params, storage_options=store_options,
+                                  discard=discard)
+    say(f"{len(col)} graphs, {sum(g.n for g in col.graphs)} vertices, "
+        f"{sum(g.n_edges for g in col.graphs)} edges, {store.n_tasks} tasks"
+        f"{'' if col.labels is None else ', with labels'}")
+    _report(_run_store(store, where, progress))
+
+
+@main.command("graph")
+@input_arg
+@click.option("--values", default=None,
+              help="Vertex values: degree (the default without --weights), closeness, heat:T, a file "
+                   "of one value per vertex (.npy, or text one a line), or a node attribute.")
+@weights_opt
+@dim_opt
+@superlevel_opt
+@click.option("--threshold", type=float, default=None,
+              help="Count only simplices of value <= X (>= X with --superlevel); required for a "
+                   ".npy distance matrix.")
+@click.option("--grid", default=None,
+              help=GRID_HELP + " Scales below the smallest vertex value give 0 (the empty complex), above "
+                   "the largest the whole complex's value. With --out, the file holds the samples.")
+@click.option("--out", "out", default=None, help="Write the curve here (.csv, .json, .npz).")
+@click.option("--format", "fmt", type=click.Choice(CURVE_FORMATS), default=None,
+              help="Output format (default: from --out's ending).")
+@click.option("--run", "run_url", default=None,
+              help="Compute over tasks on the engine through this run store (a local path or an fsspec "
+                   "URL all workers reach): resumable, for large graphs.")
+@click.option("--tasks", type=int, default=None, help="With --run: about this many tasks (default: by size).")
+@click.option("--discard", is_flag=True, help="With --run: delete committed work of an unfinished store there.")
+@_executor_options
+@guarded
+def graph_cmd(input: str, values: str | None, weights: str | None, max_dim: int | None, superlevel: bool,
+              threshold: float | None, grid: str | None, out: str | None, fmt: str | None,
+              run_url: str | None, tasks: int | None, discard: bool, progress: bool, **how: Any) -> None:
+    """The curve of a filtration of the clique complex of the graph INPUT: an edge list
+    (.csv, .tsv, .txt, .edges, .edgelist), .graphml, .gml, .adjlist, a scipy sparse .npz,
+    or a dense distance matrix (.npy, with --threshold). In this process, or over tasks
+    on the engine with --run."""
+    from .graph_sources import read_graph, read_matrix, read_vertex_values
+    from .graphs import filtered_graph, matrix_filtration
+
+    grid_values = _grid(grid)
+    fmt = check_output(out, fmt)
+    matrix = input.lower().endswith(".npy")
+    if matrix:
+        for option, value in (("--values", values), ("--weights", weights), ("--superlevel", superlevel or None)):
+            if value is not None:
+                fail(f"{option} does not apply to a distance matrix (its entries are the edge values)", EXIT_USAGE)
+        if threshold is None:
+            fail("a distance matrix needs --threshold (the largest distance joined by an edge)", EXIT_USAGE)
+    spec: Any = "auto" if values is None else values
+    if isinstance(spec, str) and spec not in ("auto", "degree", "closeness") and not spec.startswith("heat:") \
+            and os.path.isfile(spec):
+        spec = read_vertex_values(spec)
+    if run_url is None:
+        for option, value in (("--tasks", tasks), ("--discard", discard or None)):
+            if value is not None:
+                fail(f"{option} applies with --run only", EXIT_USAGE)
+        from .graphs import graph_curve, matrix_curve
+
+        if matrix:
+            curve = matrix_curve(read_matrix(input), threshold, max_dim)
+        else:
+            curve = graph_curve(read_graph(input), spec, weights, max_dim, superlevel, threshold)
+        say(f"{input}: {curve.n_points} vertices counted, max_dim "
+            f"{max_dim if max_dim is not None else 'none'}; {curve.n_jumps} jumps on "
+            f"[{curve.start:g}, {curve.eps:g}], chi({curve.start:g}) = {curve.chi[0]}, "
+            f"chi({curve.eps:g}) = {curve.final}")
+        _emit_curve(_graph_domain(curve, grid_values, threshold), grid_values, out, fmt)
+        return
+    from .jobs.graph import GraphParams, create_or_open
+
+    if matrix:
+        params = GraphParams.checked(None, "matrix", max_dim, False, threshold, None, tasks, names=_GRAPH_NAMES)
+    else:
+        params = GraphParams.checked(spec, weights, max_dim, superlevel, threshold, None, tasks,
+                                     names=_GRAPH_NAMES)
+    where = _where(**how)
+    fg = matrix_filtration(read_matrix(input), threshold) if matrix else \
+        filtered_graph(read_graph(input), spec, weights, superlevel, threshold)
+    store = create_or_open(_store_url(run_url), fg, params, discard=discard)
+    say(f"{input}: {fg.n_vertices} vertices, {fg.n_edges} edges, {store.n_tasks} tasks")
+    report = _run_store(store, where, progress)
+    _report(report)
+    _emit_curve(_graph_domain(report.result, grid_values, threshold), grid_values, out, fmt)
+
+
+def _graph_domain(curve: Any, grid: Any, threshold: float | None) -> Any:
+    """A graph's curve on a domain that holds the grid: 0 below its smallest vertex value
+    (the empty complex) and, without a threshold, its final value above its largest."""
+    if grid is None:
+        return curve
+    lo = min(curve.start, float(grid[0]))
+    hi = curve.eps if threshold is not None else max(curve.eps, float(grid[-1]))
+    if (lo, hi) == (curve.start, curve.eps):
+        return curve
+    from .curve import Curve
+
+    values, jumps = curve.jumps()
+    return Curve.from_jumps(values, jumps, eps=hi, max_dim=curve.max_dim, n_points=curve.n_points, start=lo)
 
 
 @main.command("resume")
@@ -674,8 +843,9 @@ def export_cmd(run: str, fmt: str | None, grid: str | None, out: str | None,
 
     grid_values = _grid(grid)
     store = open_run(_store_url(run), storage_options=store_options)
-    formats = {"cloud": CURVE_FORMATS, "bands": ("csv", "json", "npz")}.get(
-        store.kind, ("csv", "npy", "npz", "parquet"))
+    formats = (CURVE_FORMATS if store.kind in _CURVE_KINDS
+               else ("csv", "json", "npz") if store.kind == "bands"
+               else ("csv", "npy", "npz", "parquet"))
     if fmt is not None and fmt not in formats:
         fail(f"--format {fmt}: a {store.kind} result exports as {', '.join(formats)}", EXIT_USAGE)
     fmt = check_output(out, fmt, formats) or "csv"

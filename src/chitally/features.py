@@ -1,10 +1,19 @@
-"""Feature matrices: exact curves of many clouds sampled on a grid, for machine learning.
+"""Feature matrices: exact curves of many clouds or graphs sampled on a grid, for
+machine learning.
 
-`feature_matrix` computes one row per cloud, in this process (threads over groups of
-clouds) or through a run store on the engine (resumable, on any cluster). `CurveFeatures`
-is the same as a scikit-learn transformer. Both share the batch kind's computation, so
-a row is always ``euler_curve(cloud).sample(grid)`` exactly (divided by the cloud's size
-when normalised).
+`feature_matrix` computes one row per cloud or graph, in this process (threads over
+groups of items) or through a run store on the engine (resumable, on any cluster).
+`CurveFeatures` is the same as a scikit-learn transformer. Both share the batch kind's
+computation, so a cloud's row is always ``euler_curve(cloud).sample(grid)`` exactly
+(divided by the cloud's size when normalised), and a graph's row is
+``graph_curve(graph, ...).sample(grid)`` wherever the grid lies in that graph's domain,
+0 below it (the empty complex) and the whole complex's value above it.
+
+Graphs or clouds? Graphs when ``graphs=True``; when the items are graph objects
+(networkx graphs, scipy sparse matrices, `GraphData`, a `GraphCollection`) or a folder
+of graphs (the benchmark layout with its ``<NAME>_A.txt``, or only ``.edges`` /
+``.edgelist`` files); or when no eps is given (clouds need one). Edge arrays given with
+an eps are read as clouds: pass ``graphs=True``.
 """
 
 from __future__ import annotations
@@ -19,7 +28,17 @@ from typing import Any
 import numpy as np
 
 from .clouds import Collection, read_collection, read_labels
-from .jobs.batch import BatchParams, cloud_cost, cloud_rows, group
+from .jobs.batch import (
+    BatchParams,
+    GraphBatchParams,
+    checked_grid,
+    cloud_cost,
+    cloud_rows,
+    graph_cost,
+    graph_rows,
+    group,
+)
+from .validate import InputError
 
 try:  # scikit-learn is optional: the transformer needs it, the matrix does not
     from sklearn.base import BaseEstimator, TransformerMixin
@@ -35,17 +54,19 @@ def grid_names(grid: Sequence[float]) -> list[str]:
 
 @dataclass(frozen=True, eq=False)
 class FeatureMatrix:
-    """A feature matrix: one row per cloud (its curve on the grid), with names.
+    """A feature matrix: one row per cloud or graph (its curve on the grid), with names.
 
     Attributes
     ----------
-    values : ndarray, (clouds, grid)
-        int64 counts, or float64 divided by each cloud's number of points.
+    values : ndarray, (items, grid)
+        int64 counts, or float64 divided by each item's size.
     names : tuple of str
     grid : ndarray of float64
     labels : tuple or None
     sizes : ndarray of int64
-        Points per cloud.
+        Points per cloud, or vertices per graph.
+    eps : float or None
+        The clouds' largest scale (None for graphs).
     """
 
     values: np.ndarray
@@ -53,19 +74,19 @@ class FeatureMatrix:
     grid: np.ndarray
     labels: tuple[Any, ...] | None
     sizes: np.ndarray
-    eps: float
+    eps: float | None
     max_dim: int | None
     normalised: bool
 
     @staticmethod
     def of_counts(counts: np.ndarray, sizes: np.ndarray, *, names: Sequence[str], labels: Sequence[Any] | None,
-                  grid: Sequence[float], eps: float, max_dim: int | None, normalise: bool) -> FeatureMatrix:
+                  grid: Sequence[float], eps: float | None, max_dim: int | None, normalise: bool) -> FeatureMatrix:
         counts = np.asarray(counts, dtype=np.int64)
         sizes = np.asarray(sizes, dtype=np.int64)
         values = counts / sizes[:, None] if normalise else counts
         return FeatureMatrix(values, tuple(names), np.asarray(grid, np.float64),
-                             None if labels is None else tuple(labels), sizes, float(eps), max_dim,
-                             bool(normalise))
+                             None if labels is None else tuple(labels), sizes,
+                             None if eps is None else float(eps), max_dim, bool(normalise))
 
     @property
     def columns(self) -> list[str]:
@@ -113,46 +134,129 @@ class FeatureMatrix:
         return path
 
 
-def _in_process(col: Collection, params: BatchParams, threads: int | None) -> np.ndarray:
-    grid = np.asarray(params.grid, np.float64)
-    sizes = np.array([c.shape[0] for c in col.clouds])
+def _in_groups(costs: np.ndarray, rows: Any, n_grid: int, threads: int | None) -> np.ndarray:
+    """``rows(ids)`` over groups of items of about equal cost, on `threads` threads."""
     threads = threads or os.cpu_count() or 1
-    costs = cloud_cost(sizes)
     groups = group(costs, max(float(costs.sum()) / (8 * threads), float(costs.max())))
-    out = np.empty((len(col), grid.size), dtype=np.int64)
+    out = np.empty((costs.size, n_grid), dtype=np.int64)
 
     def work(ids: np.ndarray) -> None:
-        out[ids] = cloud_rows([col.clouds[i] for i in ids], params.eps, params.max_dim, grid)
+        out[ids] = rows(ids)
 
     if threads == 1 or len(groups) == 1:
         for g in groups:
             work(g)
-    else:  # the kernel releases the GIL: threads share the cores without copies
+    else:  # the kernels release the GIL: threads share the cores without copies
         with ThreadPoolExecutor(threads) as pool:
             list(pool.map(work, groups))
     return out
 
 
-def feature_matrix(clouds: Any, eps: float, grid: Any, max_dim: int | None = None,
-                   normalise: bool = False, *, names: Sequence[str] | None = None,
+def _in_process(col: Collection, params: BatchParams, threads: int | None) -> np.ndarray:
+    grid = np.asarray(params.grid, np.float64)
+    costs = cloud_cost(np.array([c.shape[0] for c in col.clouds]))
+    return _in_groups(costs, lambda ids: cloud_rows([col.clouds[i] for i in ids], params.eps,
+                                                    params.max_dim, grid), grid.size, threads)
+
+
+def _graphs_in_process(col: Any, params: GraphBatchParams, threads: int | None) -> np.ndarray:
+    from .jobs.batch import _check_data
+
+    _check_data(col, params)
+    grid = np.asarray(params.grid, np.float64)
+    costs = np.array([graph_cost(g) for g in col.graphs])
+    return _in_groups(costs, lambda ids: graph_rows([col.graphs[i] for i in ids], params.values,
+                                                    params.weights, params.max_dim, params.superlevel,
+                                                    params.threshold, grid), grid.size, threads)
+
+
+def _are_graphs(items: Any, eps: Any, graphs: bool | None) -> bool:
+    if graphs is not None:
+        return bool(graphs)
+    from .graph_sources import is_graph_collection
+
+    return is_graph_collection(items) or eps is None
+
+
+#: The graph options and their defaults (clouds take none of them).
+_GRAPH_DEFAULTS: dict[str, Any] = {"values": "auto", "weights": None, "superlevel": False, "threshold": None}
+
+
+def _graph_options_given(options: Mapping[str, Any]) -> list[str]:
+    def default(k: str) -> bool:
+        d, v = _GRAPH_DEFAULTS[k], options[k]
+        return isinstance(v, str) and v == d if isinstance(d, str) else v is d
+
+    return [k for k in _GRAPH_DEFAULTS if not default(k)]
+
+
+def _graph_matrix(items: Any, grid: Any, max_dim: Any, normalise: bool, options: Mapping[str, Any],
+                  names: Sequence[str] | None, labels: Any, store: str | None, where: Any,
+                  threads: int | None, storage_options: Mapping[str, Any] | None) -> FeatureMatrix:
+    from .graph_sources import GraphCollection, graph_collection
+
+    params = GraphBatchParams.checked(grid, max_dim=max_dim, normalise=normalise, **options)
+    col = graph_collection(items, names=names)
+    if labels is not None:
+        col = GraphCollection(col.graphs, np.asarray(read_labels(labels, [g.name for g in col.graphs]),
+                                                     dtype=object), col.name)
+    if store is None:
+        counts = _graphs_in_process(col, params, threads)
+        lab = None if col.labels is None else [x.item() if hasattr(x, "item") else x for x in col.labels]
+        return FeatureMatrix.of_counts(counts, [g.n for g in col.graphs], names=[g.name for g in col.graphs],
+                                       labels=lab, grid=params.grid, eps=None, max_dim=params.max_dim,
+                                       normalise=params.normalise)
+    from .jobs.batch import create_or_open_graphs
+
+    rs = create_or_open_graphs(store, col, params, storage_options=storage_options)
+    return _run_matrix(rs, where)
+
+
+def _run_matrix(rs: Any, where: Any) -> FeatureMatrix:
+    from .runs import Where, run
+
+    report = run(rs, where if where is not None else Where())
+    if not report.complete:
+        raise RuntimeError(f"{len(report.failed)} tasks failed; `chitally resume {rs.url}` continues")
+    return report.result
+
+
+def feature_matrix(clouds: Any, eps: float | None = None, grid: Any = None, max_dim: int | None = None,
+                   normalise: bool = False, *, values: Any = "auto", weights: Any = None,
+                   superlevel: bool = False, threshold: float | None = None, graphs: bool | None = None,
+                   names: Sequence[str] | None = None,
                    labels: Any = None, store: str | None = None, where: Any = None,
                    threads: int | None = None, storage_options: Mapping[str, Any] | None = None) -> FeatureMatrix:
-    """The exact feature matrix of a collection of clouds.
+    """The exact feature matrix of a collection of clouds or graphs.
 
     Parameters
     ----------
-    clouds : sequence of arrays, 3-D array, or path
-        The clouds (sizes may differ; one dimension), see `chitally.clouds.read_collection`.
+    clouds : sequence of arrays, 3-D array, path, or graphs
+        The clouds (sizes may differ; one dimension), see `chitally.clouds.read_collection`;
+        or the graphs: a sequence of networkx graphs, edge arrays, scipy sparse matrices
+        or `GraphData`, a `GraphCollection`, or a folder (the benchmark layout, or edge
+        lists), see `chitally.graph_sources.graph_collection`. Which of the two: see
+        the module's description.
     eps : float
-        Largest scale of every cloud's Rips filtration.
+        Clouds: largest scale of every cloud's Rips filtration. Not for graphs.
     grid : sequence of float or "START:STOP:COUNT"
-        Strictly increasing scales in [0, eps] where each curve is sampled.
+        Strictly increasing scales where each curve is sampled: in [0, eps] for clouds;
+        any for graphs (in the curve's scale, so negated with ``superlevel``), where a
+        row holds 0 at scales below the graph's smallest vertex value (the empty
+        complex) and the whole clique complex's value above its largest value.
     max_dim : int, optional
         Simplex dimension cap.
     normalise : bool
-        Divide each row by its cloud's number of points (float64); counts otherwise (int64).
+        Divide each row by its cloud's number of points (its graph's number of
+        vertices) (float64); counts otherwise (int64).
+    values, weights, superlevel, threshold
+        Graphs only: the filtration of every graph, as for `chitally.graphs.graph_curve`
+        (``values`` a name or None, ``weights`` an edge attribute name or None).
+    graphs : bool, optional
+        Say the items are graphs (True) or clouds (False) instead of detecting it.
     names, labels : optional
-        Names for in-memory clouds; labels as a sequence or a CSV of ``name,label``.
+        Names for in-memory items; labels as a sequence or a CSV of ``name,label``
+        (a graph collection's own labels are used when none are given).
     store : str, optional
         A run store location: computed on the engine (resumable) with `where`
         (a `chitally.runs.Where`; default a LocalCluster), instead of in this process.
@@ -170,11 +274,25 @@ def feature_matrix(clouds: Any, eps: float, grid: Any, max_dim: int | None = Non
     >>> fm = feature_matrix([rng.random((20, 2)), rng.random((30, 2))], eps=0.3, grid=[0.0, 0.1, 0.3])
     >>> fm.values.shape, fm.values[:, 0].tolist()
     ((2, 3), [20, 30])
+    >>> path, triangle = np.array([[0, 1], [1, 2]]), np.array([[0, 1], [1, 2], [0, 2]])
+    >>> feature_matrix([path, triangle], grid=[0, 1, 2]).values.tolist()   # degree values
+    [[0, 2, 1], [0, 0, 1]]
     """
     if isinstance(grid, str):
         from .curve import parse_grid
 
         grid = parse_grid(grid)
+    if grid is None:
+        raise InputError("grid is required: the scales every curve is sampled at")
+    options = {"values": values, "weights": weights, "superlevel": superlevel, "threshold": threshold}
+    if _are_graphs(clouds, eps, graphs):
+        if eps is not None:
+            raise InputError("eps is the largest scale of point clouds; graphs take threshold")
+        return _graph_matrix(clouds, grid, max_dim, normalise, options, names, labels, store, where,
+                             threads, storage_options)
+    given = _graph_options_given(options)
+    if given:
+        raise InputError(f"{given[0]} applies to graphs, not to point clouds")
     params = BatchParams.checked(eps, grid, max_dim, normalise)
     col = read_collection(clouds, names=names)
     if labels is not None:
@@ -185,31 +303,33 @@ def feature_matrix(clouds: Any, eps: float, grid: Any, max_dim: int | None = Non
                                        labels=col.labels, grid=params.grid, eps=params.eps,
                                        max_dim=params.max_dim, normalise=params.normalise)
     from .jobs.batch import create_or_open
-    from .runs import Where, run
 
     rs = create_or_open(store, col, params, storage_options=storage_options)
-    report = run(rs, where if where is not None else Where())
-    if not report.complete:
-        raise RuntimeError(f"{len(report.failed)} tasks failed; `chitally resume {rs.url}` continues")
-    return report.result
+    return _run_matrix(rs, where)
 
 
 class CurveFeatures(TransformerMixin, BaseEstimator):
-    """scikit-learn transformer: each cloud's exact curve sampled on a grid.
+    """scikit-learn transformer: each cloud's or graph's exact curve sampled on a grid.
 
     `fit` learns nothing (it validates the parameters); `transform` takes a list of
-    clouds of any sizes (one dimension) and returns a float64 matrix (clouds x grid).
+    clouds of any sizes (one dimension), or of graphs (see `feature_matrix` for which),
+    and returns a float64 matrix (items x grid).
 
     Parameters
     ----------
-    eps : float
+    eps : float, optional
+        Clouds: the largest scale (required for clouds; leave it None for graphs).
     grid : sequence of float or "START:STOP:COUNT"
     max_dim : int, optional
     normalise : bool
+    values, weights, superlevel, threshold
+        Graphs: the filtration, as for `chitally.graphs.graph_curve`.
+    graphs : bool, optional
+        Say the items are graphs (True) or clouds (False) instead of detecting it.
     n_jobs : int, optional
         Threads in this process (default: all cores).
     scheduler : str, optional
-        ``"local"`` for a LocalCluster, or a Dask scheduler address: the clouds then run
+        ``"local"`` for a LocalCluster, or a Dask scheduler address: the items then run
         as a batch job on the engine through a temporary run store.
 
     Examples
@@ -217,27 +337,52 @@ class CurveFeatures(TransformerMixin, BaseEstimator):
     >>> from sklearn.pipeline import make_pipeline              # doctest: +SKIP
     >>> from sklearn.svm import SVC                             # doctest: +SKIP
     >>> model = make_pipeline(CurveFeatures(eps=0.5, grid="0:0.5:32"), SVC())  # doctest: +SKIP
+    >>> graphs = make_pipeline(CurveFeatures(grid="0:20:21", values="degree"), SVC())  # doctest: +SKIP
     """
 
-    def __init__(self, eps: float = 1.0, grid: Any = "0:1:16", max_dim: int | None = None,
-                 normalise: bool = False, n_jobs: int | None = None, scheduler: str | None = None) -> None:
+    def __init__(self, eps: float | None = None, grid: Any = "0:1:16", max_dim: int | None = None,
+                 normalise: bool = False, values: Any = "auto", weights: str | None = None,
+                 superlevel: bool = False, threshold: float | None = None, graphs: bool | None = None,
+                 n_jobs: int | None = None, scheduler: str | None = None) -> None:
         self.eps = eps
         self.grid = grid
         self.max_dim = max_dim
         self.normalise = normalise
+        self.values = values
+        self.weights = weights
+        self.superlevel = superlevel
+        self.threshold = threshold
+        self.graphs = graphs
         self.n_jobs = n_jobs
         self.scheduler = scheduler
 
-    def _params(self) -> BatchParams:
+    def _grid(self) -> Any:
         grid = self.grid
         if isinstance(grid, str):
             from .curve import parse_grid
 
             grid = parse_grid(grid)
-        return BatchParams.checked(self.eps, grid, self.max_dim, self.normalise)
+        return grid
+
+    def _options(self) -> dict[str, Any]:
+        return {"values": self.values, "weights": self.weights, "superlevel": self.superlevel,
+                "threshold": self.threshold}
+
+    def _params(self, X: Any = None) -> BatchParams | GraphBatchParams:
+        if _are_graphs(X, self.eps, self.graphs):
+            if self.eps is not None:
+                raise InputError("eps is the largest scale of point clouds; graphs take threshold")
+            return GraphBatchParams.checked(self._grid(), max_dim=self.max_dim, normalise=self.normalise,
+                                            **self._options())
+        if self.eps is None:
+            raise InputError("eps is required for point clouds (the largest scale)")
+        given = _graph_options_given(self._options())
+        if given:
+            raise InputError(f"{given[0]} applies to graphs, not to point clouds")
+        return BatchParams.checked(self.eps, self._grid(), self.max_dim, self.normalise)
 
     def fit(self, X: Any, y: Any = None) -> CurveFeatures:
-        params = self._params()
+        params = self._params(X)
         self.n_features_out_ = len(params.grid)
         self.grid_ = np.asarray(params.grid)
         return self
@@ -246,27 +391,36 @@ class CurveFeatures(TransformerMixin, BaseEstimator):
         from sklearn.utils.validation import check_is_fitted
 
         check_is_fitted(self, "grid_")
-        params = self._params()
+        params = self._params(X)
         if self.scheduler is None:
-            col = read_collection(X)
-            counts = _in_process(col, params, self.n_jobs)
-            sizes = np.array([c.shape[0] for c in col.clouds], dtype=np.float64)
+            if isinstance(params, GraphBatchParams):
+                from .graph_sources import graph_collection
+
+                col = graph_collection(X)
+                counts = _graphs_in_process(col, params, self.n_jobs)
+                sizes = np.array([g.n for g in col.graphs], dtype=np.float64)
+            else:
+                col = read_collection(X)
+                counts = _in_process(col, params, self.n_jobs)
+                sizes = np.array([c.shape[0] for c in col.clouds], dtype=np.float64)
             return counts / sizes[:, None] if params.normalise else counts.astype(np.float64)
         import tempfile
 
         from .runs import Where
 
         where = Where() if self.scheduler == "local" else Where(scheduler=self.scheduler)
+        graphs = isinstance(params, GraphBatchParams)
         with tempfile.TemporaryDirectory(prefix="chitally-features-") as tmp:
-            fm = feature_matrix(X, params.eps, list(params.grid), params.max_dim, params.normalise,
-                                store=os.path.join(tmp, "run.zarr"), where=where)
+            fm = feature_matrix(X, None if graphs else params.eps, list(params.grid), params.max_dim,
+                                params.normalise, graphs=graphs, store=os.path.join(tmp, "run.zarr"),
+                                where=where, **(self._options() if graphs else {}))
         return fm.values.astype(np.float64)
 
     def get_feature_names_out(self, input_features: Any = None) -> np.ndarray:
-        return np.asarray(grid_names(self._params().grid), dtype=object)
+        return np.asarray(grid_names(checked_grid(self._grid())), dtype=object)
 
     def __sklearn_tags__(self) -> Any:
         tags = super().__sklearn_tags__()
-        tags.input_tags.two_d_array = False  # a list of clouds, not one 2-D array
+        tags.input_tags.two_d_array = False  # a list of clouds or graphs, not one 2-D array
         tags.requires_fit = True
         return tags

@@ -496,6 +496,8 @@ def vertex_values(graph: GraphData, spec: Any) -> np.ndarray:
             return heat_kernel_signature(graph, t)
         if spec in graph.node_data:
             return np.asarray(graph.node_data[spec], dtype=np.float64)
+        if n == 0:  # a graph without vertices has every node attribute, with no value
+            return np.zeros(0, dtype=np.float64)
         known = ", ".join(repr(k) for k in graph.node_data) or "none"
         raise InputError(
             f"vertex values {spec!r}: not 'degree', 'closeness', 'heat:<t>' nor a node attribute "

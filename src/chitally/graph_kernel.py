@@ -128,6 +128,32 @@ def _lower_degree(offsets, nbrs, vrank, v):
 
 
 @nb.njit(nogil=True, cache=True)
+def _lower_link_edges(offsets, nbrs, vrank, s, n, loc, low, pa, pj):
+    """The edges of G_v (v's lower neighbours are nbrs[s:s+n], loc maps each to its
+    position there, -1 elsewhere), each found once from its later endpoint's lower
+    prefix, as pairs (pa, pj) of positions; returns their number, writing only as many
+    as the arrays hold. low caches lower degrees (-1: not known yet)."""
+    ne = 0
+    cap = pa.shape[0]
+    for a in range(n):
+        u = nbrs[s + a]
+        lu = low[u]
+        if lu < 0:
+            lu = _lower_degree(offsets, nbrs, vrank, u)
+            low[u] = lu
+        start = offsets[u]
+        for k in range(start, start + lu):
+            w = nbrs[k]
+            j = loc[w]
+            if j >= 0:
+                if ne < cap:
+                    pa[ne] = a
+                    pj[ne] = j
+                ne += 1
+    return ne
+
+
+@nb.njit(nogil=True, cache=True)
 def lower_star_range(offsets, nbrs, vrank, lo, hi, max_dim, out, stats):
     """c(v) for every vertex v in [lo, hi), written to out[v - lo].
 
@@ -144,9 +170,13 @@ def lower_star_range(offsets, nbrs, vrank, lo, hi, max_dim, out, stats):
     """
     n_all = offsets.shape[0] - 1
     loc = np.full(n_all, -1, dtype=np.int32)
+    # lower degrees, found once per vertex: a vertex's lower prefix is read once for
+    # every later neighbour
+    low = np.full(n_all, -1, dtype=np.int32)
     maxlow = 0
     for v in range(lo, hi):
-        maxlow = max(maxlow, _lower_degree(offsets, nbrs, vrank, v))
+        low[v] = _lower_degree(offsets, nbrs, vrank, v)
+        maxlow = max(maxlow, low[v])
     pa = np.empty(max(maxlow, 16), dtype=np.int32)  # pairs (a, j), j < a, of G_v
     pj = np.empty(max(maxlow, 16), dtype=np.int32)
     deg = np.zeros(maxlow + 1, dtype=np.int64)
@@ -170,7 +200,7 @@ def lower_star_range(offsets, nbrs, vrank, lo, hi, max_dim, out, stats):
     verts = np.zeros(1, dtype=np.int64)
     for v in range(lo, hi):
         s = offsets[v]
-        n = _lower_degree(offsets, nbrs, vrank, v)
+        n = low[v]
         if n == 0 or max_dim == 0:
             out[v - lo] = 1
             continue
@@ -179,27 +209,13 @@ def lower_star_range(offsets, nbrs, vrank, lo, hi, max_dim, out, stats):
             continue
         for a in range(n):
             loc[nbrs[s + a]] = a
-        # the edges of G_v, each found once from its later endpoint's lower prefix
-        ne = 0
-        for a in range(n):
-            u = nbrs[s + a]
-            ru = vrank[u]
-            for k in range(offsets[u], offsets[u + 1]):
-                w = nbrs[k]
-                if vrank[w] >= ru:
-                    break
-                j = loc[w]
-                if j >= 0:
-                    if ne == pa.shape[0]:
-                        bigger_a = np.empty(2 * ne, dtype=np.int32)
-                        bigger_j = np.empty(2 * ne, dtype=np.int32)
-                        bigger_a[:ne] = pa
-                        bigger_j[:ne] = pj
-                        pa = bigger_a
-                        pj = bigger_j
-                    pa[ne] = a
-                    pj[ne] = j
-                    ne += 1
+        ne = _lower_link_edges(offsets, nbrs, vrank, s, n, loc, low, pa, pj)
+        if ne > pa.shape[0]:
+            # grown here, between vertices: an array rebound inside the pair loop costs
+            # reference counting at every step of it
+            pa = np.empty(2 * ne, dtype=np.int32)
+            pj = np.empty(2 * ne, dtype=np.int32)
+            ne = _lower_link_edges(offsets, nbrs, vrank, s, n, loc, low, pa, pj)
         for a in range(n):
             loc[nbrs[s + a]] = -1
         if max_dim == 2 or ne == 0:

@@ -32,25 +32,28 @@ URLs (networkx formats and folders: local paths).
 from __future__ import annotations
 
 import os
-from collections.abc import Iterator
-from dataclasses import dataclass
+from collections.abc import Iterator, Sequence
+from dataclasses import dataclass, replace
 from typing import Any
 
 import fsspec
 import numpy as np
 
-from .graph_data import GraphData, as_graph, validate_distance_matrix
+from .graph_data import GraphData, _is_networkx, _is_sparse, as_graph, validate_distance_matrix
 from .sources import InputError, _locate, _read_npy, _read_text, _Source
 
 __all__ = [
     "EDGE_LIST_ENDINGS",
     "GraphCollection",
+    "graph_collection",
+    "is_graph_collection",
     "read_collection",
     "read_edge_list",
     "read_edge_list_folder",
     "read_graph",
     "read_matrix",
     "read_tu",
+    "read_vertex_values",
 ]
 
 #: File endings read as edge lists (also compressed, e.g. ``.csv.gz``, for the first three).
@@ -251,6 +254,35 @@ def read_matrix(source: str | os.PathLike[str]) -> np.ndarray:
     return validate_distance_matrix(np.asarray(_read_npy(src, None)), where=src.display)
 
 
+def read_vertex_values(source: str | os.PathLike[str]) -> np.ndarray:
+    """Read one value per vertex: a 1-D ``.npy`` array, or a text file of one number a
+    line (``.csv``, ``.tsv``, ``.txt``; a header line is allowed).
+
+    Returns
+    -------
+    ndarray of float64
+        As read; its length and finiteness are checked against the graph when used.
+
+    Raises
+    ------
+    InputError
+        For a missing or malformed file, or more than one value a line.
+    """
+    src = _locate(source)
+    if src.fmt == "npy":
+        arr = np.asarray(_read_npy(src, None))
+        if arr.ndim == 2 and arr.shape[1] == 1:
+            arr = arr[:, 0]
+        if arr.ndim != 1:
+            raise InputError(f"{src.display}: vertex values are a 1-D array, got shape {arr.shape}")
+        if arr.size and arr.dtype.kind not in "fiu":
+            raise InputError(f"{src.display}: vertex values must be real numbers, got dtype {arr.dtype}")
+        return arr.astype(np.float64)
+    if src.fmt != "text":
+        raise InputError(f"{src.display}: vertex values are read from a .npy file or a text file of one number a line")
+    return _one_column(_table(src), src.display).astype(np.float64)
+
+
 # --------------------------------------------------------------------- collections
 
 
@@ -436,3 +468,88 @@ def read_collection(folder: str | os.PathLike[str], name: str | None = None) -> 
     if name is not None or any(f.endswith("_A.txt") for f in os.listdir(folder)):
         return read_tu(folder, name)
     return read_edge_list_folder(folder)
+
+
+# ------------------------------------------------------------ collections as rows
+
+
+def is_graph_collection(source: Any) -> bool:
+    """Whether `source` is unmistakably graphs rather than point clouds: a
+    `GraphCollection`, a sequence of networkx graphs, sparse matrices or `GraphData`,
+    a folder in the benchmark layout, or a folder whose only data files are ``.edges``
+    or ``.edgelist`` files. Edge arrays and folders of ``.csv``/``.txt`` files could be
+    either, so they are not (say so explicitly)."""
+    if isinstance(source, GraphCollection):
+        return True
+    if isinstance(source, (str, os.PathLike)):
+        folder = os.fspath(source)
+        if not os.path.isdir(folder):
+            return False
+        files = [f for f in os.listdir(folder) if not f.startswith(".") and os.path.isfile(os.path.join(folder, f))]
+        if any(f.endswith("_A.txt") for f in files):
+            return True
+        return bool(files) and all(f.lower().endswith((".edges", ".edgelist")) for f in files)
+    if isinstance(source, (list, tuple)) and source:
+        first = source[0]
+        return isinstance(first, GraphData) or _is_networkx(first) or _is_sparse(first)
+    return False
+
+
+def _row_name(name: str | None, k: int) -> str:
+    if not name:
+        return str(k)
+    base = os.path.basename(name.rstrip("/\\"))
+    return base.split(".")[0] if _ending(base) else base
+
+
+def graph_collection(source: Any, *, names: Sequence[str] | None = None) -> GraphCollection:
+    """Graphs for a feature matrix, each named for its row.
+
+    Parameters
+    ----------
+    source : GraphCollection, folder, or sequence of graphs
+        A folder is read by `read_collection` (the benchmark layout, or a folder of
+        edge lists); a sequence holds networkx graphs, edge arrays, scipy sparse
+        matrices or `GraphData` (see `as_graph`).
+    names : sequence of str, optional
+        One name a graph (default: a folder's file names without their endings, the
+        benchmark layout's ``NAME[k]``, else positions ``"0"``, ``"1"``, ...).
+
+    Returns
+    -------
+    GraphCollection
+        Its graphs' ``name`` is their row name; names never repeat.
+
+    Raises
+    ------
+    InputError
+        For an empty collection, an invalid graph (the message names it), or names that
+        repeat or do not match the graphs in number.
+    """
+    if isinstance(source, GraphCollection):
+        col = source
+    elif isinstance(source, (str, os.PathLike)):
+        col = read_collection(source)
+    else:
+        try:
+            items = list(source)
+        except TypeError:
+            raise InputError(f"a collection of graphs is a folder or a sequence of graphs, got {type(source).__name__}") from None
+        graphs = tuple(as_graph(g, where=f"graph {k}") for k, g in enumerate(items))
+        col = GraphCollection(graphs, None, "graphs")
+    if len(col) == 0:
+        raise InputError("the collection holds no graphs")
+    if names is not None:
+        names = [str(x) for x in names]
+        if len(names) != len(col):
+            raise InputError(f"{len(names)} names for {len(col)} graphs")
+    else:
+        names = [_row_name(g.name, k) for k, g in enumerate(col.graphs)]
+        if len(set(names)) != len(names):
+            names = [os.path.basename(g.name or str(k)) for k, g in enumerate(col.graphs)]
+        if len(set(names)) != len(names):
+            names = [str(k) for k in range(len(col))]
+    if len(set(names)) != len(names):
+        raise InputError("graph names repeat")
+    graphs = tuple(replace(g, name=name) for g, name in zip(col.graphs, names))
+    return GraphCollection(graphs, col.labels, col.name)

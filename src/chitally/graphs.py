@@ -38,7 +38,8 @@ Inputs (networkx graphs, edge arrays, scipy sparse matrices) become `GraphData` 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from collections.abc import Callable
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -63,11 +64,15 @@ __all__ = [
     "FilteredGraph",
     "GraphData",
     "as_graph",
+    "curve_domain",
     "edge_filtration",
+    "filtered_graph",
+    "gather_halo",
     "graph_curve",
     "graph_jumps",
     "matrix_curve",
     "matrix_filtration",
+    "owned_jumps",
     "vertex_filtration",
     "vertex_values",
 ]
@@ -153,35 +158,85 @@ class FilteredGraph:
         n = self.n_vertices
         if not (0 <= lo <= hi <= n):
             raise ValueError(f"vertex range [{lo}, {hi}) does not fit a graph of {n} vertices")
-        ids = np.unique(np.concatenate([np.arange(lo, hi), self.nbrs[self.offsets[lo]:self.offsets[hi]]]))
-        local = np.full(n, -1, dtype=np.int64)
-        local[ids] = np.arange(ids.shape[0])
-        deg = np.diff(self.offsets)[ids]
-        starts = self.offsets[ids]
-        entry = np.repeat(starts - np.concatenate([[0], np.cumsum(deg)[:-1]]), deg) + np.arange(int(deg.sum()))
-        row = np.repeat(np.arange(ids.shape[0]), deg)
-        keep = local[self.nbrs[entry]] >= 0
-        entry, row = entry[keep], row[keep]
-        offsets = np.zeros(ids.shape[0] + 1, dtype=np.int64)
-        np.add.at(offsets, row + 1, 1)
-        offsets = np.cumsum(offsets).astype(np.int64)
-        nbrs = local[self.nbrs[entry]].astype(np.int32)
-        a, b = (int(np.searchsorted(ids, lo)), int(np.searchsorted(ids, hi)))
-        base = self.ids[ids] if self.ids is not None else ids
-        if self.kind == "vertex":
-            sub = FilteredGraph("vertex", offsets, nbrs, self.vertex_values[ids], vrank=self.vrank[ids],
-                                threshold=self.threshold, ids=base)
-            return sub, a, b
-        granks = self.erank[entry]
-        kept, local_rank = np.unique(granks, return_inverse=True)
-        sub = FilteredGraph(
-            "edge", offsets, nbrs, self.vertex_values[ids],
-            erank=local_rank.astype(np.int32),
-            edge_values=self.edge_values[kept],
-            edge_lo=local[self.edge_lo[kept]].astype(np.int32),
-            threshold=self.threshold, ids=base,
-        )
+        sub, a, b = gather_halo(self.kind, lo, hi, lambda name, sel: getattr(self, name)[sel],
+                                self.threshold)
+        if self.ids is not None:
+            sub = replace(sub, ids=self.ids[sub.ids])
         return sub, a, b
+
+    def arrays(self) -> dict[str, np.ndarray]:
+        """The arrays that define the filtration, by name (`FILTRATION_ARRAYS` of its kind)."""
+        return {name: getattr(self, name) for name in FILTRATION_ARRAYS[self.kind]}
+
+
+#: The arrays of a filtered graph of each kind, as `gather_halo` reads them.
+FILTRATION_ARRAYS = {
+    "vertex": ("offsets", "nbrs", "vertex_values", "vrank"),
+    "edge": ("offsets", "nbrs", "vertex_values", "erank", "edge_values", "edge_lo"),
+}
+
+
+def gather_halo(kind: str, lo: int, hi: int, take: Callable[[str, Any], np.ndarray],
+                threshold: float = math.inf) -> tuple[FilteredGraph, int, int]:
+    """The halo of the vertex range [lo, hi), read from a filtered graph's arrays by `take`.
+
+    ``take(name, selection)`` returns ``array[selection]`` of the array `name` of
+    `FILTRATION_ARRAYS` (a slice, or a sorted int64 index array, never empty). In
+    memory it indexes the arrays (`FilteredGraph.halo`); a run store's task reads them
+    from the store, so a task never holds more of the graph than its halo.
+
+    Returns
+    -------
+    (FilteredGraph, int, int)
+        The halo with ``ids`` its global vertex ids, and the owned range in local ids.
+    """
+    if kind not in FILTRATION_ARRAYS:
+        raise ValueError(f"unknown filtration kind {kind!r}")
+    if hi <= lo:
+        empty_i = np.zeros(0, dtype=np.int32)
+        sub = FilteredGraph(kind, np.zeros(1, dtype=np.int64), empty_i, np.zeros(0),
+                            vrank=np.zeros(0, dtype=np.int64) if kind == "vertex" else None,
+                            erank=empty_i if kind == "edge" else None,
+                            edge_values=np.zeros(0) if kind == "edge" else None,
+                            edge_lo=empty_i if kind == "edge" else None,
+                            threshold=threshold, ids=np.zeros(0, dtype=np.int64))
+        return sub, 0, 0
+    own = take("offsets", slice(lo, hi + 1))
+    around = take("nbrs", slice(int(own[0]), int(own[-1])))
+    ids = np.unique(np.concatenate([np.arange(lo, hi, dtype=np.int64), around.astype(np.int64)]))
+    # each halo vertex's row bounds, in one read
+    bounds = np.union1d(ids, ids + 1)
+    row_ends = take("offsets", bounds).astype(np.int64)
+    starts = row_ends[np.searchsorted(bounds, ids)]
+    deg = row_ends[np.searchsorted(bounds, ids + 1)] - starts
+    total = int(deg.sum())
+    # every CSR entry of every halo vertex, row by row (rows ascending, so sorted)
+    entry = np.repeat(starts - np.concatenate([[0], np.cumsum(deg)[:-1]]), deg) + np.arange(total)
+    row = np.repeat(np.arange(ids.shape[0]), deg)
+    nb = take("nbrs", entry).astype(np.int64) if total else np.zeros(0, dtype=np.int64)
+    pos = np.minimum(np.searchsorted(ids, nb), max(ids.shape[0] - 1, 0))
+    keep = ids[pos] == nb
+    entry, row, nbrs = entry[keep], row[keep], pos[keep].astype(np.int32)
+    offsets = np.zeros(ids.shape[0] + 1, dtype=np.int64)
+    np.cumsum(np.bincount(row, minlength=ids.shape[0]), out=offsets[1:])
+    a, b = int(np.searchsorted(ids, lo)), int(np.searchsorted(ids, hi))
+    values = take("vertex_values", ids)
+    if kind == "vertex":
+        sub = FilteredGraph("vertex", offsets, nbrs, values, vrank=take("vrank", ids),
+                            threshold=threshold, ids=ids)
+        return sub, a, b
+    granks = take("erank", entry) if entry.size else np.zeros(0, dtype=np.int32)
+    kept, local_rank = np.unique(granks, return_inverse=True)
+    kept = kept.astype(np.int64)
+    edge_lo = take("edge_lo", kept) if kept.size else np.zeros(0, dtype=np.int32)
+    sub = FilteredGraph(
+        "edge", offsets, nbrs, values,
+        erank=local_rank.astype(np.int32).reshape(-1),
+        edge_values=take("edge_values", kept) if kept.size else np.zeros(0),
+        edge_lo=np.searchsorted(ids, edge_lo).astype(np.int32),
+        threshold=threshold, ids=ids,
+    )
+    return sub, a, b
 
 
 def _check_threshold(threshold: Any) -> float:
@@ -210,7 +265,7 @@ def vertex_filtration(graph: GraphData, values: np.ndarray, threshold: float | N
     n = graph.n
     vals = vertex_values_array(values, n)
     thr = _check_threshold(threshold)
-    order = np.lexsort((np.arange(n), vals))
+    order = np.argsort(vals, kind="stable")  # (value, id): a stable sort keeps ids in order
     vrank = np.empty(n, dtype=np.int64)
     vrank[order] = np.arange(n)
     offsets = np.empty(n + 1, dtype=np.int64)
@@ -327,6 +382,26 @@ def graph_jumps(
     jumps : ndarray of int64
         Nonzero net jumps.
     """
+    values, jumps, _ = owned_jumps(graph, lo, hi, max_dim)
+    return merge_jumps(values, jumps)
+
+
+def owned_jumps(
+    graph: FilteredGraph, lo: int = 0, hi: int | None = None, max_dim: int | None = None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """`graph_jumps` before merging: one entry per counted vertex and edge of the range,
+    with the vertex that owns it (the vertex itself, an edge's lower endpoint).
+
+    The jumps owned by a connected component depend on that component alone, so one call
+    on a disjoint union of graphs gives every graph's table (entries grouped by owner).
+
+    Returns
+    -------
+    values : ndarray of float64
+    jumps : ndarray of int64
+    owners : ndarray of int64
+        In the order counted, not sorted; zero jumps included.
+    """
     n = graph.n_vertices
     hi = n if hi is None else int(hi)
     lo = int(lo)
@@ -335,42 +410,104 @@ def graph_jumps(
     cap = _check_max_dim(max_dim)
     vvals = graph.vertex_values[lo:hi]
     vkeep = vvals <= graph.threshold
+    vowners = np.arange(lo, hi, dtype=np.int64)[vkeep]
     stats = np.zeros(_STAT_SLOTS, dtype=np.int64)
     if graph.kind == "vertex":
         out = np.empty(hi - lo, dtype=np.int64)
         if hi > lo:
             lower_star_range(graph.offsets, graph.nbrs, graph.vrank, lo, hi, cap, out, stats)
-        return merge_jumps(vvals[vkeep], out[vkeep])
+        return vvals[vkeep], out[vkeep], vowners
     if graph.kind != "edge":
         raise ValueError(f"unknown filtration kind {graph.kind!r}")
     owned = (graph.edge_lo >= lo) & (graph.edge_lo < hi)
     if cap == 0:
-        evals, ejumps = np.empty(0), np.empty(0, dtype=np.int64)
+        owned[:] = False
+        ejumps = np.empty(0, dtype=np.int64)
     elif cap == 1:
-        evals = graph.edge_values[owned]
-        ejumps = np.full(evals.shape[0], -1, dtype=np.int64)
+        ejumps = np.full(int(owned.sum()), -1, dtype=np.int64)
     else:
         out = np.zeros(graph.edge_values.shape[0], dtype=np.int64)
         if hi > lo and graph.n_edges:
             count_range(graph.offsets, graph.nbrs, graph.erank, lo, hi, cap, out, stats)
-        evals, ejumps = graph.edge_values[owned], out[owned]
-    return merge_jumps(
-        [vvals[vkeep], evals], [np.ones(int(vkeep.sum()), dtype=np.int64), ejumps]
-    )
+        ejumps = out[owned]
+    return (np.concatenate([vvals[vkeep], graph.edge_values[owned]]),
+            np.concatenate([np.ones(vowners.shape[0], dtype=np.int64), ejumps]),
+            np.concatenate([vowners, graph.edge_lo[owned].astype(np.int64)]))
 
 
-def _curve_of(fg: FilteredGraph, max_dim: int | None, start: float | None, eps: float | None) -> Curve:
-    values, jumps = graph_jumps(fg, max_dim=max_dim)
+def curve_domain(fg: FilteredGraph, start: float | None = None) -> tuple[float, float, int]:
+    """The domain ``(start, end)`` of a filtered graph's curve and its number of vertices.
+
+    The domain runs from the smallest vertex value (or `start`, which may only lie below
+    it) to the threshold, or without one to the largest value of a simplex; the count is
+    of the vertices the curve counts (those within the threshold).
+
+    Raises
+    ------
+    InputError
+        If `start` lies above the smallest vertex value or the domain's end.
+    """
     span = fg.value_range()
     lo_v, hi_v = span if span is not None else (0.0, 0.0)
-    top = hi_v if eps is None else eps
+    top = hi_v if math.isinf(fg.threshold) else fg.threshold + 0.0
     bottom = min(lo_v, top) if start is None else start
     if start is not None and span is not None and start > lo_v:
         raise InputError(f"start {start!r} lies above the smallest value {lo_v!r} of the filtration")
     if bottom > top:
         raise InputError(f"start {bottom!r} lies above the end {top!r} of the domain")
-    n_points = int((fg.vertex_values <= fg.threshold).sum())
+    return bottom, top, int((fg.vertex_values <= fg.threshold).sum())
+
+
+def _curve_of(fg: FilteredGraph, max_dim: int | None, start: float | None) -> Curve:
+    values, jumps = graph_jumps(fg, max_dim=max_dim)
+    bottom, top, n_points = curve_domain(fg, start)
     return Curve.from_jumps(values, jumps, eps=top, max_dim=max_dim, n_points=n_points, start=bottom)
+
+
+def filtered_graph(
+    graph: Any,
+    values: Any = "auto",
+    weights: Any = None,
+    superlevel: bool = False,
+    threshold: float | None = None,
+    *,
+    n: int | None = None,
+) -> FilteredGraph:
+    """The filtration `graph_curve` counts, with its options (see there).
+
+    With ``superlevel`` every value, and the threshold, is negated: the result is the
+    sublevel filtration of the negated values.
+
+    Returns
+    -------
+    FilteredGraph
+        Its ``threshold`` is in the curve's scale (``inf`` without one).
+
+    Raises
+    ------
+    InputError
+        For invalid input or parameters (one line).
+    """
+    g = as_graph(graph, n)
+    if not isinstance(superlevel, (bool, np.bool_)):
+        raise InputError(f"superlevel must be True or False, got {superlevel!r}")
+    thr = None if threshold is None else _check_threshold(threshold)
+    sign = -1.0 if superlevel else 1.0
+    if isinstance(values, str) and values == "auto":
+        values = "degree" if weights is None else None
+    if weights is None:
+        vals = sign * vertex_values(g, values) + 0.0
+        return vertex_filtration(g, vals, None if thr is None else sign * thr)
+    if isinstance(weights, str):
+        # a graph without edges has every edge attribute, with no value
+        if weights not in g.edge_data and g.n_edges:
+            known = ", ".join(repr(k) for k in g.edge_data) or "none"
+            raise InputError(f"weights {weights!r}: the graph has no such edge attribute (its numeric edge attributes: {known})")
+        w = g.edge_data.get(weights, np.zeros(0))
+    else:
+        w = _input_order_weights(graph, g, weights)
+    vals = None if values is None else sign * vertex_values(g, values) + 0.0
+    return edge_filtration(g, sign * np.asarray(w, dtype=np.float64) + 0.0, vals, None if thr is None else sign * thr)
 
 
 def graph_curve(
@@ -385,6 +522,9 @@ def graph_curve(
     start: float | None = None,
 ) -> Curve:
     """The exact Euler characteristic curve of a filtration of a graph's clique complex.
+
+    In this process; `chitally.jobs.graph.graph_run` computes the same curve over tasks
+    on the engine (a graph of millions of edges, resumable, on any cluster).
 
     Parameters
     ----------
@@ -436,32 +576,20 @@ def graph_curve(
     >>> c.domain, c.chi.tolist()
     ((2.0, 2.0), [1])
     """
-    g = as_graph(graph, n)
-    if not isinstance(superlevel, (bool, np.bool_)):
-        raise InputError(f"superlevel must be True or False, got {superlevel!r}")
     cap = _check_max_dim(max_dim)
     max_dim = None if cap == UNCAPPED else cap
-    thr = None if threshold is None else _check_threshold(threshold)
-    if start is not None and not (_numeric(start) and math.isfinite(float(start))):
+    start = check_start(start)
+    fg = filtered_graph(graph, values, weights, superlevel, threshold, n=n)
+    return _curve_of(fg, max_dim, start)
+
+
+def check_start(start: Any) -> float | None:
+    """A domain start as given to `graph_curve`: None or a finite number."""
+    if start is None:
+        return None
+    if not (_numeric(start) and math.isfinite(float(start))):
         raise InputError(f"start must be a finite number or None, got {start!r}")
-    sign = -1.0 if superlevel else 1.0
-    if isinstance(values, str) and values == "auto":
-        values = "degree" if weights is None else None
-    if weights is None:
-        vals = sign * vertex_values(g, values) + 0.0
-        fg = vertex_filtration(g, vals, None if thr is None else sign * thr)
-    else:
-        if isinstance(weights, str):
-            if weights not in g.edge_data:
-                known = ", ".join(repr(k) for k in g.edge_data) or "none"
-                raise InputError(f"weights {weights!r}: the graph has no such edge attribute (its numeric edge attributes: {known})")
-            w = g.edge_data[weights]
-        else:
-            w = _input_order_weights(graph, g, weights)
-        vals = None if values is None else sign * vertex_values(g, values) + 0.0
-        fg = edge_filtration(g, sign * np.asarray(w, dtype=np.float64) + 0.0, vals, None if thr is None else sign * thr)
-    eps = None if thr is None else sign * thr + 0.0
-    return _curve_of(fg, max_dim, None if start is None else float(start) + 0.0, eps)
+    return float(start) + 0.0
 
 
 def _input_order_weights(graph: Any, g: GraphData, weights: Any) -> np.ndarray:

@@ -32,7 +32,17 @@ BANDS = JobKind(
     unit="replicates",
 )
 
-KINDS: dict[str, JobKind] = {k.name: k for k in (CLOUD, BATCH, BANDS)}
+# one large graph: vertex ranges with their halos, jump tables summed as for a cloud
+GRAPH = JobKind(
+    name="graph",
+    task="chitally.jobs.graph:compute_task",
+    fold="chitally.jobs.cloud:JumpSum",
+    outputs=(("values", "<f8"), ("jumps", "<i8")),
+    read="chitally.jobs.cloud:read_curve",
+    unit="vertices",
+)
+
+KINDS: dict[str, JobKind] = {k.name: k for k in (CLOUD, BATCH, BANDS, GRAPH)}
 
 
 def kind_of(name: str) -> JobKind:
@@ -43,4 +53,4 @@ def kind_of(name: str) -> JobKind:
         raise ValueError(f"unknown job kind {name!r}; this chitally runs {sorted(KINDS)}") from None
 
 
-__all__ = ["BANDS", "BATCH", "CLOUD", "KINDS", "Fold", "JobKind", "TaskOutput", "kind_of"]
+__all__ = ["BANDS", "BATCH", "CLOUD", "GRAPH", "KINDS", "Fold", "JobKind", "TaskOutput", "kind_of"]

@@ -1,16 +1,25 @@
-"""The `batch` job kind: many clouds in, one exact feature matrix out.
+"""The `batch` job kind: many clouds or graphs in, one exact feature matrix out.
 
-Planning (pure) groups the clouds into tasks of about equal estimated cost, heaviest
-first, and lays each task's clouds out contiguously, so a task reads one slice of rows
-and thousands of small clouds are a few dozen tasks, not thousands. A task computes each
-of its clouds' exact curves and samples them on the grid (integer rows); the fold places
-rows into the matrix; the result is the matrix, normalised by each cloud's size on
-request.
+The items are point clouds (Rips curves) or graphs (curves of a vertex-value or
+edge-weight filtration of each clique complex): the parameter ``items`` says which
+(absent in stores made for clouds). Planning (pure) groups the items into tasks of about
+equal estimated cost, heaviest first, and lays each task's items out contiguously, so a
+task reads one slice of rows and thousands of small items are a few dozen tasks, not
+thousands. A task computes each of its items' exact curves and samples them on the grid
+(integer rows) with the items' rows function (`cloud_rows`, `graph_rows`); the fold
+places rows into the matrix; the result is the matrix, normalised by each item's size
+(points, vertices) on request.
+
+A graph's row at a scale t is the Euler characteristic of the subcomplex of simplices of
+value <= t: 0 below the graph's smallest vertex value (the empty complex), the whole
+clique complex's above its largest value. The grid is the user's and the same for every
+graph, whatever each graph's own domain; with a threshold it may not pass it.
 """
 
 from __future__ import annotations
 
 import hashlib
+import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -19,6 +28,9 @@ import numpy as np
 
 from ..clouds import Collection
 from ..curve import Curve
+from ..graph_data import GraphData, vertex_values
+from ..graph_sources import GraphCollection
+from ..graphs import filtered_graph, owned_jumps
 from ..kernel import count_jumps
 from ..store import JobSpec, ResultDamaged, RunStore
 from ..validate import InputError, validate_eps, validate_max_dim, validate_positive
@@ -44,14 +56,7 @@ class BatchParams:
         n = {"eps": "eps", "grid": "grid", "max_dim": "max_dim", "task_cost": "task_cost",
              **(names or {})}
         eps = validate_eps(eps, name=n["eps"])
-        g = np.asarray(grid, dtype=np.float64) if not isinstance(grid, str) else None
-        if g is None or g.ndim != 1 or g.size == 0:
-            raise InputError(f"{n['grid']} must be a non-empty 1-D sequence of scales")
-        if not np.isfinite(g).all():
-            raise InputError(f"{n['grid']} holds a value that is not a finite number")
-        if np.any(np.diff(g) <= 0):
-            i = int(np.flatnonzero(np.diff(g) <= 0)[0])
-            raise InputError(f"{n['grid']} must be strictly increasing: {g[i]!r} then {g[i + 1]!r}")
+        g = checked_grid(grid, n["grid"])
         if g[0] < 0 or g[-1] > eps:
             bad = g[0] if g[0] < 0 else g[-1]
             raise InputError(f"{n['grid']} value {float(bad)!r} lies outside [0, eps] = [0, {eps!r}]")
@@ -62,6 +67,23 @@ class BatchParams:
     def as_dict(self) -> dict[str, Any]:
         return {"eps": self.eps, "grid": list(self.grid), "max_dim": self.max_dim,
                 "normalise": self.normalise, "task_cost": self.task_cost}
+
+
+def checked_grid(grid: Any, name: str = "grid") -> np.ndarray:
+    """A grid as a feature matrix takes it: a non-empty, finite, strictly increasing 1-D
+    sequence of scales (float64)."""
+    try:
+        g = np.asarray(grid, dtype=np.float64) if not isinstance(grid, str) else None
+    except (TypeError, ValueError):
+        g = None
+    if g is None or g.ndim != 1 or g.size == 0:
+        raise InputError(f"{name} must be a non-empty 1-D sequence of scales")
+    if not np.isfinite(g).all():
+        raise InputError(f"{name} holds a value that is not a finite number")
+    if np.any(np.diff(g) <= 0):
+        i = int(np.flatnonzero(np.diff(g) <= 0)[0])
+        raise InputError(f"{name} must be strictly increasing: {g[i]!r} then {g[i + 1]!r}")
+    return g + 0.0
 
 
 def cloud_rows(clouds: Sequence[np.ndarray], eps: float, max_dim: int | None,
@@ -143,9 +165,286 @@ def create_or_open(url: str, collection: Collection, params: BatchParams, *,
                           discard=discard)
 
 
-def compute_task(store: RunStore, i: int, *, threads: int = 1) -> tuple[dict[str, np.ndarray], dict[str, int]]:
-    """The task function: the grid rows of task `i`'s clouds."""
+# ------------------------------------------------------------------------ graphs
+
+
+@dataclass(frozen=True)
+class GraphBatchParams:
+    """What a feature-matrix store of graphs is made for (options as `graph_curve`'s)."""
+
+    grid: tuple[float, ...]
+    values: str | None = "degree"
+    weights: str | None = None
+    max_dim: int | None = None
+    superlevel: bool = False
+    threshold: float | None = None
+    normalise: bool = False
+    task_cost: float | None = None
+
+    @staticmethod
+    def checked(grid: Any, values: Any = "auto", weights: Any = None, max_dim: Any = None,
+                superlevel: Any = False, threshold: Any = None, normalise: bool = False,
+                task_cost: Any = None, *, names: Mapping[str, str] | None = None) -> GraphBatchParams:
+        """Validated parameters; `names` maps a parameter to how the user spelled it.
+
+        ``values`` is a name (``"degree"``, ``"closeness"``, ``"heat:<t>"``, a node
+        attribute every graph has) or None, ``weights`` an edge attribute or None: one
+        specification for every graph. The grid is in the curve's scale (negated values
+        with ``superlevel``) and, with a threshold, may not pass its end.
+        """
+        n = {"grid": "grid", "values": "values", "weights": "weights", "max_dim": "max_dim",
+             "threshold": "threshold", "task_cost": "task_cost", "superlevel": "superlevel",
+             **(names or {})}
+        if isinstance(values, str) and values == "auto":
+            values = "degree" if weights is None else None
+        if values is not None and not isinstance(values, str):
+            raise InputError(f"{n['values']}: for a collection of graphs, a name ('degree', 'closeness', "
+                             "'heat:<t>', a node attribute) or None")
+        if isinstance(values, str) and values.startswith("heat:"):
+            try:
+                t = float(values[len("heat:"):])
+            except ValueError:
+                t = float("nan")
+            if not (math.isfinite(t) and t > 0):
+                raise InputError(f"{n['values']} {values!r}: heat:<t> needs a number t > 0")
+        if weights is not None and not isinstance(weights, str):
+            raise InputError(f"{n['weights']}: for a collection of graphs, the name of an edge attribute or None")
+        if not isinstance(superlevel, (bool, np.bool_)):
+            raise InputError(f"{n['superlevel']} must be True or False, got {superlevel!r}")
+        thr = None
+        if threshold is not None:
+            if isinstance(threshold, (bool, np.bool_)) or not isinstance(
+                    threshold, (int, float, np.integer, np.floating)) or not math.isfinite(float(threshold)):
+                raise InputError(f"{n['threshold']} must be a finite number, got {threshold!r}")
+            thr = float(threshold) + 0.0
+        g = checked_grid(grid, n["grid"])
+        if thr is not None:
+            end = -thr if superlevel else thr
+            if g[-1] > end:
+                raise InputError(f"{n['grid']} value {float(g[-1])!r} lies above the end {end!r} of the domain "
+                                 f"({n['threshold']} {thr!r}{', superlevel' if superlevel else ''}): simplices "
+                                 "beyond the threshold are not counted")
+        cost = None if task_cost is None else validate_positive(task_cost, name=n["task_cost"])
+        return GraphBatchParams(tuple(float(x) for x in g), values, weights,
+                                validate_max_dim(max_dim, name=n["max_dim"]), bool(superlevel), thr,
+                                bool(normalise), cost)
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"items": "graphs", "grid": list(self.grid), "values": self.values,
+                "weights": self.weights, "max_dim": self.max_dim, "superlevel": self.superlevel,
+                "threshold": self.threshold, "normalise": self.normalise, "task_cost": self.task_cost}
+
+
+#: vertex-value specifications computed from the graph itself (not a stored attribute)
+_COMPUTED_VALUES = ("degree", "closeness")
+
+
+def _node_column(params: GraphBatchParams) -> str | None:
+    v = params.values
+    if v is None or v in _COMPUTED_VALUES or v.startswith("heat:"):
+        return None
+    return v
+
+
+def chi_on_grid(values: np.ndarray, jumps: np.ndarray, grid: np.ndarray) -> np.ndarray:
+    """The Euler characteristic of the simplices of value <= t, for each t of `grid`,
+    from a jump table: 0 below the first jump, the total above the last."""
+    cum = np.concatenate(([0], np.cumsum(jumps, dtype=np.int64)))
+    return cum[np.searchsorted(values, grid, side="right")]
+
+
+#: Vertices and CSR entries of the graphs counted together at once.
+_UNION_ENTRIES = 1 << 15
+
+
+def _union(graphs: Sequence[GraphData], values: str | None,
+           weights: str | None) -> tuple[GraphData, Any, np.ndarray]:
+    """The disjoint union of `graphs` (each one's vertices after the previous ones', in
+    order), its vertex values as the filtration takes them, and each graph's first vertex.
+
+    Degrees, node attributes and edge attributes of the union are the graphs' own; the
+    other vertex values (closeness, heat kernel signatures) are computed graph by graph,
+    since they depend on the whole graph.
+    """
+    sizes = np.array([g.n for g in graphs], dtype=np.int64)
+    starts = np.concatenate(([0], np.cumsum(sizes)[:-1])).astype(np.int64)
+    m = np.array([g.n_edges for g in graphs], dtype=np.int64)
+    edges = np.concatenate([g.edges for g in graphs] + [np.zeros((0, 2), np.int64)]) \
+        + np.repeat(starts, m)[:, None]
+    edge_data = {}
+    if weights is not None:
+        # a graph without edges has every edge attribute (see `filtered_graph`)
+        edge_data[weights] = np.concatenate([g.edge_data.get(weights, np.zeros(0)) for g in graphs]
+                                            + [np.zeros(0)])
+    spec: Any = values
+    node_data = {}
+    if values == "closeness" or (isinstance(values, str) and values.startswith("heat:")):
+        spec = np.concatenate([vertex_values(g, values) for g in graphs] + [np.zeros(0)])
+    elif isinstance(values, str) and values != "degree":
+        node_data[values] = np.concatenate([g.node_data.get(values, np.zeros(0)) for g in graphs]
+                                           + [np.zeros(0)])
+    # each graph's edges are sorted and distinct, offsets keep them so: no validation again
+    union = GraphData(int(sizes.sum()), edges, edge_data, node_data)
+    return union, spec, starts
+
+
+def graph_rows(graphs: Sequence[GraphData], values: str | None, weights: str | None,
+               max_dim: int | None, superlevel: bool, threshold: float | None,
+               grid: np.ndarray) -> np.ndarray:
+    """Each graph's exact curve sampled on `grid` (as `chi_on_grid`): int64 (graphs x grid).
+
+    The one computation behind the batch task and the in-process feature matrix; at
+    every grid point inside a graph's domain it is ``graph_curve(...).sample``. The
+    graphs are counted together, as their disjoint union: the jumps a vertex or edge
+    owns depend on its own graph alone (`owned_jumps`), and the union keeps each graph's
+    order of vertices and edges, so ties break as in the graph alone.
+    """
+    out = np.zeros((len(graphs), grid.size + 1), dtype=np.int64)
+    flat = out.reshape(-1)  # a view: exact int64 sums at (graph, first grid point) cells
+    # unions small enough for the caches: the kernels visit vertices in filtration
+    # order, which jumps from graph to graph
+    size = np.cumsum([g.n + 2 * g.n_edges for g in graphs])
+    cuts = np.unique(np.searchsorted(size, np.arange(_UNION_ENTRIES, int(size[-1]) if size.size else 0,
+                                                     _UNION_ENTRIES), side="right"))
+    for a, b in zip(np.concatenate(([0], cuts)), np.concatenate((cuts, [len(graphs)]))):
+        if b <= a:
+            continue
+        union, spec, starts = _union(graphs[a:b], values, weights)
+        fg = filtered_graph(union, spec, weights, superlevel, threshold)
+        v, j, owners = owned_jumps(fg, max_dim=max_dim)
+        item_of = np.repeat(np.arange(a, b, dtype=np.int64), np.diff(np.append(starts, union.n)))
+        # a jump at v counts at every grid point t >= v: from the first one not below v on
+        np.add.at(flat, item_of[owners] * (grid.size + 1) + np.searchsorted(grid, v, side="left"), j)
+    return np.cumsum(out, axis=1)[:, :grid.size]
+
+
+def graph_cost(graph: GraphData) -> float:
+    """Relative cost of one graph: its vertices and the pairs among each vertex's
+    neighbours (the lower links and edge neighbourhoods the kernels read)."""
+    d = graph.degrees().astype(np.float64)
+    return float(graph.n + 0.5 * float(np.dot(d, d)) + 64.0)
+
+
+def graph_fingerprint(col: GraphCollection, params: GraphBatchParams) -> dict[str, Any]:
+    """The identity of a collection as a feature matrix reads it: names, structure, and
+    the node and edge data the parameters use."""
+    h = hashlib.sha256()
+    column = _node_column(params)
+    for g in col.graphs:
+        h.update(str(g.name).encode() + b"\0")
+        h.update(np.asarray([g.n, g.n_edges], "<i8").tobytes())
+        h.update(np.ascontiguousarray(g.edges, "<i8").tobytes())
+        if column is not None and column in g.node_data:
+            h.update(np.ascontiguousarray(g.node_data[column], "<f8").tobytes())
+        if params.weights is not None and params.weights in g.edge_data:
+            h.update(np.ascontiguousarray(g.edge_data[params.weights], "<f8").tobytes())
+    return {"graphs": len(col), "vertices": int(sum(g.n for g in col.graphs)),
+            "edges": int(sum(g.n_edges for g in col.graphs)), "sha256": h.hexdigest()}
+
+
+def _check_data(col: GraphCollection, params: GraphBatchParams) -> None:
+    """Every graph has the node and edge attributes the parameters name (a graph
+    without vertices, or edges, has them all)."""
+    column = _node_column(params)
+    for g in col.graphs:
+        if column is not None and column not in g.node_data and g.n > 0:
+            known = ", ".join(repr(k) for k in g.node_data) or "none"
+            raise InputError(f"graph {g.name!r}: vertex values {column!r}: not 'degree', 'closeness', "
+                             f"'heat:<t>' nor a node attribute of this graph (its numeric node attributes: {known})")
+        if params.weights is not None and params.weights not in g.edge_data and g.n_edges > 0:
+            known = ", ".join(repr(k) for k in g.edge_data) or "none"
+            raise InputError(f"graph {g.name!r}: weights {params.weights!r}: no such edge attribute "
+                             f"(its numeric edge attributes: {known})")
+        if params.normalise and g.n == 0:
+            raise InputError(f"graph {g.name!r} has no vertex: its row cannot be divided by its size")
+
+
+def graph_job_spec(col: GraphCollection, params: GraphBatchParams) -> JobSpec:
+    """The run store contents for a collection of graphs (`graph_collection`; pure)."""
+    _check_data(col, params)
+    sizes = np.array([g.n for g in col.graphs], dtype=np.int64)
+    m = np.array([g.n_edges for g in col.graphs], dtype=np.int64)
+    costs = np.array([graph_cost(g) for g in col.graphs])
+    target = params.task_cost or max(float(costs.sum()) / DEFAULT_TASKS, float(costs.max()))
+    groups = group(costs, target)
+    graph_ids = np.concatenate(groups)
+    task_offsets = np.concatenate(([0], np.cumsum([g.size for g in groups]))).astype(np.int64)
+    vertex_offsets = np.concatenate(([0], np.cumsum(sizes[graph_ids]))).astype(np.int64)
+    edge_offsets = np.concatenate(([0], np.cumsum(m[graph_ids]))).astype(np.int64)
+    edges = np.concatenate([col.graphs[i].edges for i in graph_ids] + [np.zeros((0, 2), np.int64)])
+    inputs: dict[str, Any] = {"graph_ids": graph_ids, "task_offsets": task_offsets,
+                              "vertex_offsets": vertex_offsets, "edge_offsets": edge_offsets,
+                              "edges": edges.astype(np.int32), "sizes": sizes}
+    column = _node_column(params)
+    if column is not None:
+        inputs["node_values"] = np.concatenate([col.graphs[i].node_data.get(column, np.zeros(0))
+                                                for i in graph_ids] + [np.zeros(0)])
+    if params.weights is not None:
+        inputs["edge_weights"] = np.concatenate([col.graphs[i].edge_data.get(params.weights, np.zeros(0))
+                                                 for i in graph_ids] + [np.zeros(0)])
+    task_cost = np.array([costs[g].sum() for g in groups])
+    memory = np.array([int(max(sizes[g].max() ** 2 // 4, 1) + 96 * m[g].max()) + 1_000_000 for g in groups],
+                      dtype=np.int64)
+    labels = None if col.labels is None else [x.item() if hasattr(x, "item") else x for x in col.labels]
+    attrs = {"names": [g.name for g in col.graphs], "labels": labels, "collection": col.name}
+    return JobSpec(kind=BATCH.name, params=params.as_dict(), fingerprint=graph_fingerprint(col, params),
+                   outputs=BATCH.outputs, cost=task_cost, memory=memory, inputs=inputs, attrs=attrs)
+
+
+def create_or_open_graphs(url: str, col: GraphCollection, params: GraphBatchParams, *,
+                          storage_options: Mapping[str, Any] | None = None,
+                          discard: bool = False) -> RunStore:
+    """The feature-matrix run store at `url` for this collection of graphs (named and
+    labelled: `graph_collection`) and these parameters."""
+    from ..runs import open_or_create
+
+    _check_data(col, params)
+    return open_or_create(url, BATCH.name, params.as_dict(), graph_fingerprint(col, params),
+                          lambda: graph_job_spec(col, params), storage_options=storage_options,
+                          discard=discard)
+
+
+def _graph_task(store: RunStore, i: int) -> tuple[dict[str, np.ndarray], dict[str, int]]:
     p = store.params
+    a, b = (int(x) for x in store.read_input("task_offsets", slice(i, i + 2), task=i))
+    voff = store.read_input("vertex_offsets", slice(a, b + 1), task=i)
+    eoff = store.read_input("edge_offsets", slice(a, b + 1), task=i)
+    e0, e1 = int(eoff[0]), int(eoff[-1])
+    edges = store.read_input("edges", slice(e0, e1), task=i).astype(np.int64)
+    column = p["values"] if "node_values" in store.input_names else None
+    nodes = store.read_input("node_values", slice(int(voff[0]), int(voff[-1])), task=i) if column else None
+    weights = store.read_input("edge_weights", slice(e0, e1), task=i) if p["weights"] is not None else None
+    graphs = []
+    for k in range(b - a):
+        lo, hi = int(eoff[k]) - e0, int(eoff[k + 1]) - e0
+        va, vb = int(voff[k]) - int(voff[0]), int(voff[k + 1]) - int(voff[0])
+        # stored from validated graphs: rebuilt as they were, without validating again
+        graphs.append(GraphData(vb - va, edges[lo:hi],
+                                {p["weights"]: weights[lo:hi]} if weights is not None else {},
+                                {column: nodes[va:vb]} if column else {}))
+    out = graph_rows(graphs, p["values"], p["weights"], p["max_dim"], p["superlevel"], p["threshold"],
+                     np.asarray(p["grid"], np.float64))
+    return {"rows": out}, {"graphs": b - a, "vertices": int(voff[-1] - voff[0]), "edges": e1 - e0}
+
+
+# ------------------------------------------------------------------------ the task
+
+
+def items_of(params: Mapping[str, Any]) -> str:
+    """What a batch store's items are: "clouds" (stores made before graphs name none)
+    or "graphs"."""
+    return str(params.get("items", "clouds"))
+
+
+#: The input naming each position's item in the order the caller gave them.
+_IDS = {"clouds": "cloud_ids", "graphs": "graph_ids"}
+
+
+def compute_task(store: RunStore, i: int, *, threads: int = 1) -> tuple[dict[str, np.ndarray], dict[str, int]]:
+    """The task function: the grid rows of task `i`'s items."""
+    p = store.params
+    if items_of(p) == "graphs":
+        return _graph_task(store, i)
     a, b = (int(x) for x in store.read_input("task_offsets", slice(i, i + 2), task=i))
     offsets = store.read_input("row_offsets", slice(a, b + 1), task=i)
     rows = store.read_input("points", slice(int(offsets[0]), int(offsets[-1])), task=i)
@@ -156,11 +455,11 @@ def compute_task(store: RunStore, i: int, *, threads: int = 1) -> tuple[dict[str
 
 
 class PlaceRows:
-    """The batch fold: each task's rows placed at its clouds' positions."""
+    """The batch fold: each task's rows placed at its items' positions."""
 
     def __init__(self, store: RunStore) -> None:
         self.store = store
-        self.cloud_ids = store.read_input("cloud_ids")
+        self.cloud_ids = store.read_input(_IDS[items_of(store.params)])
         self.task_offsets = store.read_input("task_offsets")
         grid = store.params["grid"]
         self.matrix = np.zeros((self.cloud_ids.size, len(grid)), dtype=np.int64)
@@ -195,5 +494,5 @@ def read_matrix(store: RunStore) -> Any:
     if matrix.shape != (len(a["names"]), len(p["grid"])):
         raise ResultDamaged(f"the matrix in {store.url} has shape {matrix.shape}")
     return FeatureMatrix.of_counts(matrix, arrays["sizes"], names=a["names"], labels=a["labels"],
-                                   grid=p["grid"], eps=p["eps"], max_dim=p["max_dim"],
+                                   grid=p["grid"], eps=p.get("eps"), max_dim=p["max_dim"],
                                    normalise=p["normalise"])

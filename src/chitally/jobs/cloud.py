@@ -130,7 +130,13 @@ def compute_task(store: RunStore, i: int, *, threads: int = 1) -> tuple[dict[str
 
 
 class JumpSum:
-    """The cloud fold: jump tables summed exactly into one curve."""
+    """Jump tables summed exactly into one curve: the fold of every kind whose tasks
+    commit jump tables (`cloud`, `graph`).
+
+    The curve's domain is ``[start, eps]`` from the store's attrs (``start`` 0 and
+    ``eps`` the parameter when absent, as in cloud stores), its cap the parameter
+    ``max_dim`` and its vertex count the attr ``n_points``.
+    """
 
     def __init__(self, store: RunStore) -> None:
         self.store = store
@@ -150,24 +156,27 @@ class JumpSum:
 
     def curve(self) -> Curve:
         p, a = self.store.params, self.store.attrs
-        return Curve.from_jumps(self.values, self.jumps, eps=float(p["eps"]), max_dim=p["max_dim"],
-                                n_points=int(a["n_points"]))
+        return Curve.from_jumps(self.values, self.jumps, eps=float(a.get("eps", p.get("eps"))),
+                                max_dim=p["max_dim"], n_points=int(a["n_points"]),
+                                start=float(a.get("start", 0.0)))
 
     def result(self) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
         c = self.curve()
         return ({"values": np.asarray(c.values), "chi": np.asarray(c.chi)},
-                {"eps": c.eps, "max_dim": c.max_dim, "n_points": c.n_points, "digest": c.digest()})
+                {"eps": c.eps, "max_dim": c.max_dim, "n_points": c.n_points, "start": c.start,
+                 "digest": c.digest()})
 
 
 def read_curve(store: RunStore) -> Curve | None:
-    """The final curve of a complete cloud run, verified; None if not written yet."""
+    """The final curve of a complete run of a `JumpSum` kind, verified; None if not
+    written yet."""
     got = store.read_result()
     if got is None:
         return None
     arrays, rec = got
     try:
         curve = Curve(values=arrays["values"], chi=arrays["chi"], eps=rec["eps"],
-                      max_dim=rec["max_dim"], n_points=rec["n_points"])
+                      max_dim=rec["max_dim"], n_points=rec["n_points"], start=rec.get("start", 0.0))
     except (KeyError, ValueError) as exc:
         raise ResultDamaged(f"the curve in {store.url} is not a valid curve: {exc}") from exc
     if curve.digest() != rec.get("digest"):
