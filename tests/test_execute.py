@@ -160,6 +160,102 @@ def _cloud_inputs() -> tuple[CloudInput, ...]:
                  for i, name in enumerate(CLOUDS) for j, cap in enumerate(CAPS))
 
 
+# ------------------------------------------------------------------ batch, graph, bands
+
+
+@dataclass(frozen=True)
+class SimpleInput:
+    """An input of the other kinds: a name and a seed (ids in test names)."""
+
+    kind: str
+    size: int
+    seed: int
+
+    @property
+    def id(self) -> str:
+        return f"{self.kind}{self.size}-s{self.seed}"
+
+
+BATCH_GRID = tuple(np.linspace(0.0, 0.4, 9).tolist())
+
+
+@functools.cache
+def batch_clouds(inp: SimpleInput) -> tuple[np.ndarray, ...]:
+    rng = np.random.default_rng(inp.seed)
+    return tuple(rng.random((int(n), 2)) for n in rng.integers(3, 40, inp.size))
+
+
+def batch_store(tmp_path: Path, inp: SimpleInput, name: str = "run") -> RunStore:
+    from chitally.clouds import read_collection
+    from chitally.jobs import batch
+
+    col = read_collection(list(batch_clouds(inp)))
+    params = batch.BatchParams.checked(0.4, BATCH_GRID, None, False, task_cost=3000.0)
+    return batch.create_or_open(str(tmp_path / f"{name}.zarr"), col, params)
+
+
+def batch_reference(inp: SimpleInput) -> dict[str, Any]:
+    from chitally import feature_matrix
+
+    clouds = list(batch_clouds(inp))
+    grid = np.asarray(BATCH_GRID)
+    fm = feature_matrix(clouds, 0.4, grid, threads=1)
+    # gudhi rows, each compared through the in-process matrix (same names and grid)
+    assert all(np.array_equal(row, gudhi_curve(c, 0.4, None).sample(grid)) for row, c in zip(fm.values, clouds))
+    return {"chitally.feature_matrix in process (rows checked against gudhi RipsComplex)": fm}
+
+
+@functools.cache
+def random_graph(inp: SimpleInput) -> Any:
+    import networkx as nx
+
+    return nx.gnm_random_graph(inp.size, 3 * inp.size, seed=inp.seed)
+
+
+def graph_store(tmp_path: Path, inp: SimpleInput, name: str = "run") -> RunStore:
+    from chitally.graphs import filtered_graph
+    from chitally.jobs import graph
+
+    params = graph.GraphParams.checked("degree", None, None, tasks=5)
+    fg = filtered_graph(random_graph(inp), "degree")
+    return graph.create_or_open(str(tmp_path / f"{name}.zarr"), fg, params)
+
+
+def graph_reference(inp: SimpleInput) -> dict[str, Any]:
+    from graph_references import brute_force_jumps, curve_of, edge_value_map
+
+    from chitally.graphs import graph_curve
+
+    g = random_graph(inp)
+    ours = graph_curve(g, "degree")
+    degrees = np.array([d for _, d in sorted(g.degree())], dtype=np.float64)
+    edges = list(g.edges())
+    values, jumps = brute_force_jumps(g.number_of_nodes(), edges, degrees, edge_value_map(edges, degrees))
+    brute = curve_of(values, jumps, start=ours.domain[0], eps=ours.domain[1], max_dim=None,
+                     n_points=ours.n_points)
+    return {"chitally.graph_curve in process": ours,
+            "networkx enumerate_all_cliques valued by the largest vertex degree (brute force)": brute}
+
+
+@functools.cache
+def bands_cloud(inp: SimpleInput) -> np.ndarray:
+    return np.random.default_rng(inp.seed).random((inp.size, 2))
+
+
+def bands_store(tmp_path: Path, inp: SimpleInput, name: str = "run") -> RunStore:
+    from chitally.jobs import bands
+
+    params = bands.BandsParams.checked(0.2, 12, 40, "0:0.2:11", seed=inp.seed, per_task=3)
+    return bands.create_or_open(str(tmp_path / f"{name}.zarr"), bands_cloud(inp), params)
+
+
+def bands_reference(inp: SimpleInput) -> dict[str, Any]:
+    from chitally.bands import bands
+
+    return {"chitally.bands.bands in process (same seed)":
+            bands(bands_cloud(inp), 0.2, 12, 40, grid="0:0.2:11", seed=inp.seed, threads=1)}
+
+
 # ==================================================================== the kind registry
 
 
@@ -195,6 +291,27 @@ JOB_KINDS: dict[str, JobKindCase] = {
         small=CloudInput("duplicates-R2", 1.0, "medium", 3),
         make_store=cloud_store,
         reference=cloud_reference,
+    ),
+    "batch": JobKindCase(
+        name="batch",
+        inputs=(SimpleInput("clouds", 30, 1), SimpleInput("clouds", 7, 2)),
+        small=SimpleInput("clouds", 30, 1),
+        make_store=batch_store,
+        reference=batch_reference,
+    ),
+    "graph": JobKindCase(
+        name="graph",
+        inputs=(SimpleInput("gnm", 40, 3), SimpleInput("gnm", 25, 4)),
+        small=SimpleInput("gnm", 40, 3),
+        make_store=graph_store,
+        reference=graph_reference,
+    ),
+    "bands": JobKindCase(
+        name="bands",
+        inputs=(SimpleInput("uniform", 300, 5),),
+        small=SimpleInput("uniform", 300, 5),
+        make_store=bands_store,
+        reference=bands_reference,
     ),
 }
 
