@@ -21,6 +21,7 @@ from chitally.clouds import read_collection
 from chitally.jobs.batch import BatchParams, create_or_open
 from chitally.runs import Where, open_run, run
 from chitally.sources import InputError
+from helpers import chitally, commits, command, explain, make_faults, processes, wait_for  # noqa: F401
 from references import gudhi_curve
 
 REPO = Path(__file__).resolve().parents[1]
@@ -189,3 +190,42 @@ def test_cli_batch_status_export_and_bad_grid(tmp_path):
     (folder / "bad.csv").write_text("x,y\n0,nan\n")
     res = cli("batch", folder, "--eps", 0.4, "--grid", "0:0.4:5", "--out", tmp_path / "other.zarr", "--serial")
     assert res.returncode == 2 and "bad" in res.stderr and not (tmp_path / "other.zarr").exists()
+
+
+def test_killed_batch_driver_resumes_without_recomputing_a_group(tmp_path, processes):
+    """SIGKILL `chitally batch` (a real process) once about a third of the groups are
+    committed: `resume` computes only the groups without a commit record (attempts are
+    counted by the test-side fault wrapper) and the matrix is the in-process one."""
+    folder = tmp_path / "clouds"
+    folder.mkdir()
+    clouds = clouds_of(np.random.default_rng(11).integers(10, 50, 120), dim=2, seed=11)
+    for i, c in enumerate(clouds):
+        np.save(folder / f"c{i:03d}.npy", c)
+    run_store = tmp_path / "run.zarr"
+    faults = make_faults(tmp_path, delay=0.1)
+    args = ["batch", folder, "--eps", 0.3, "--grid", "0:0.3:7", "--task-cost", 2000, "--out", run_store,
+            "--serial", "--no-progress"]
+    driver = processes.start(command(*args, faults=faults), name="batch")
+    n = None
+
+    def third_committed() -> bool:
+        nonlocal n
+        if not (run_store / "created.json").exists():
+            return False
+        n = open_run(str(run_store)).n_tasks
+        return len(commits(run_store)) >= n / 3
+
+    wait_for(third_committed, 120, "a third of the groups committed")
+    processes.kill(driver)
+    before = commits(run_store)
+    assert n / 3 <= len(before) < n and n >= 6
+    res = chitally("resume", run_store, "--serial", "--no-progress", faults=faults)
+    assert res.returncode == 0, explain(res)
+    attempts = faults.attempts()
+    assert set(attempts) == set(range(n))
+    assert all(attempts[t] == 1 for t in before)  # no committed group computed again
+    assert len([t for t in attempts if attempts[t] > 1]) <= 1  # the group under way at the kill
+    ref = feature_matrix(clouds, 0.3, np.linspace(0, 0.3, 7), names=[f"c{i:03d}" for i in range(120)])
+    from chitally.runs import read_result
+
+    assert np.array_equal(read_result(open_run(str(run_store))).values, ref.values)
