@@ -29,6 +29,7 @@ _LAZY = {
     "FeatureMatrix": "chitally.features",
     "CurveFeatures": "chitally.features",
     "open_run": "chitally.runs",
+    "field_curve": "chitally.cubical",
 }
 
 __all__ = sorted([*_LAZY, "__version__"])
