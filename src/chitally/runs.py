@@ -109,8 +109,8 @@ class RunReport:
 
     @property
     def curve(self) -> Any:
-        """The curve of a complete `cloud` run (None otherwise)."""
-        return self.result if self.kind == "cloud" else None
+        """The curve of a complete `cloud` or `field` run (None otherwise)."""
+        return self.result if self.kind in ("cloud", "field") else None
 
 
 class _Driver(Callbacks):
