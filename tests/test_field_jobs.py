@@ -109,3 +109,45 @@ def test_two_process_cluster_gives_the_same_curve(tmp_path):
         url = str(tmp_path / f"{construction}.zarr")
         report = field_run(a, url, Where(workers=2, threads=1), construction=construction, block=(5, 5, 5))
         assert report.curve == field_curve(a, construction)
+
+
+def test_command_line_in_process_and_as_a_run(tmp_path):
+    from click.testing import CliRunner
+
+    from chitally.cli import main
+    from chitally.curve import Curve
+
+    a = _array(7, (9, 10, 6))
+    np.save(tmp_path / "v.npy", a)
+    runner = CliRunner()
+    r = runner.invoke(main, ["field", str(tmp_path / "v.npy"), "--construction", "cells",
+                             "--out", str(tmp_path / "c.json")])
+    assert r.exit_code == 0, r.output
+    assert Curve.load(tmp_path / "c.json") == field_curve(a, "cells")
+    r = runner.invoke(main, ["field", str(tmp_path / "v.npy"), "--construction", "cells", "--superlevel",
+                             "--run", str(tmp_path / "f.zarr"), "--serial", "--block", "4,4,6",
+                             "--no-progress"])
+    assert r.exit_code == 0, r.output
+    assert read_result(open_run(str(tmp_path / "f.zarr"))) == field_curve(a, "cells", superlevel=True)
+    a[1, 2, 3] = np.nan
+    np.save(tmp_path / "n.npy", a)
+    r = runner.invoke(main, ["field", str(tmp_path / "n.npy")])
+    assert r.exit_code == 2 and "NaN at position (1, 2, 3)" in r.output
+
+
+def test_command_line_reads_png_and_tiff(tmp_path):
+    pil = pytest.importorskip("PIL.Image")
+    tifffile = pytest.importorskip("tifffile")
+    from click.testing import CliRunner
+
+    from chitally.cli import main
+    from chitally.field_sources import read_field
+
+    img = (np.random.default_rng(8).integers(0, 4, size=(12, 14)) * 60).astype(np.uint8)
+    pil.fromarray(img).save(tmp_path / "i.png")
+    vol = _array(9, (4, 8, 9))
+    tifffile.imwrite(tmp_path / "v.tif", vol, photometric="minisblack")
+    np.testing.assert_array_equal(read_field(str(tmp_path / "i.png")), img)
+    np.testing.assert_array_equal(read_field(str(tmp_path / "v.tif")), vol)
+    r = CliRunner().invoke(main, ["field", str(tmp_path / "i.png"), "--out", str(tmp_path / "c.npz")])
+    assert r.exit_code == 0, r.output
