@@ -32,6 +32,7 @@ _LAZY = {
     "open_run": "chitally.runs",
     "graph_curve": "chitally.graphs",
     "graph_run": "chitally.jobs.graph",
+    "field_curve": "chitally.cubical",
 }
 
 __all__ = sorted([*_LAZY, "__version__"])

@@ -32,7 +32,7 @@ EXIT_SIGTERM = 143
 
 GRID_HELP = "Also sample on START:STOP:COUNT evenly spaced scales."
 CURVE_FORMATS = ("csv", "json", "npz")
-_CURVE_KINDS = ("cloud", "graph")  # job kinds whose result is one curve
+_CURVE_KINDS = ("cloud", "graph", "field")  # job kinds whose result is one curve
 
 
 def fail(message: str, code: int) -> NoReturn:
@@ -571,6 +571,67 @@ superlevel_opt = click.option("--superlevel", is_flag=True,
                               help="Filter from the largest value down (the curve's scale is the negated values).")
 threshold_opt = click.option("--threshold", type=float, default=None,
                              help="Count only simplices of value <= X (>= X with --superlevel).")
+
+
+@main.command("field")
+@input_arg
+@click.option("--key", default=None, help="Array inside INPUT (an .npz name, a Zarr group's array).")
+@click.option("--construction", type=click.Choice(["vertices", "cells"]), default="vertices", show_default=True,
+              help="vertices: entries are vertices, cubes take the max of their corners (4/6-connected); "
+                   "cells: entries are top cubes, faces take the min around them (8/26-connected).")
+@click.option("--superlevel", is_flag=True, help="Superlevel sets {f >= s}: the curve of -f (its scale is -s).")
+@click.option("--mask-nan", is_flag=True, help="NaN entries are missing (default: refused).")
+@click.option("--grid", default=None, help="START:STOP:COUNT scales to sample, within the values' range.")
+@click.option("--block", default=None, help="Entries each task owns along each axis, e.g. 64,64,64 (with --run).")
+@click.option("--out", "out", default=None, help="Write the curve here (.csv, .json, .npz), in process.")
+@click.option("--format", "fmt", type=click.Choice(CURVE_FORMATS), default=None,
+              help="Output format (default: from --out's ending).")
+@click.option("--run", "run_url", default=None,
+              help="Compute as a resumable run on this run store (a path or fsspec URL all workers reach).")
+@click.option("--discard", is_flag=True, help="Delete committed work of an unfinished store at --run.")
+@_executor_options
+@storage_opts
+@guarded
+def field_cmd(input: str, key: str | None, construction: str, superlevel: bool, mask_nan: bool,
+              grid: str | None, block: str | None, out: str | None, fmt: str | None,
+              run_url: str | None, discard: bool, progress: bool,
+              store_options: dict[str, Any] | None, **how: Any) -> None:
+    """The exact curve of an array's cubical filtration (image, volume, any n-D array)."""
+    from .field_sources import read_field, stays_in_place
+    from .jobs.field import FieldParams
+
+    grid_values = _grid(grid)
+    block_shape = None
+    if block is not None:
+        try:
+            block_shape = tuple(int(x) for x in block.split(","))
+        except ValueError:
+            fail(f"--block must be comma-separated integers, got {block!r}", EXIT_USAGE)
+    params = FieldParams.checked(construction, superlevel, mask_nan, block_shape,
+                                 names={"construction": "--construction", "block": "--block"})
+    if run_url is None:
+        if out is not None and block is not None:
+            say("warning: --block applies to --run only")
+        fmt = check_output(out, fmt)
+        from .cubical import field_curve
+
+        arr = read_field(input, key)
+        curve = field_curve(arr, construction, superlevel=superlevel, mask_nan=mask_nan)
+        say(f"{arr.ndim}-D array of shape {tuple(arr.shape)} ({arr.dtype}), {construction}: "
+            f"{curve.n_jumps} jumps on [{curve.start:g}, {curve.eps:g}], chi(end) = {curve.final}")
+        _emit_curve(curve, grid_values, out, fmt)
+        return
+    if out is not None:
+        fail("--out writes an in-process curve; with --run use `chitally export`", EXIT_USAGE)
+    from .jobs.field import create_or_open
+
+    where = _where(**how)
+    source: Any = input if stays_in_place(input) else read_field(input, key)
+    if isinstance(source, str) and "://" not in source:
+        source = os.path.abspath(source)
+    store = create_or_open(_store_url(run_url), source, params, key=key, storage_options=store_options,
+                           discard=discard)
+    _report(_run_store(store, where, progress), grid_values)
 
 
 @main.command("batch")

@@ -109,8 +109,8 @@ class RunReport:
 
     @property
     def curve(self) -> Any:
-        """The curve of a complete `cloud` or `graph` run (None otherwise)."""
-        return self.result if self.kind in ("cloud", "graph") else None
+        """The curve of a complete `cloud`, `graph` or `field` run (None otherwise)."""
+        return self.result if self.kind in ("cloud", "graph", "field") else None
 
 
 class _Driver(Callbacks):

@@ -42,7 +42,16 @@ GRAPH = JobKind(
     unit="vertices",
 )
 
-KINDS: dict[str, JobKind] = {k.name: k for k in (CLOUD, BATCH, BANDS, GRAPH)}
+FIELD = JobKind(
+    name="field",
+    task="chitally.jobs.field:compute_task",
+    fold="chitally.jobs.field:FieldSum",
+    outputs=(("values", "<f8"), ("jumps", "<i8"), ("range", "<f8"), ("present", "<i8")),
+    read="chitally.jobs.field:read_curve",
+    unit="blocks",
+)
+
+KINDS: dict[str, JobKind] = {k.name: k for k in (CLOUD, BATCH, BANDS, GRAPH, FIELD)}
 
 
 def kind_of(name: str) -> JobKind:
@@ -53,4 +62,4 @@ def kind_of(name: str) -> JobKind:
         raise ValueError(f"unknown job kind {name!r}; this chitally runs {sorted(KINDS)}") from None
 
 
-__all__ = ["BANDS", "BATCH", "CLOUD", "GRAPH", "KINDS", "Fold", "JobKind", "TaskOutput", "kind_of"]
+__all__ = ["BANDS", "BATCH", "CLOUD", "FIELD", "GRAPH", "KINDS", "Fold", "JobKind", "TaskOutput", "kind_of"]

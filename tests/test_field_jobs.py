@@ -1,0 +1,153 @@
+"""The `field` job kind (chitally.jobs.field): the engine's curve of an array equals the
+in-process curve, which tests/test_cubical.py checks against gudhi and scikit-image; here
+the distributed curve is also checked against gudhi directly (source named at the check)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from cubical_references import gudhi_chi
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from chitally import field_curve
+from chitally.execute import Callbacks, SerialExecutor
+from chitally.jobs.field import FieldParams, create_or_open, field_run
+from chitally.runs import Where, open_run, read_result
+from chitally.validate import InputError
+
+
+def _array(seed, shape, levels=6):
+    rng = np.random.default_rng(seed)
+    return (rng.integers(0, levels, size=shape) * 0.25).astype(np.float32)
+
+
+@pytest.mark.parametrize("construction", ["vertices", "cells"])
+def test_in_memory_field_on_the_serial_engine_matches_gudhi(tmp_path, construction):
+    a = _array(1, (13, 17, 9))
+    report = field_run(a, str(tmp_path / "f.zarr"), construction=construction, block=(5, 4, 9))
+    assert report.complete and report.n_tasks == 3 * 5
+    c = report.curve
+    assert c == field_curve(a, construction)
+    scales = np.unique(a).astype(np.float64)
+    # source: gudhi CubicalComplex persistence, chi = sum_d (-1)^d #alive intervals
+    np.testing.assert_array_equal(c.at(scales), gudhi_chi(a, construction, scales))
+    assert read_result(open_run(str(tmp_path / "f.zarr"))) == c
+
+
+def test_zarr_input_stays_where_it_is(tmp_path):
+    import zarr
+
+    a = _array(2, (20, 30))
+    url = str(tmp_path / "in.zarr")
+    z = zarr.create_array(url, shape=a.shape, chunks=(7, 8), dtype=a.dtype)
+    z[...] = a
+    report = field_run(url, str(tmp_path / "f.zarr"), construction="cells", superlevel=True)
+    assert report.curve == field_curve(a, "cells", superlevel=True)
+    store = open_run(str(tmp_path / "f.zarr"))
+    assert store.input_names == []  # nothing copied
+    assert store.fingerprint["url"] == url and store.fingerprint["shape"] == [20, 30]
+    assert store.attrs["block"] == [20, 30] or store.n_tasks >= 1
+    # the same input and parameters resume the same store; other parameters are refused
+    again = field_run(url, str(tmp_path / "f.zarr"), construction="cells", superlevel=True)
+    assert again.curve == report.curve
+    from chitally.store import StoreMismatch
+
+    with pytest.raises(StoreMismatch):
+        field_run(url, str(tmp_path / "f.zarr"), construction="vertices", superlevel=True)
+
+
+def test_zarr_group_key_and_npy_memory_map(tmp_path):
+    import zarr
+
+    a = _array(3, (9, 8, 7))
+    g = zarr.open_group(str(tmp_path / "g.zarr"), mode="w")
+    g.create_array("vol", shape=a.shape, chunks=(4, 4, 4), dtype=a.dtype)[...] = a
+    r = field_run(str(tmp_path / "g.zarr"), str(tmp_path / "f1.zarr"), key="vol", block=(4, 4, 4))
+    assert r.n_tasks == 3 * 2 * 2 and r.curve == field_curve(a)
+    with pytest.raises(InputError, match="key"):
+        field_run(str(tmp_path / "g.zarr"), str(tmp_path / "f2.zarr"))
+    np.save(tmp_path / "v.npy", a)
+    r = field_run(str(tmp_path / "v.npy"), str(tmp_path / "f3.zarr"), block=(2, 8, 7))
+    assert r.curve == field_curve(a)
+
+
+def test_nan_in_a_block_fails_its_task_with_the_position(tmp_path):
+    a = _array(4, (6, 6))
+    a[4, 1] = np.nan
+    report = field_run(a, str(tmp_path / "f.zarr"), block=(3, 3))
+    assert not report.complete and report.failed
+    assert any("NaN at position (4, 1)" in m for m in report.failed.values())
+    ok = field_run(a, str(tmp_path / "g.zarr"), block=(3, 3), mask_nan=True)
+    assert ok.curve == field_curve(a, mask_nan=True)
+
+
+def test_partial_commits_then_resume_give_the_same_curve(tmp_path):
+    a = _array(5, (10, 11))
+    params = FieldParams.checked("cells", block=(3, 4))
+    store = create_or_open(str(tmp_path / "f.zarr"), a, params)
+    # tasks committed by an earlier, interrupted run
+    SerialExecutor(threads=1, retries=0).run(store, [0, 2, 5], Callbacks())
+    report = field_run(a, str(tmp_path / "f.zarr"), construction="cells", block=(3, 4))
+    assert report.computed == store.n_tasks - 3
+    assert report.curve == field_curve(a, "cells")
+
+
+@settings(max_examples=6, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(seed=st.integers(0, 10**6), construction=st.sampled_from(["vertices", "cells"]),
+       block=st.tuples(st.integers(2, 7), st.integers(2, 6), st.integers(1, 5)))
+def test_any_block_shape_gives_the_same_curve(tmp_path_factory, seed, construction, block):
+    a = _array(seed, (7, 6, 5), levels=3)
+    url = str(tmp_path_factory.mktemp("f") / "f.zarr")
+    assert field_run(a, url, construction=construction, block=block).curve == field_curve(a, construction)
+
+
+@pytest.mark.cluster
+def test_two_process_cluster_gives_the_same_curve(tmp_path):
+    a = _array(6, (16, 12, 10))
+    for construction in ("vertices", "cells"):
+        url = str(tmp_path / f"{construction}.zarr")
+        report = field_run(a, url, Where(workers=2, threads=1), construction=construction, block=(5, 5, 5))
+        assert report.curve == field_curve(a, construction)
+
+
+def test_command_line_in_process_and_as_a_run(tmp_path):
+    from click.testing import CliRunner
+
+    from chitally.cli import main
+    from chitally.curve import Curve
+
+    a = _array(7, (9, 10, 6))
+    np.save(tmp_path / "v.npy", a)
+    runner = CliRunner()
+    r = runner.invoke(main, ["field", str(tmp_path / "v.npy"), "--construction", "cells",
+                             "--out", str(tmp_path / "c.json")])
+    assert r.exit_code == 0, r.output
+    assert Curve.load(tmp_path / "c.json") == field_curve(a, "cells")
+    r = runner.invoke(main, ["field", str(tmp_path / "v.npy"), "--construction", "cells", "--superlevel",
+                             "--run", str(tmp_path / "f.zarr"), "--serial", "--block", "4,4,6",
+                             "--no-progress"])
+    assert r.exit_code == 0, r.output
+    assert read_result(open_run(str(tmp_path / "f.zarr"))) == field_curve(a, "cells", superlevel=True)
+    a[1, 2, 3] = np.nan
+    np.save(tmp_path / "n.npy", a)
+    r = runner.invoke(main, ["field", str(tmp_path / "n.npy")])
+    assert r.exit_code == 2 and "NaN at position (1, 2, 3)" in r.output
+
+
+def test_command_line_reads_png_and_tiff(tmp_path):
+    pil = pytest.importorskip("PIL.Image")
+    tifffile = pytest.importorskip("tifffile")
+    from click.testing import CliRunner
+
+    from chitally.cli import main
+    from chitally.field_sources import read_field
+
+    img = (np.random.default_rng(8).integers(0, 4, size=(12, 14)) * 60).astype(np.uint8)
+    pil.fromarray(img).save(tmp_path / "i.png")
+    vol = _array(9, (4, 8, 9))
+    tifffile.imwrite(tmp_path / "v.tif", vol, photometric="minisblack")
+    np.testing.assert_array_equal(read_field(str(tmp_path / "i.png")), img)
+    np.testing.assert_array_equal(read_field(str(tmp_path / "v.tif")), vol)
+    r = CliRunner().invoke(main, ["field", str(tmp_path / "i.png"), "--out", str(tmp_path / "c.npz")])
+    assert r.exit_code == 0, r.output
