@@ -432,6 +432,20 @@ def _report(report: Any, grid: Any = None) -> None:
     say(f"export: chitally export {report.url} --out FILE")
 
 
+def _compile_first(max_dim: int | None, dim: int | None) -> float:
+    """Compile (or load) the kernels a run needs before it starts, saying so when the
+    cache is cold, so a first run does not sit silent at 0 %; returns the seconds."""
+    from .warmup import kernels_cached, warm_up
+
+    dims = None if dim is None else [dim]
+    if kernels_cached([max_dim], dims):
+        return 0.0
+    say("compiling kernels (first run only, about a minute; `python -m chitally.warmup` does it ahead)")
+    seconds = warm_up([max_dim], dims, processes=min(2, os.cpu_count() or 1))
+    say(f"kernels compiled in {seconds:.0f} s")
+    return seconds
+
+
 # ------------------------------------------------------------------ commands
 
 @main.command("curve")
@@ -455,6 +469,7 @@ def curve_cmd(input: str, eps: float, max_dim: int | None, key: str | None, colu
     from .inprocess import euler_curve
 
     points = _read(input, key, columns, index_col)
+    _compile_first(params.max_dim, points.shape[1])
     curve, stats = euler_curve(points, params.eps, params.max_dim, threads=threads, return_stats=True)
     say(f"{points.shape[0]} points in R^{points.shape[1]}, eps {params.eps:g}, max_dim "
         f"{params.max_dim if params.max_dim is not None else 'none'}: {stats.edges} edges; "
@@ -549,6 +564,7 @@ def run_cmd(input: str, eps: float, max_dim: int | None, key: str | None, column
     grid_values = _grid(grid)
     where = _where(**how)
     points = _read(input, key, columns, index_col)  # validated before any store exists
+    _compile_first(params.max_dim, points.shape[1])  # workers then load from the cache
     store = create_or_open(_store_url(out), points, params, storage_options=store_options,
                            discard=discard)
     from .jobs.cloud import read_plan
@@ -1220,6 +1236,7 @@ def demo_cmd(n_points: int, out: str, workers: int | None, seed: int) -> None:
     where = _where(None, None, workers, None, False, None, False, None)
     points, eps, story = demo_scenario(n_points, seed)
     say(story)
+    _compile_first(None, points.shape[1])
     store = create_or_open(_store_url(out), points, _cloud_params(eps, None))
     _report(_run_store(store, where, True), parse_grid(f"0:{eps!r}:9"))
 
