@@ -39,6 +39,7 @@ def _env() -> dict[str, str]:
 
 
 @pytest.mark.parametrize("name", ["single_cloud.py", "feature_matrix.py", "classifier.py", "compare_catalogues.py",
+                                  "graphs_and_fields.py",
                                   "distributed_run.py"])
 def test_python_examples_run_as_scripts(name, tmp_path):
     res = subprocess.run([sys.executable, str(EXAMPLES / name)], cwd=tmp_path, env=_env(),
@@ -53,10 +54,13 @@ def test_cli_example_runs(tmp_path):
     (tmp_path / "clouds").mkdir()
     for i in range(40):
         np.save(tmp_path / "clouds" / f"c{i}.npy", rng.random((60, 3)))
+    (tmp_path / "edges.csv").write_text("u,v\n0,1\n1,2\n2,0\n2,3\n")
+    np.save(tmp_path / "image.npy", rng.normal(size=(64, 64)))
     bindir = Path(sys.executable).parent
     env = _env()
     env["PATH"] = os.pathsep.join([str(bindir), env.get("PATH", "")])
     res = subprocess.run(["bash", "-e", str(EXAMPLES / "cli.sh")], cwd=tmp_path, env=env,
                          capture_output=True, text=True, timeout=900)
     assert res.returncode == 0, res.stderr[-3000:]
-    assert (tmp_path / "curve.json").exists() and (tmp_path / "features.csv").exists()
+    for name in ("curve.json", "features.csv", "graph-curve.csv", "field-curve.csv"):
+        assert (tmp_path / name).exists(), name

@@ -1,4 +1,4 @@
-# docs/examples/cli.sh: the command line, in a folder holding cloud.npy and clouds/
+# docs/examples/cli.sh: the command line, in a folder holding cloud.npy, clouds/, edges.csv and image.npy
 chitally scan   cloud.npy                                          # which eps? degrees, edges, time and memory per eps
 chitally plan   cloud.npy --eps 0.05                               # dry run: tasks, halos, memory; writes nothing
 chitally curve  cloud.npy --eps 0.05 --max-dim 3 --out curve.csv   # in process
@@ -9,3 +9,5 @@ chitally export run.zarr --out curve.json                          # exact steps
 chitally export run.zarr --grid 0:0.05:11 --out samples.csv        # samples on a grid
 chitally batch  clouds --eps 0.5 --grid 0:0.5:32 --out fm.zarr --workers 2
 chitally export fm.zarr --out features.csv                         # name,chi(0.0),...
+chitally graph  edges.csv --values degree --out graph-curve.csv     # a graph's lower-star curve
+chitally field  image.npy --construction cells --out field-curve.csv # an image's sublevel curve
