@@ -410,3 +410,30 @@ def test_tiny_tasks_warn_with_the_figures(tmp_path, runner, monkeypatch):
     curve = read_result(open_run(str(run)))
     assert curve == ct.euler_curve(points, eps)
     assert curve == gudhi_curve(points, eps, None)  # gudhi RipsComplex
+
+
+@pytest.mark.parametrize("out, extra, words", [
+    ("missing/c.csv", [], "does not exist"),
+    ("c.txt", [], "cannot tell the format"),
+    (".", ["--format", "csv"], "is a folder"),
+])
+def test_bad_output_paths_exit_2_before_any_computation(tmp_path, runner, src, monkeypatch, out, extra,
+                                                        words):
+    import chitally.inprocess
+
+    def no_kernel(*args, **kwargs):
+        raise AssertionError("the curve was computed before the output path was checked")
+
+    monkeypatch.setattr(chitally.inprocess, "euler_curve", no_kernel)
+    monkeypatch.chdir(tmp_path)
+    res = runner.invoke(main, ["curve", str(src), "--eps", "0.1", "--out", out, *extra])
+    assert res.exit_code == EXIT_USAGE, res.output
+    line = one_error_line(res)
+    assert f"--out {out}" in line and words in line
+
+
+def test_export_to_a_missing_folder_exits_2_naming_the_path(tmp_path, runner, complete_run):
+    target = tmp_path / "nowhere" / "curve.csv"
+    res = runner.invoke(main, ["export", str(complete_run), "--out", str(target)])
+    assert res.exit_code == EXIT_USAGE, res.output
+    assert str(target) in one_error_line(res) and not target.parent.exists()

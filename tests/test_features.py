@@ -229,3 +229,35 @@ def test_killed_batch_driver_resumes_without_recomputing_a_group(tmp_path, proce
     from chitally.runs import read_result
 
     assert np.array_equal(read_result(open_run(str(run_store))).values, ref.values)
+
+
+def test_a_damaged_group_output_is_set_aside_and_computed_again(tmp_path):
+    """Flip a byte of one group's stored rows after a complete run, and drop the result:
+    the resume finds the digest wrong, sets the group aside to quarantine, recomputes it
+    and ends with the in-process matrix."""
+    from engine_fixtures import flip_byte
+
+    from chitally.runs import execute
+    from chitally.execute import SerialExecutor
+
+    clouds = clouds_of(np.random.default_rng(12).integers(5, 40, 40), seed=12)
+    grid = np.linspace(0, 0.3, 5)
+    ref = feature_matrix(clouds, 0.3, grid)
+    store = create_or_open(str(tmp_path / "fm.zarr"), read_collection(clouds), BatchParams.checked(0.3, grid))
+    assert run(store, Where(serial=True)).result == ref
+    victim = 1
+    chunk = next((tmp_path / "fm.zarr" / "outputs" / f"task-{victim:06d}" / "rows" / "c").rglob("*"))
+    while chunk.is_dir():
+        chunk = next(chunk.iterdir())
+    flip_byte(chunk)
+    (tmp_path / "fm.zarr" / "result" / "record.json").unlink()
+    again = open_run(str(tmp_path / "fm.zarr"))
+    # a new reducer starts from the last checkpoint; drop them so every group is read again
+    import shutil
+
+    shutil.rmtree(tmp_path / "fm.zarr" / "checkpoints")
+    (tmp_path / "fm.zarr" / "checkpoints").mkdir()
+    report = execute(again, SerialExecutor())
+    assert victim in report.set_aside and report.computed == 1
+    assert report.result == ref
+    assert any((tmp_path / "fm.zarr" / "quarantine").iterdir())

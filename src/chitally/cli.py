@@ -334,6 +334,7 @@ class ProgressBar:
     def __init__(self, enabled: bool, unit: str = "tasks") -> None:
         self.enabled = enabled
         self.unit = unit
+        self.units = 0
         self.bar: Any = None
         self.cost: Any = None
 
@@ -360,6 +361,10 @@ class ProgressBar:
 
     def task_done(self, result: Any) -> None:
         if self.bar is not None and self.cost is not None:
+            # progress in the kind's own unit (clouds, points, replicates) beside the bar
+            self.units += int(result.counters.get(self.unit, 0))
+            if self.units:
+                self.bar.set_description(f"{self.units} {self.unit} done", refresh=False)
             self.bar.update(float(self.cost[result.task]))
 
     def task_retry(self, task: int, attempt: str, message: str) -> None:
