@@ -29,6 +29,7 @@ import numpy as np
 
 from .kernel import (
     _count_capped,
+    _fill_rows,
     _count_capped1,
     _reduced_euler,
     _reduced_euler1,
@@ -61,16 +62,7 @@ def fill_csr_by_rank(n, elo, ehi, offsets, nbrs, erank):
         offsets[ehi[g] + 1] += 1
     for i in range(n):
         offsets[i + 1] += offsets[i]
-    fill = offsets[:-1].copy()
-    for g in range(m):
-        a = elo[g]
-        b = ehi[g]
-        nbrs[fill[a]] = b
-        erank[fill[a]] = g
-        fill[a] += 1
-        nbrs[fill[b]] = a
-        erank[fill[b]] = g
-        fill[b] += 1
+    _fill_rows(elo, ehi, 0, m, offsets[:-1].copy(), nbrs, erank)
 
 
 @nb.njit(nogil=True, cache=True)

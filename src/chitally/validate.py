@@ -524,3 +524,18 @@ def validate_column(column: Any, *, name: str = "index_col") -> int | str | None
     if column is None:
         return None
     return _column_item(column, name, _short(column))
+
+
+def validate_flag(value: Any, *, name: str) -> bool:
+    """True or False (numpy booleans too); anything else is refused naming `name`."""
+    if not isinstance(value, (bool, np.bool_)):
+        raise InputError(f"{name} must be True or False, got {value!r}")
+    return bool(value)
+
+
+def validate_finite(value: Any, *, name: str) -> float:
+    """A finite real number (not a boolean) as a float, -0.0 folded into 0.0."""
+    if isinstance(value, (bool, np.bool_)) or not isinstance(
+            value, (int, float, np.integer, np.floating)) or not math.isfinite(float(value)):
+        raise InputError(f"{name} must be a finite number, got {value!r}")
+    return float(value) + 0.0

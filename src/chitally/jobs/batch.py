@@ -33,7 +33,14 @@ from ..graph_sources import GraphCollection
 from ..graphs import filtered_graph, owned_jumps
 from ..kernel import count_jumps
 from ..store import JobSpec, ResultDamaged, RunStore
-from ..validate import InputError, validate_eps, validate_max_dim, validate_positive
+from ..validate import (
+    InputError,
+    validate_eps,
+    validate_finite,
+    validate_flag,
+    validate_max_dim,
+    validate_positive,
+)
 from . import BATCH
 
 #: Default number of tasks a collection is cut into (fewer for fewer clouds).
@@ -209,14 +216,8 @@ class GraphBatchParams:
                 raise InputError(f"{n['values']} {values!r}: heat:<t> needs a number t > 0")
         if weights is not None and not isinstance(weights, str):
             raise InputError(f"{n['weights']}: for a collection of graphs, the name of an edge attribute or None")
-        if not isinstance(superlevel, (bool, np.bool_)):
-            raise InputError(f"{n['superlevel']} must be True or False, got {superlevel!r}")
-        thr = None
-        if threshold is not None:
-            if isinstance(threshold, (bool, np.bool_)) or not isinstance(
-                    threshold, (int, float, np.integer, np.floating)) or not math.isfinite(float(threshold)):
-                raise InputError(f"{n['threshold']} must be a finite number, got {threshold!r}")
-            thr = float(threshold) + 0.0
+        superlevel = validate_flag(superlevel, name=n["superlevel"])
+        thr = None if threshold is None else validate_finite(threshold, name=n["threshold"])
         g = checked_grid(grid, n["grid"])
         if thr is not None:
             end = -thr if superlevel else thr

@@ -34,7 +34,7 @@ from ..graphs import (
     graph_jumps,
 )
 from ..store import JobSpec, RunStore, arrays_digest
-from ..validate import InputError, validate_count, validate_max_dim
+from ..validate import InputError, validate_count, validate_finite, validate_flag, validate_max_dim
 from . import GRAPH
 
 #: Default number of tasks (fewer for small graphs: see `MIN_TASK_COST`).
@@ -83,14 +83,8 @@ class GraphParams:
              "superlevel": "superlevel", **(names or {})}
         if isinstance(values, str) and values == "auto":
             values = "degree" if weights is None else None
-        if not isinstance(superlevel, (bool, np.bool_)):
-            raise InputError(f"{n['superlevel']} must be True or False, got {superlevel!r}")
-        thr = None
-        if threshold is not None:
-            if isinstance(threshold, (bool, np.bool_)) or not isinstance(
-                    threshold, (int, float, np.integer, np.floating)) or not math.isfinite(float(threshold)):
-                raise InputError(f"{n['threshold']} must be a finite number, got {threshold!r}")
-            thr = float(threshold) + 0.0
+        superlevel = validate_flag(superlevel, name=n["superlevel"])
+        thr = None if threshold is None else validate_finite(threshold, name=n["threshold"])
         try:
             first = check_start(start)
         except InputError:
