@@ -48,21 +48,29 @@ def work_of(points: np.ndarray, eps: float) -> float:
 
 
 def crossover() -> None:
-    print(f"count_jumps, 1 thread against {cores()}; best of 5; counting work = sum(deg^2 + 1)")
-    print(f"{'case':<26} {'work':>10} {'1 thread ms':>12} {'all ms':>9} {'all/1':>7}")
+    print(f"counting phase of count_jumps (seconds_count), 1 thread against {cores()}, interleaved, best of 5;")
+    print("counting work = sum over rows of (degree^2 + 1), what kernel.default_threads looks at")
+    print(f"{'case':<26} {'work':>10} {'1 thread ms':>12} {'all ms':>9} {'all/1':>7} {'ns/unit':>8}")
     rng = np.random.default_rng(0)
-    for dims, cap in ((3, None), (3, 3), (3, 2), (64, None), (64, 2)):
-        for n in (100, 300, 1000, 3000, 10000):
+    for dims, cap, sizes in ((3, None, (300, 1000, 3000, 10000, 30000)), (3, 3, (1000, 3000, 10000, 30000)),
+                             (3, 2, (1000, 3000, 10000, 30000)), (64, None, (300, 1000, 3000)),
+                             (64, 2, (300, 1000, 3000))):
+        for n in sizes:
             points = rng.random((n, dims))
-            # about 12 neighbours a row whatever n: the 12/n quantile of the distances
+            # about 15 neighbours a row whatever n: the 15/n quantile of the distances
             sample = points[:400]
             d = np.sqrt(((sample[:, None, :] - sample[None, :, :]) ** 2).sum(-1))
-            eps = float(np.quantile(d[np.triu_indices(len(sample), 1)], min(0.5, 12.0 / n)))
-            work = work_of(points, eps)
-            one = best(lambda: kernel.count_jumps(points, eps, cap, threads=1), 5)
-            every = best(lambda: kernel.count_jumps(points, eps, cap, threads=cores()), 5)
+            eps = float(np.quantile(d[np.triu_indices(len(sample), 1)], min(0.5, 15.0 / n)))
+            coords = kernel.build_tree(points, 16)[0]
+            work = work_of(coords, eps)
+            times: dict[int, list[float]] = {1: [], cores(): []}
+            for _ in range(5):
+                for t in times:
+                    times[t].append(kernel.count_jumps(coords, eps, cap, threads=t).stats.seconds_count)
+            one, every = min(times[1]), min(times[cores()])
             name = f"R^{dims} n={n} cap {cap}"
-            print(f"{name:<26} {work:10.3g} {one * 1e3:12.3f} {every * 1e3:9.3f} {every / one:7.2f}", flush=True)
+            print(f"{name:<26} {work:10.3g} {one * 1e3:12.3f} {every * 1e3:9.3f} {every / one:7.2f} "
+                  f"{one / work * 1e9:8.1f}", flush=True)
 
 
 def many_clouds(count: int, rev: str) -> None:

@@ -451,15 +451,18 @@ def test_ctrl_c_stops_a_long_call_within_a_second(threads: int) -> None:
 
 
 def test_default_threads_by_the_size_of_the_counting() -> None:
-    """One thread below the threshold, every usable core from it on."""
+    """One thread below the threshold (higher at cap 2), every usable core from it on."""
     import os
 
-    from chitally.kernel import AUTO_THREADS_WORK, default_threads
+    from chitally.kernel import AUTO_THREADS_WORK, AUTO_THREADS_WORK_CAP2, default_threads
 
     cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
-    assert default_threads(0.0) == 1
-    assert default_threads(AUTO_THREADS_WORK - 1.0) == 1
-    assert default_threads(float(AUTO_THREADS_WORK)) == cores
+    for max_dim in (None, 3, 5):
+        assert default_threads(0.0, max_dim) == 1
+        assert default_threads(AUTO_THREADS_WORK - 1.0, max_dim) == 1
+        assert default_threads(float(AUTO_THREADS_WORK), max_dim) == cores
+    assert default_threads(AUTO_THREADS_WORK_CAP2 - 1.0, 2) == 1
+    assert default_threads(float(AUTO_THREADS_WORK_CAP2), 2) == cores
 
 
 def test_leaf_order_is_a_permutation_of_spatially_grouped_rows() -> None:
