@@ -8,11 +8,12 @@ core, best of 5 each; the counting work (the sum over rows of degree^2 + 1, what
 
 Part 2: per-cloud time of euler_curve on 1,000 clouds of 100 points in R^3 and in R^64
 (uniform in the unit cube, eps the 10% quantile of the distances: about 10 neighbours a
-point), uncapped, with the old default (threads = every core), the new default
-(threads=None) and the old code's default (the package at --baseline, imported beside
-this one). Best of 3 passes over the 1,000 clouds, in this one process.
+point), uncapped: the old code (the package at --baseline, imported beside this one)
+with its default (every core) and with one thread, the new code with every core (the
+old default) and with threads=None (the new default). Best of 3 passes over the 1,000
+clouds, the ways taking turns, in this one process.
 
-Run:  python benchmarks/bench_threads.py [--crossover] [--clouds 1000] [--baseline REV]
+Run:  python benchmarks/bench_threads.py [--crossover] [--clouds 1000] [--rounds 3] [--baseline REV]
 """
 
 from __future__ import annotations
@@ -73,40 +74,45 @@ def crossover() -> None:
                   f"{one / work * 1e9:8.1f}", flush=True)
 
 
-def many_clouds(count: int, rev: str) -> None:
+def many_clouds(count: int, rev: str, rounds: int) -> None:
     base = baseline.load(rev)
-    print(f"\n{count} clouds of 100 points, uncapped; ms per cloud, best of 3 passes; {cores()} cores")
-    print(f"{'points':<8} {'old code, default':>18} {'threads=all':>12} {'threads=None':>13} {'threads=1':>10}")
+    print(f"\n{count} clouds of 100 points, uncapped; ms per cloud (wall / CPU), best of {rounds} passes taken in "
+          f"turn; {cores()} cores")
+    names = ("old code, default", "old code, threads=1", "threads=all", "threads=None (new default)")
+    print(f"{'points':<8}" + "".join(f"{n:>28}" for n in names))
     for dims in (3, 64):
         rng = np.random.default_rng(dims)
         clouds = [rng.random((100, dims)) for _ in range(count)]
         d = np.sqrt(((clouds[0][:, None, :] - clouds[0][None, :, :]) ** 2).sum(-1))
         eps = float(np.quantile(d[np.triu_indices(100, 1)], 0.1))
+        ways = [lambda c: base.euler_curve(c, eps), lambda c: base.euler_curve(c, eps, threads=1),
+                lambda c: euler_curve(c, eps, threads=cores()), lambda c: euler_curve(c, eps)]
         for c in clouds[:3]:  # compile (or load) outside the timing
-            base.euler_curve(c, eps)
-            euler_curve(c, eps)
-            euler_curve(c, eps, threads=cores())
-
-        def run(fn) -> float:
-            return best(lambda: [fn(c) for c in clouds], 3) / count * 1e3
-
-        old = run(lambda c: base.euler_curve(c, eps))
-        every = run(lambda c: euler_curve(c, eps, threads=cores()))
-        auto = run(lambda c: euler_curve(c, eps))
-        one = run(lambda c: euler_curve(c, eps, threads=1))
-        print(f"R^{dims:<6} {old:18.3f} {every:12.3f} {auto:13.3f} {one:10.3f}", flush=True)
+            for f in ways:
+                f(c)
+        wall: list[list[float]] = [[] for _ in ways]
+        cpu: list[list[float]] = [[] for _ in ways]
+        for r in range(rounds):
+            for k in [(k + r) % len(ways) for k in range(len(ways))]:
+                t0, c0 = time.perf_counter(), time.process_time()
+                for c in clouds:
+                    ways[k](c)
+                wall[k].append((time.perf_counter() - t0) / count * 1e3)
+                cpu[k].append((time.process_time() - c0) / count * 1e3)
+        print(f"R^{dims:<6}" + "".join(f"{min(w):19.3f} /{min(c):6.3f}" for w, c in zip(wall, cpu)), flush=True)
 
 
 def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--crossover", action="store_true", help="only part 1")
     ap.add_argument("--clouds", type=int, default=1000)
+    ap.add_argument("--rounds", type=int, default=3, help="passes over the clouds per way")
     ap.add_argument("--baseline", default=baseline.DEFAULT_REV)
     args = ap.parse_args()
     if args.crossover:
         crossover()
         return
-    many_clouds(args.clouds, args.baseline)
+    many_clouds(args.clouds, args.baseline, args.rounds)
 
 
 if __name__ == "__main__":

@@ -17,7 +17,10 @@ already in edge order, and the jumps come out in increasing scale, so that group
 is one linear pass.
 
 This module knows nothing of files, Zarr or Dask: arrays in, arrays out. The compiled
-functions release the GIL so that callers may run several owned ranges in threads.
+functions release the GIL, and each runs over a range (of rows, edges, tree nodes) that
+the Python drivers here cut into blocks of about 50 ms (blocks.py): threads share the
+blocks of the counting, and Ctrl-C is seen between two blocks. `compiled_calls` lists
+what a run compiles (warmup.py compiles it ahead).
 """
 
 from __future__ import annotations
