@@ -19,9 +19,9 @@ import signal
 import threading
 import time
 
+import baseline
 import numpy as np
 
-import baseline
 from chitally import Curve, euler_curve
 from chitally.inprocess import _leaf_ordered
 from chitally.kernel import count_jumps
@@ -94,9 +94,9 @@ def main() -> None:
           " and against the old code")
     print(f"{'case':<34} {'blocked':>13} {'whole':>13} {'old':>13} {'blk/whole':>10} {'blk/old':>8}  same")
     for name, points, eps, cap in cases:
-        ways = {"blocked": lambda: euler_curve(points, eps, cap, threads=T),
-                "whole": lambda: whole(points, eps, cap, T),
-                "old": lambda: base.euler_curve(points, eps, cap, threads=T)}
+        ways = {"blocked": lambda p=points, e=eps, c=cap: euler_curve(p, e, c, threads=T),
+                "whole": lambda p=points, e=eps, c=cap: whole(p, e, c, T),
+                "old": lambda p=points, e=eps, c=cap: base.euler_curve(p, e, c, threads=T)}
         times: dict[str, list[float]] = {k: [] for k in ways}
         cpu: dict[str, list[float]] = {k: [] for k in ways}
         curves = {}

@@ -22,9 +22,9 @@ import argparse
 import os
 import time
 
+import baseline
 import numpy as np
 
-import baseline
 from chitally import kernel
 from chitally.inprocess import euler_curve
 
@@ -66,8 +66,8 @@ def crossover() -> None:
             work = work_of(coords, eps)
             times: dict[int, list[float]] = {1: [], cores(): []}
             for _ in range(5):
-                for t in times:
-                    times[t].append(kernel.count_jumps(coords, eps, cap, threads=t).stats.seconds_count)
+                for t, runs in times.items():
+                    runs.append(kernel.count_jumps(coords, eps, cap, threads=t).stats.seconds_count)
             one, every = min(times[1]), min(times[cores()])
             name = f"R^{dims} n={n} cap {cap}"
             print(f"{name:<26} {work:10.3g} {one * 1e3:12.3f} {every * 1e3:9.3f} {every / one:7.2f} "
@@ -85,8 +85,8 @@ def many_clouds(count: int, rev: str, rounds: int) -> None:
         clouds = [rng.random((100, dims)) for _ in range(count)]
         d = np.sqrt(((clouds[0][:, None, :] - clouds[0][None, :, :]) ** 2).sum(-1))
         eps = float(np.quantile(d[np.triu_indices(100, 1)], 0.1))
-        ways = [lambda c: base.euler_curve(c, eps), lambda c: base.euler_curve(c, eps, threads=1),
-                lambda c: euler_curve(c, eps, threads=cores()), lambda c: euler_curve(c, eps)]
+        ways = [lambda c, e=eps: base.euler_curve(c, e), lambda c, e=eps: base.euler_curve(c, e, threads=1),
+                lambda c, e=eps: euler_curve(c, e, threads=cores()), lambda c, e=eps: euler_curve(c, e)]
         for c in clouds[:3]:  # compile (or load) outside the timing
             for f in ways:
                 f(c)

@@ -1265,7 +1265,7 @@ class _Frame:
         self.stats = np.zeros(len(STAT_NAMES), dtype=np.int64)
 
     @classmethod
-    def take(cls, h: int, max_dim: int) -> "_Frame":
+    def take(cls, h: int, max_dim: int) -> _Frame:
         """This thread's kept workspace if it serves h rows and max_dim, else a new one.
         A kept workspace is as good as new: every vertex leaves rank_of as it found it."""
         frame = getattr(cls._kept, "frame", None)
@@ -1405,7 +1405,7 @@ class KernelStats:
     seconds_graph: float = 0.0
     seconds_count: float = 0.0
 
-    def __add__(self, other: "KernelStats") -> "KernelStats":
+    def __add__(self, other: KernelStats) -> KernelStats:
         return KernelStats(**{k: getattr(self, k) + getattr(other, k) for k in self.__dataclass_fields__})
 
     def as_dict(self) -> dict:

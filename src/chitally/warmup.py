@@ -24,7 +24,7 @@ import os
 import subprocess
 import sys
 import time
-from typing import Iterable, Sequence
+from collections.abc import Iterable, Sequence
 
 from . import kernel
 
@@ -85,7 +85,7 @@ def kernels_cached(max_dims: Iterable[int | None] = ALL_MAX_DIMS, dims: Iterable
     """
     try:
         return all(_ready(d, sig) for d, sig in _needed(max_dims, dims))
-    except Exception:  # numba internals: unknown means not cached
+    except Exception:  # noqa: BLE001 - numba internals: unknown means not cached
         return False
 
 
