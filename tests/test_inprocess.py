@@ -382,7 +382,7 @@ def test_huge_coordinates_follow_the_rule_or_are_refused() -> None:
 
 # ------------------------------------------------------------------ Ctrl-C
 
-# 343 copies of one cluster of 150 points, far enough apart to share no edge; the
+# 512 copies of one cluster of 150 points, far enough apart to share no edge; the
 # coordinates sit on a grid of 2^-20 and the offsets are integers, so every copy has the
 # very same squared lengths and the same counting work. The call is interrupted by a
 # SIGINT sent to the process 1.5 s after it starts.
@@ -400,7 +400,7 @@ for _ in range(3):
     t = time.perf_counter()
     euler_curve(cluster, 0.8, 5, threads=1)
     one.append(time.perf_counter() - t)
-side = 7
+side = 8
 offsets = 4.0 * np.stack(np.meshgrid(*[np.arange(side)] * 3), -1).reshape(-1, 3)
 cloud = (offsets[:, None, :] + cluster[None]).reshape(-1, 3)
 sent = []
@@ -428,7 +428,7 @@ print(json.dumps({"outcome": outcome, "reaction": end - sent[0] if sent else Non
 def test_ctrl_c_stops_a_long_call_within_a_second(threads: int) -> None:
     """SIGINT during a long euler_curve raises KeyboardInterrupt within about a second of
     the signal (bounded at 2 s for a loaded machine) and leaves no thread running. The
-    call would take far longer: its 343 disjoint copies of a cluster cost 343 times one
+    call would take far longer: its 512 disjoint copies of a cluster cost 512 times one
     cluster's time, measured in the same process (Euler characteristic and the count are
     additive over components that share no edge)."""
     import json
