@@ -382,7 +382,7 @@ def test_huge_coordinates_follow_the_rule_or_are_refused() -> None:
 
 # ------------------------------------------------------------------ Ctrl-C
 
-# 343 copies of one cluster of 150 points, far enough apart to share no edge; the
+# 512 copies of one cluster of 150 points, far enough apart to share no edge; the
 # coordinates sit on a grid of 2^-20 and the offsets are integers, so every copy has the
 # very same squared lengths and the same counting work. The call is interrupted by a
 # SIGINT sent to the process 1.5 s after it starts.
@@ -400,7 +400,7 @@ for _ in range(3):
     t = time.perf_counter()
     euler_curve(cluster, 0.8, 5, threads=1)
     one.append(time.perf_counter() - t)
-side = 7
+side = 8
 offsets = 4.0 * np.stack(np.meshgrid(*[np.arange(side)] * 3), -1).reshape(-1, 3)
 cloud = (offsets[:, None, :] + cluster[None]).reshape(-1, 3)
 sent = []
@@ -428,7 +428,7 @@ print(json.dumps({"outcome": outcome, "reaction": end - sent[0] if sent else Non
 def test_ctrl_c_stops_a_long_call_within_a_second(threads: int) -> None:
     """SIGINT during a long euler_curve raises KeyboardInterrupt within about a second of
     the signal (bounded at 2 s for a loaded machine) and leaves no thread running. The
-    call would take far longer: its 343 disjoint copies of a cluster cost 343 times one
+    call would take far longer: its 512 disjoint copies of a cluster cost 512 times one
     cluster's time, measured in the same process (Euler characteristic and the count are
     additive over components that share no edge)."""
     import json
@@ -437,7 +437,7 @@ def test_ctrl_c_stops_a_long_call_within_a_second(threads: int) -> None:
     import sys
 
     done = subprocess.run([sys.executable, "-c", INTERRUPT_SCRIPT, str(threads)], capture_output=True,
-                          text=True, timeout=600, env=dict(os.environ))
+                          text=True, timeout=600, env=dict(os.environ), check=False)
     assert done.returncode == 0, done.stderr[-2000:]
     result = json.loads(done.stdout.strip().splitlines()[-1])
     expected = result["clusters"] * result["cluster_seconds"] / threads
@@ -451,15 +451,22 @@ def test_ctrl_c_stops_a_long_call_within_a_second(threads: int) -> None:
 
 
 def test_default_threads_by_the_size_of_the_counting() -> None:
-    """One thread below the threshold, every usable core from it on."""
+    """One thread below the threshold (higher at cap 2), every usable core from it on."""
     import os
 
-    from chitally.kernel import AUTO_THREADS_WORK, default_threads
+    from chitally.kernel import (
+        AUTO_THREADS_WORK,
+        AUTO_THREADS_WORK_CAP2,
+        default_threads,
+    )
 
     cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
-    assert default_threads(0.0) == 1
-    assert default_threads(AUTO_THREADS_WORK - 1.0) == 1
-    assert default_threads(float(AUTO_THREADS_WORK)) == cores
+    for max_dim in (None, 3, 5):
+        assert default_threads(0.0, max_dim) == 1
+        assert default_threads(AUTO_THREADS_WORK - 1.0, max_dim) == 1
+        assert default_threads(float(AUTO_THREADS_WORK), max_dim) == cores
+    assert default_threads(AUTO_THREADS_WORK_CAP2 - 1.0, 2) == 1
+    assert default_threads(float(AUTO_THREADS_WORK_CAP2), 2) == cores
 
 
 def test_leaf_order_is_a_permutation_of_spatially_grouped_rows() -> None:

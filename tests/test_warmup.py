@@ -145,7 +145,8 @@ def test_a_fresh_cache_is_cold_and_warm_up_fills_it(tmp_path: os.PathLike) -> No
     env = dict(os.environ, NUMBA_CACHE_DIR=str(tmp_path))
 
     def child(*args: str) -> subprocess.CompletedProcess:
-        done = subprocess.run([sys.executable, *args], env=env, capture_output=True, text=True, timeout=900)
+        done = subprocess.run([sys.executable, *args], env=env, capture_output=True, text=True, timeout=900,
+                              check=False)
         assert done.returncode == 0, done.stderr[-2000:]
         return done
 
@@ -159,3 +160,18 @@ def test_a_fresh_cache_is_cold_and_warm_up_fills_it(tmp_path: os.PathLike) -> No
     assert after["compiled"] == []
     again = child("-m", "chitally.warmup", "--max-dims", "1", "--dims", "2")
     assert again.stdout.startswith("chitally kernels loaded from numba's cache in ")
+
+
+def test_processes_share_whole_functions() -> None:
+    """Every function's signatures go to one process (one index file, one writer), and
+    every call to exactly one process."""
+    from chitally.warmup import _needed, _shares
+
+    calls = _needed([None, 1, 2, 3], None)
+    shares = _shares(calls, list(range(len(calls))), 3)
+    assert len(shares) == 3 and all(shares)
+    assert sorted(k for share in shares for k in share) == list(range(len(calls)))
+    owner = {}
+    for j, share in enumerate(shares):
+        for k in share:
+            assert owner.setdefault(id(calls[k][0]), j) == j

@@ -21,7 +21,8 @@ import contextlib
 import contextvars
 import threading
 import time
-from typing import Any, Callable, Iterator
+from collections.abc import Callable, Iterator
+from typing import Any
 
 import numpy as np
 
@@ -152,7 +153,7 @@ def run_blocks(
     def helper() -> None:
         try:
             work()
-        except BaseException as exc:  # re-raised in the main thread
+        except BaseException as exc:  # noqa: BLE001 - re-raised in the main thread
             failures.append(exc)
             stop.set()
 

@@ -55,10 +55,12 @@ def euler_curve(
     max_dim : int, optional
         Count simplices of dimension <= max_dim only; None counts all of them.
     threads : int, optional
-        Threads for the kernel. By default, one thread while the counting is small: while
-        the sum over points of (degree^2 + 1), degrees in the eps-graph, stays below
-        ``kernel.AUTO_THREADS_WORK`` (2^20, about a millisecond of counting), starting
-        threads costs more than they save; above it, every core the process may use.
+        Threads for the kernel. By default (None) the size of the counting decides: one
+        thread while the sum over points of (degree^2 + 1), degrees in the eps-graph,
+        stays below ``kernel.AUTO_THREADS_WORK`` (2^20; at max_dim=2
+        ``kernel.AUTO_THREADS_WORK_CAP2``, 2^23), about 20 ms of counting, where starting
+        threads costs more than they save; every core the process may use above it (see
+        `kernel.default_threads`). Many small clouds thus run one thread each.
     return_stats : bool
         Also return the kernel's counters (edges, cones, collapses, splits, seconds).
 

@@ -17,7 +17,10 @@ already in edge order, and the jumps come out in increasing scale, so that group
 is one linear pass.
 
 This module knows nothing of files, Zarr or Dask: arrays in, arrays out. The compiled
-functions release the GIL so that callers may run several owned ranges in threads.
+functions release the GIL, and each runs over a range (of rows, edges, tree nodes) that
+the Python drivers here cut into blocks of about 50 ms (blocks.py): threads share the
+blocks of the counting, and Ctrl-C is seen between two blocks. `compiled_calls` lists
+what a run compiles (warmup.py compiles it ahead).
 """
 
 from __future__ import annotations
@@ -1262,7 +1265,7 @@ class _Frame:
         self.stats = np.zeros(len(STAT_NAMES), dtype=np.int64)
 
     @classmethod
-    def take(cls, h: int, max_dim: int) -> "_Frame":
+    def take(cls, h: int, max_dim: int) -> _Frame:
         """This thread's kept workspace if it serves h rows and max_dim, else a new one.
         A kept workspace is as good as new: every vertex leaves rank_of as it found it."""
         frame = getattr(cls._kept, "frame", None)
@@ -1402,7 +1405,7 @@ class KernelStats:
     seconds_graph: float = 0.0
     seconds_count: float = 0.0
 
-    def __add__(self, other: "KernelStats") -> "KernelStats":
+    def __add__(self, other: KernelStats) -> KernelStats:
         return KernelStats(**{k: getattr(self, k) + getattr(other, k) for k in self.__dataclass_fields__})
 
     def as_dict(self) -> dict:
@@ -1547,12 +1550,18 @@ def _cap1(h: int, edges: tuple, lo: int, hi: int):
     return values, jumps, m
 
 
-def default_threads(work: float) -> int:
-    """Threads for counting `work` units (the sum over owned rows of degree^2 + 1)
-    when none are asked for: one below AUTO_THREADS_WORK, else every core this process
-    may use. Below the threshold, starting and joining threads costs more than they save
-    (measured by benchmarks/bench_threads.py)."""
-    if work < AUTO_THREADS_WORK:
+def default_threads(work: float, max_dim: int | None = None) -> int:
+    """Threads for counting `work` units when none are asked for.
+
+    The rule: one thread while the work (the sum over owned rows of degree^2 + 1) is
+    below AUTO_THREADS_WORK, or below AUTO_THREADS_WORK_CAP2 at cap 2, whose counting
+    costs about a tenth as much per unit; every core this process may use from there on.
+    Both thresholds stand for about 20 ms of counting on one thread: below that,
+    starting and joining threads and sharing the cores cost more than a second thread
+    saves (measured on a shared 2-core machine: benchmarks/bench_threads.py --crossover,
+    where threads began to pay between 20 and 50 ms).
+    """
+    if work < (AUTO_THREADS_WORK_CAP2 if max_dim == 2 else AUTO_THREADS_WORK):
         return 1
     try:
         return max(1, len(os.sched_getaffinity(0)))
@@ -1562,6 +1571,7 @@ def default_threads(work: float) -> int:
 
 # see default_threads
 AUTO_THREADS_WORK = 1 << 20
+AUTO_THREADS_WORK_CAP2 = 1 << 23
 
 # first block of the counting, in units of degree^2 + 1: small enough that even the
 # costliest rows met (dense neighbourhoods, high caps: microseconds a unit) finish it
@@ -1613,7 +1623,7 @@ def _count(coords, offsets, nbrs, erank, lo: int, hi: int, cap: int, out_jump: n
         weights = np.zeros(hi - lo + 1)
         np.cumsum(deg * deg + 1.0, out=weights[1:])
         if threads is None:
-            threads = default_threads(float(weights[-1]))
+            threads = default_threads(float(weights[-1]), cap)
         states = run_blocks(lo, hi, call, Pacer(_FIRST_WORK), weights=weights, threads=threads,
                             state=state)
     for s in states:

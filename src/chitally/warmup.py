@@ -24,7 +24,7 @@ import os
 import subprocess
 import sys
 import time
-from typing import Iterable, Sequence
+from collections.abc import Iterable, Sequence
 
 from . import kernel
 
@@ -85,7 +85,7 @@ def kernels_cached(max_dims: Iterable[int | None] = ALL_MAX_DIMS, dims: Iterable
     """
     try:
         return all(_ready(d, sig) for d, sig in _needed(max_dims, dims))
-    except Exception:  # numba internals: unknown means not cached
+    except Exception:  # noqa: BLE001 - numba internals: unknown means not cached
         return False
 
 
@@ -141,15 +141,20 @@ def warm_up(max_dims: Iterable[int | None] = ALL_MAX_DIMS, dims: Iterable[int] |
 
 
 def _shares(calls: list[tuple[object, tuple]], todo: list[int], processes: int) -> list[list[int]]:
-    """The indices `todo` of calls shared out between processes: costliest first, each to
-    the least loaded process."""
-    cost = {k: _COST.get(calls[k][0].py_func.__name__, 0.4) for k in todo}
-    shares: list[list[int]] = [[] for _ in range(max(1, min(processes, len(todo))))]
+    """The indices `todo` of calls shared out between processes: all signatures of one
+    function in the same process (each function has one cache index file, which two
+    processes writing at once could each overwrite with their own entries), costliest
+    functions first, each to the least loaded process."""
+    groups: dict[int, list[int]] = {}
+    for k in todo:
+        groups.setdefault(id(calls[k][0]), []).append(k)
+    cost = {g: sum(_COST.get(calls[k][0].py_func.__name__, 0.4) for k in ks) for g, ks in groups.items()}
+    shares: list[list[int]] = [[] for _ in range(max(1, min(processes, len(groups))))]
     load = [0.0] * len(shares)
-    for k in sorted(todo, key=lambda k: -cost[k]):
+    for g in sorted(groups, key=lambda g: -cost[g]):
         j = load.index(min(load))
-        shares[j].append(k)
-        load[j] += cost[k]
+        shares[j].extend(groups[g])
+        load[j] += cost[g]
     return shares
 
 
