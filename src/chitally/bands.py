@@ -52,6 +52,8 @@ from typing import Any
 
 import numpy as np
 
+from .curve import _write_atomically
+
 __all__ = [
     "BANDS_FORMAT",
     "BAND_KINDS",
@@ -358,19 +360,6 @@ def _resolve_format(path: Any, format: str | None) -> str:
     if fmt not in FORMATS:
         raise ValueError(f"bands are written as {', '.join(FORMATS)}, not {format!r}")
     return fmt
-
-
-def _write_atomically(path: Any, data: bytes) -> Path:
-    # never a half-written file under the final name
-    target = Path(os.fspath(path))
-    tmp = target.with_name(f".{target.name}.tmp-{os.getpid()}")
-    try:
-        tmp.write_bytes(data)
-        os.replace(tmp, target)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-    return target
 
 
 # ------------------------------------------------------------------- the statistics
