@@ -102,6 +102,9 @@ def task_input(store: RunStore, i: int) -> tuple[np.ndarray, int, int]:
     def part(name: str, sel: slice) -> np.ndarray:
         return store.read_input(name, sel, task=i)
 
+    if store.attrs.get("layout") == "staged":
+        return _staged_input(store, i)
+
     lo, hi = (int(x) for x in part("halo_offsets", slice(i, i + 2)))
     row_start = int(part("row_start", slice(i, i + 1))[0])
     row_stop = int(part("row_stop", slice(i, i + 1))[0])
@@ -116,6 +119,19 @@ def task_input(store: RunStore, i: int) -> tuple[np.ndarray, int, int]:
     else:
         coords = store.read_input("points", halo, task=i)
     return coords, owned_start, owned_stop
+
+
+def _staged_input(store: RunStore, i: int) -> tuple[np.ndarray, int, int]:
+    """A task of a plan made on the cluster: its halo is one slice of the halo stage's
+    output for its region, in global row order, its own rows a contiguous part of it."""
+    from .stages import open_stage, stage_url
+
+    region = int(store.read_input("halo_region", slice(i, i + 1), task=i)[0])
+    h0, h1 = (int(v) for v in store.read_input("halo_span", slice(i, i + 1), task=i)[0])
+    lo, hi = (int(v) for v in store.read_input("owned", slice(i, i + 1), task=i)[0])
+    halo = open_stage(stage_url(store.url, "halo"), store.io.storage_options)
+    coords = halo.commits.read_rows(region, "coords", h0, h1)
+    return coords, lo, hi
 
 
 def compute_task(store: RunStore, i: int, *, threads: int = 1) -> tuple[dict[str, np.ndarray], dict[str, int]]:
