@@ -47,6 +47,10 @@ from .store import (
 
 logger = logging.getLogger(__name__)
 
+#: What a driver process holds before any run-specific data (Python, numpy, numba, zarr,
+#: the Dask client): measured as the peak of a run of a tiny cloud, rounded up.
+DRIVER_BASELINE = 400 << 20
+
 MAX_ROUNDS = 3  # executor passes per run: a damaged output found on reduce gets another
 
 

@@ -60,7 +60,7 @@ def plan_on_cluster(url: str, points: np.ndarray | None, params: Params, stage: 
     report = report if report is not None else StageReport()
     so = storage_options
     block_rows = int(stage.block_rows)
-    base_params = {"eps": float(params.eps), "max_dim": params.max_dim,
+    base_params = {"eps": float(params.eps), "max_dim": params.max_dim, "task_cost": params.task_cost,
                    **stage.as_dict(params.eps), "source": None if source is None else dict(source)}
     fp = dict(fingerprint)
     n_blocks = max(1, -(-int(n_rows) // block_rows))
@@ -70,7 +70,12 @@ def plan_on_cluster(url: str, points: np.ndarray | None, params: Params, stage: 
 
     def run_stage(name: str, store: RunStore) -> dict[str, np.ndarray]:
         t0 = time.perf_counter()
-        rep: RunReport = session.run(store, events=events(name) if events else None)
+        ev = events(name) if events else None
+        try:
+            rep: RunReport = session.run(store, events=ev, on_pending=getattr(ev, "on_pending", None))
+        finally:
+            if hasattr(ev, "close"):
+                ev.close()
         report.seconds[name] = report.seconds.get(name, 0.0) + time.perf_counter() - t0
         report.tasks[name] = store.n_tasks
         report.driver_peak = max(report.driver_peak, peak_memory())
@@ -121,6 +126,7 @@ def plan_on_cluster(url: str, points: np.ndarray | None, params: Params, stage: 
     del regions, scatter_inputs, region_inputs
     summary = run_stage("region", region)["summary"]
     total = float(summary[:, 1].sum())
+    n_edges = int(summary[:, 2].sum()) // 2  # each edge's two ends are own rows of some region
     if params.task_cost is None:
         target = max(total / DEFAULT_MIN_TASKS, total * DEFAULT_TASK_ROWS / max(int(n_rows), 1))
     else:
@@ -140,7 +146,7 @@ def plan_on_cluster(url: str, points: np.ndarray | None, params: Params, stage: 
     # the run: an ordinary cloud store whose tasks read their halos from the halo stage
     t0 = time.perf_counter()
     store = open_or_create(url, CLOUD.name, run_params(params, stage), fp,
-                           lambda: _cloud_spec(table, params, stage, n_rows, dim, n_regions, fp),
+                           lambda: _cloud_spec(table, params, stage, n_rows, dim, n_regions, fp, n_edges),
                            storage_options=so)
     report.seconds["create"] = time.perf_counter() - t0
     report.driver_peak = max(report.driver_peak, peak_memory())
@@ -148,7 +154,7 @@ def plan_on_cluster(url: str, points: np.ndarray | None, params: Params, stage: 
 
 
 def _cloud_spec(table: Mapping[str, np.ndarray], params: Params, stage: StageParams, n_rows: int,
-                dim: int, n_regions: int, fp: Mapping[str, Any]) -> JobSpec:
+                dim: int, n_regions: int, fp: Mapping[str, Any], n_edges: int) -> JobSpec:
     cost = np.asarray(table["cost"], np.float64)
     rows = np.asarray(table["rows"], np.int64).reshape(-1, 2)
     rank = np.lexsort((rows[:, 0], -cost))  # heaviest first, as the driver's planner does
@@ -159,7 +165,8 @@ def _cloud_spec(table: Mapping[str, np.ndarray], params: Params, stage: StagePar
         "owned": np.asarray(table["owned"], np.int64).reshape(-1, 2)[rank],
     }
     attrs = {"eps": float(params.eps), "max_dim": params.max_dim, "cover_radius": stage.side(params.eps),
-             "n_points": int(n_rows), "dim": int(dim), "n_balls": int(n_regions), "layout": "staged"}
+             "n_points": int(n_rows), "dim": int(dim), "n_balls": int(n_regions), "layout": "staged",
+             "n_edges": int(n_edges)}
     return JobSpec(kind=CLOUD.name, params=run_params(params, stage), fingerprint=fp,
                    outputs=CLOUD.outputs, cost=cost[rank], memory=np.asarray(table["memory"], np.int64)[rank],
                    inputs=inputs, attrs=attrs)
@@ -173,3 +180,101 @@ class StageIncomplete(Exception):
                          f"failed and {report.n_tasks - report.done} unfinished tasks; run again "
                          "to continue it")
         self.stage, self.url, self.report = stage, url, report
+
+
+# ---------------------------------------------------------------------------- the API
+
+#: The driver's planner holds about this many times the coordinates at its peak.
+DRIVER_PLANNER_FACTOR = 5
+#: `planner="auto"` plans on the cluster when the driver's planner would need more.
+DRIVER_PLANNER_BUDGET = 2 << 30
+
+
+@dataclass(frozen=True)
+class PlanInput:
+    """What the cluster planner needs to know of its input: the validated points (held
+    here) or a source spec the workers open themselves, and its shape and identity."""
+
+    n_rows: int
+    dim: int
+    fingerprint: Mapping[str, Any]
+    points: np.ndarray | None = None
+    source: Mapping[str, Any] | None = None
+
+    @staticmethod
+    def of_points(points: np.ndarray) -> PlanInput:
+        from .store import fingerprint
+        from .validate import validate_points
+
+        points = validate_points(points)
+        return PlanInput(int(points.shape[0]), int(points.shape[1]), fingerprint(points), points=points)
+
+
+def choose_planner(planner: str, n_rows: int, dim: int) -> str:
+    """"driver" or "cluster"; "auto" plans on the cluster when the driver's planner
+    would need more than `DRIVER_PLANNER_BUDGET` (about five times the coordinates)."""
+    if planner in ("driver", "cluster"):
+        return planner
+    if planner != "auto":
+        raise ValueError(f"planner must be auto, driver or cluster, got {planner!r}")
+    need = int(n_rows) * int(dim) * 8 * DRIVER_PLANNER_FACTOR
+    return "cluster" if need > DRIVER_PLANNER_BUDGET else "driver"
+
+
+def plan_run(url: str, inp: PlanInput, params: Params, stage: StageParams, session: Session, *,
+             storage_options: Mapping[str, Any] | None = None,
+             events: Callable[[str], Any] | None = None,
+             report: StageReport | None = None) -> RunStore:
+    """The `cloud` run store at `url` planned on `session`'s cluster (see `plan_on_cluster`)."""
+    return plan_on_cluster(url, inp.points, params, stage, session, n_rows=inp.n_rows, dim=inp.dim,
+                           fingerprint=inp.fingerprint, source=inp.source,
+                           storage_options=storage_options, events=events, report=report)
+
+
+def planning_started(url: str, storage_options: Mapping[str, Any] | None = None) -> bool:
+    """Whether planning stages exist for a run at `url` (planning began there)."""
+    from .store.io import StoreIO
+
+    return StoreIO(stage_url(url, "count"), storage_options).get("created.json") is not None
+
+
+def resume_planning(url: str, session: Session, *, storage_options: Mapping[str, Any] | None = None,
+                    events: Callable[[str], Any] | None = None,
+                    report: StageReport | None = None) -> RunStore:
+    """Continue the planning stages of the run at `url` from what its first stage
+    recorded (input, parameters), then create the run store."""
+    count = RunStore.open(stage_url(url, "count"), storage_options=storage_options)
+    p, a = count.params, count.attrs
+    params = Params.checked(p["eps"], p["max_dim"], None, p.get("task_cost"))
+    stage = StageParams(p["cell_size"], p["region_rows"], p["block_rows"])
+    points = count.read_input("points") if "points" in count.input_names else None
+    return plan_on_cluster(url, points, params, stage, session, n_rows=int(a["n_rows"]),
+                           dim=int(a["dim"]), fingerprint=count.fingerprint, source=p.get("source"),
+                           storage_options=storage_options, events=events, report=report)
+
+
+def summarise(store: RunStore) -> dict[str, Any]:
+    """The figures of `chitally plan` for a run planned on the cluster (from its store)."""
+
+    def spread(v: np.ndarray) -> dict[str, Any]:
+        if v.size == 0:
+            return {"min": 0, "median": 0.0, "max": 0}
+        return {"min": int(v.min()), "median": float(np.median(v)), "max": int(v.max())}
+
+    a = store.attrs
+    owned = store.read_input("row_stop") - store.read_input("row_start")
+    span = store.read_input("halo_span").reshape(-1, 2)
+    halo = span[:, 1] - span[:, 0]
+    cost, memory = store.task_cost(), store.task_memory()
+    heaviest = int(np.argmax(cost)) if cost.size else None
+    return {
+        "points": int(a["n_points"]), "dim": int(a["dim"]), "eps": float(a["eps"]),
+        "max_dim": a["max_dim"], "radius": float(a["cover_radius"]), "balls": int(a["n_balls"]),
+        "tasks": int(store.n_tasks), "owned_rows": spread(owned), "halo_rows": spread(halo),
+        "replication": float(halo.sum()) / max(int(a["n_points"]), 1),
+        "total_cost": float(cost.sum()),
+        "heaviest_task_cost": float(cost[heaviest]) if heaviest is not None else 0.0,
+        "heaviest_task_memory": int(memory[heaviest]) if heaviest is not None else 0,
+        "max_task_memory": int(memory.max()) if memory.size else 0,
+        "edges": int(a.get("n_edges", 0)),
+    }

@@ -222,12 +222,31 @@ def describe(points: np.ndarray, params: Params) -> dict[str, Any]:
     from ..store import describe_layout
     from ..validate import validate_points
 
+    import time
+
+    from ..engine import peak_memory, reset_peak_memory
+
     points = validate_points(points)
+    reset_peak_memory()
+    t0 = time.perf_counter()
     cover, plan, _ = plan_points(points, params)
+    seconds = time.perf_counter() - t0
     summary = summarise_plan(plan, cover)
+    peak = peak_memory()
+    summary["planner"] = {"kind": "driver", "seconds": seconds, "driver_peak": peak,
+                          "expected_driver_peak": max(peak, expected_driver_peak(summary))}
     summary["warnings"] = plan_warnings(plan)
     summary["layout"] = describe_layout(plan.n_tasks)
     return summary
+
+
+def expected_driver_peak(summary: Mapping[str, Any]) -> int:
+    """The driver's expected peak while the run executes (bytes): the process itself,
+    the task table, and the reducer's curve, which holds at most one jump per edge
+    (twice while merging)."""
+    from ..runs import DRIVER_BASELINE
+
+    return int(DRIVER_BASELINE + summary["tasks"] * 64 + 32 * max(int(summary.get("edges", 0)), 0))
 
 
 #: Measured driver and store overhead of one task (seconds): commit, verify, schedule.

@@ -50,7 +50,30 @@ class StageParams:
     block_rows: int = 1 << 20
 
     def side(self, eps: float) -> float:
-        return float(self.cell_size) if self.cell_size is not None else 2.0 * float(eps)
+        side = float(self.cell_size) if self.cell_size is not None else 2.0 * float(eps)
+        # a hair above eps, so that rounding in x / side never puts two points within
+        # eps of each other two cells apart
+        return max(side, float(eps) * (1.0 + 1e-6))
+
+    @staticmethod
+    def checked(eps: float, cell_size: Any = None, region_rows: Any = None, block_rows: Any = None,
+                *, names: Mapping[str, str] | None = None) -> StageParams:
+        """Validated stage parameters; `names` maps a parameter to how the user spelled it."""
+        from ..validate import InputError, validate_count, validate_positive
+
+        n = {"cell_size": "cell_size", "region_rows": "region_rows", "block_rows": "block_rows",
+             **(names or {})}
+        if cell_size is not None:
+            cell_size = validate_positive(cell_size, name=n["cell_size"])
+            if cell_size < float(eps):
+                raise InputError(f"{n['cell_size']} must be at least eps ({float(eps)!r}), got "
+                                 f"{cell_size!r}: an eps-neighbour must lie in a cell next door")
+        default = StageParams()
+        return StageParams(
+            cell_size,
+            default.region_rows if region_rows is None else validate_count(region_rows, name=n["region_rows"], minimum=1),
+            default.block_rows if block_rows is None else validate_count(block_rows, name=n["block_rows"], minimum=1),
+        )
 
     def as_dict(self, eps: float) -> dict[str, Any]:
         return {"cell_size": self.side(eps), "region_rows": int(self.region_rows),
@@ -311,7 +334,7 @@ def region_task(store: RunStore, r: int, *, threads: int = 1) -> tuple[dict[str,
     degree = (np.bincount(lo, minlength=gids.size) + np.bincount(hi, minlength=gids.size)).astype(np.int64)
     cost = float(_row_cost(degree[:n_own], store.params["max_dim"]).sum())
     return ({"coords": coords, "gids": gids, "cells": cells, "degree": degree,
-             "summary": np.array([float(n_own), cost])},
+             "summary": np.array([float(n_own), cost, float(degree[:n_own].sum())])},
             {"rows": n_own, "halo": int(gids.size - n_own), "edges": int(lo.size)})
 
 
@@ -319,7 +342,7 @@ class RegionCosts:
     """The fold of ``plan-region``: rows and total cost of each region."""
 
     def __init__(self, store: RunStore) -> None:
-        self.summary = np.zeros((store.n_tasks, 2), np.float64)
+        self.summary = np.zeros((store.n_tasks, 3), np.float64)
 
     def restore(self, state: Mapping[str, np.ndarray]) -> None:
         self.summary = np.array(state["summary"], np.float64)
@@ -332,7 +355,8 @@ class RegionCosts:
         return {"summary": self.summary}
 
     def result(self) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
-        return self.state(), {"rows": int(self.summary[:, 0].sum()), "cost": float(self.summary[:, 1].sum())}
+        return self.state(), {"rows": int(self.summary[:, 0].sum()), "cost": float(self.summary[:, 1].sum()),
+                              "edges": int(self.summary[:, 2].sum()) // 2}
 
 
 # ---------------------------------------------------------------------------- 5. halo
