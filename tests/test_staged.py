@@ -215,3 +215,21 @@ def test_plan_on_the_cluster_reports_its_stages(tmp_path):
     assert res.returncode == 0, explain(res)
     drv = json.loads(res.stdout)
     assert drv["planner"]["kind"] == "driver" and drv["edges"] == summary["edges"]
+
+
+def test_a_killed_worker_during_a_stage_is_survived(tmp_path):
+    pts = clustered(600, 8)
+    src = write_points(tmp_path / "pts.npy", pts)
+    run = tmp_path / "run.zarr"
+    # a worker writes the outputs of a region task, then its process dies before the
+    # commit record; the nanny starts another and the task runs again
+    faults = make_faults(tmp_path, kind="plan-region", exit_between=[1])
+    res = chitally("run", src, "--eps", "0.08", "--out", run, "--planner", "cluster", "--region-rows",
+                   "120", "--workers", "2", "--threads", "1", "--no-progress", faults=faults, timeout=300)
+    assert res.returncode == 0, explain(res)
+    assert faults.attempts()[1] >= 2  # the killed attempt and the one that committed
+    res = chitally("export", run, "--out", tmp_path / "c.json", timeout=120)
+    assert res.returncode == 0, explain(res)
+    from chitally import Curve
+
+    assert Curve.load(tmp_path / "c.json") == euler_curve(pts, 0.08)
