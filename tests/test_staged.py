@@ -233,3 +233,57 @@ def test_a_killed_worker_during_a_stage_is_survived(tmp_path):
     from chitally import Curve
 
     assert Curve.load(tmp_path / "c.json") == euler_curve(pts, 0.08)
+
+
+# ------------------------------------------------------------------------- curves in parts
+
+@pytest.mark.parametrize("executor", ["serial", "dask"])
+def test_a_curve_reduced_in_parts_is_the_whole_curve(tmp_path, cluster, executor):
+    from chitally import Curve
+    from chitally.jobs.parts import PartedCurve
+
+    pts = clustered(1500, 12)
+    eps = 0.08
+    where = runs.Where(serial=True) if executor == "serial" else \
+        runs.Where(scheduler=cluster.scheduler_address, wait_workers=2)
+    store, report = plan(tmp_path, pts, eps, None, StageParams(region_rows=300, block_rows=400, part_jumps=400),
+                         where)
+    assert store.kind == "cloud-parts" and store.read_input("part_bounds").size >= 3
+    curve, ref = report.result, euler_curve(pts, eps)
+    assert isinstance(curve, PartedCurve) and curve.n_jumps > 400
+    # the same steps, read part by part or whole, and the same digest computed either way
+    assert curve.to_curve() == ref and curve.digest() == ref.digest() and curve == ref
+    assert (curve.final, curve.n_jumps) == (ref.final, ref.n_jumps)
+    grid = np.concatenate([np.linspace(0.0, eps, 501), store.read_input("part_bounds")])
+    assert np.array_equal(curve.sample(grid), ref.sample(grid))
+    assert curve.at(0.05) == ref.at(0.05)
+    assert Curve.load(curve.save(tmp_path / "c.csv")) == ref
+    # a run opened again reads its curve from the parts
+    assert runs.read_result(runs.open_run(store.url)) == ref
+
+
+def test_an_unfinished_merge_resumes(tmp_path, monkeypatch):
+    from chitally import engine
+
+    pts = clustered(900, 13)
+    original = engine.run_task
+    merged: list[int] = []
+
+    def failing(store, task, attempt, *, threads=1):
+        if store.kind == "curve-merge":
+            merged.append(int(task))
+            if task == 1 and merged.count(1) == 1:
+                raise RuntimeError("injected failure of a merge task")
+        return original(store, task, attempt, threads=threads)
+
+    monkeypatch.setattr(engine, "run_task", failing)
+    stage = StageParams(region_rows=200, block_rows=300, part_jumps=300)
+    with runs.Session(runs.Where(serial=True, retries=0)) as session:
+        store = plan_run(str(tmp_path / "run.zarr"), PlanInput.of_points(pts), Params.checked(0.08, None),
+                         stage, session)
+        report = session.run(store)
+    assert not report.complete and report.failed
+    n_first = len(merged)
+    report = runs.run(runs.open_run(store.url), runs.Where(serial=True))
+    assert report.complete and report.curve == euler_curve(pts, 0.08)
+    assert merged[n_first:] == [1]  # only the failed part is merged again

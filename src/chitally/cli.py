@@ -32,7 +32,7 @@ EXIT_SIGTERM = 143
 
 GRID_HELP = "Also sample on START:STOP:COUNT evenly spaced scales."
 CURVE_FORMATS = ("csv", "json", "npz")
-_CURVE_KINDS = ("cloud", "graph", "field")  # job kinds whose result is one curve
+_CURVE_KINDS = ("cloud", "cloud-parts", "graph", "field")  # job kinds whose result is one curve
 
 
 def fail(message: str, code: int) -> NoReturn:
@@ -1092,7 +1092,7 @@ def export_cmd(run: str, fmt: str | None, grid: str | None, out: str | None,
 def _save(result: Any, path: Any, fmt: str | None, grid: Any) -> None:
     from .curve import Curve
 
-    if isinstance(result, Curve):
+    if isinstance(result, Curve) or hasattr(result, "save_samples"):  # a Curve or a PartedCurve
         result.save_samples(path, grid, format=fmt) if grid is not None else result.save(path, format=fmt)
     else:
         result.save(path, format=fmt)

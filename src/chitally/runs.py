@@ -51,7 +51,10 @@ logger = logging.getLogger(__name__)
 #: the Dask client): measured as the peak of a run of a tiny cloud, rounded up.
 DRIVER_BASELINE = 400 << 20
 
-MAX_ROUNDS = 3  # executor passes per run: a damaged output found on reduce gets another
+MAX_ROUNDS = 3
+
+#: Job kinds whose result is one curve.
+CURVE_KINDS = ("cloud", "cloud-parts", "graph", "field")  # executor passes per run: a damaged output found on reduce gets another
 
 
 class Interrupted(Exception):
@@ -113,8 +116,9 @@ class RunReport:
 
     @property
     def curve(self) -> Any:
-        """The curve of a complete `cloud`, `graph` or `field` run (None otherwise)."""
-        return self.result if self.kind in ("cloud", "graph", "field") else None
+        """The curve of a complete `cloud`, `graph` or `field` run (None otherwise); a
+        `PartedCurve` for a curve too large for one part."""
+        return self.result if self.kind in CURVE_KINDS else None
 
 
 class _Driver(Callbacks):
@@ -291,7 +295,21 @@ class Session:
 
     def run(self, store: RunStore, *, events: Events | None = None,
             on_pending: Callable[[RunStore, list[int]], None] | None = None) -> RunReport:
-        """Execute `store`'s pending tasks (see `run`)."""
+        """Execute `store`'s pending tasks (see `run`), then the job that finishes it if
+        its kind has one (the merge of a curve reduced in parts)."""
+        report = self._run_one(store, events=events, on_pending=on_pending)
+        kind = kind_of(store.kind)
+        if kind.then is None or report.complete or report.failed or report.done < report.n_tasks:
+            return report
+        follow = self.run(kind.follow_up(store), events=events, on_pending=on_pending)
+        result = read_result(store) if follow.complete else None
+        return RunReport(url=store.url, kind=store.kind, n_tasks=store.n_tasks, done=report.done,
+                         failed=dict(follow.failed), result=result,
+                         seconds=report.seconds + follow.seconds, computed=report.computed,
+                         set_aside=report.set_aside)
+
+    def _run_one(self, store: RunStore, *, events: Events | None = None,
+                 on_pending: Callable[[RunStore, list[int]], None] | None = None) -> RunReport:
         from .cluster import check_workers, connect, preflight_memory, seconds, setting
         from .interrupts import signals_as_interrupts
 

@@ -124,7 +124,8 @@ def plan_on_cluster(url: str, points: np.ndarray | None, params: Params, stage: 
                         inputs=region_inputs, attrs={**attrs, "n_regions": n_regions}),
         storage_options=so)
     del regions, scatter_inputs, region_inputs
-    summary = run_stage("region", region)["summary"]
+    region_result = run_stage("region", region)
+    summary, hist = region_result["summary"], region_result["hist"]
     total = float(summary[:, 1].sum())
     n_edges = int(summary[:, 2].sum()) // 2  # each edge's two ends are own rows of some region
     if params.task_cost is None:
@@ -145,8 +146,10 @@ def plan_on_cluster(url: str, points: np.ndarray | None, params: Params, stage: 
 
     # the run: an ordinary cloud store whose tasks read their halos from the halo stage
     t0 = time.perf_counter()
-    store = open_or_create(url, CLOUD.name, run_params(params, stage), fp,
-                           lambda: _cloud_spec(table, params, stage, n_rows, dim, n_regions, fp, n_edges),
+    kind, extra = _parts_of(n_edges, hist, params, stage)
+    store = open_or_create(url, kind.name, run_params(params, stage), fp,
+                           lambda: _cloud_spec(table, params, stage, n_rows, dim, n_regions, fp, n_edges,
+                                               kind, extra),
                            storage_options=so)
     report.seconds["create"] = time.perf_counter() - t0
     report.driver_peak = max(report.driver_peak, peak_memory())
@@ -154,7 +157,8 @@ def plan_on_cluster(url: str, points: np.ndarray | None, params: Params, stage: 
 
 
 def _cloud_spec(table: Mapping[str, np.ndarray], params: Params, stage: StageParams, n_rows: int,
-                dim: int, n_regions: int, fp: Mapping[str, Any], n_edges: int) -> JobSpec:
+                dim: int, n_regions: int, fp: Mapping[str, Any], n_edges: int,
+                kind: Any, extra: Mapping[str, np.ndarray]) -> JobSpec:
     cost = np.asarray(table["cost"], np.float64)
     rows = np.asarray(table["rows"], np.int64).reshape(-1, 2)
     rank = np.lexsort((rows[:, 0], -cost))  # heaviest first, as the driver's planner does
@@ -164,12 +168,34 @@ def _cloud_spec(table: Mapping[str, np.ndarray], params: Params, stage: StagePar
         "halo_span": np.asarray(table["offsets"], np.int64).reshape(-1, 2)[rank],
         "owned": np.asarray(table["owned"], np.int64).reshape(-1, 2)[rank],
     }
+    inputs.update(extra)
     attrs = {"eps": float(params.eps), "max_dim": params.max_dim, "cover_radius": stage.side(params.eps),
              "n_points": int(n_rows), "dim": int(dim), "n_balls": int(n_regions), "layout": "staged",
              "n_edges": int(n_edges)}
-    return JobSpec(kind=CLOUD.name, params=run_params(params, stage), fingerprint=fp,
-                   outputs=CLOUD.outputs, cost=cost[rank], memory=np.asarray(table["memory"], np.int64)[rank],
+    return JobSpec(kind=kind.name, params=run_params(params, stage), fingerprint=fp,
+                   outputs=kind.outputs, cost=cost[rank], memory=np.asarray(table["memory"], np.int64)[rank],
                    inputs=inputs, attrs=attrs)
+
+
+def _parts_of(n_edges: int, hist: np.ndarray, params: Params, stage: StageParams) -> tuple[Any, dict]:
+    """The run's kind, and its part boundaries when its curve is reduced in parts.
+
+    The curve has at most one jump per edge (and one at 0): beyond one part it is reduced
+    in parts of the scale, never whole on the driver.
+    """
+    from .jobs import CLOUD_PARTS
+    from .jobs.parts import PART_JUMPS, part_bounds
+
+    per_part = int(stage.part_jumps or PART_JUMPS)
+    n_parts = -(-(int(n_edges) + 1) // per_part)
+    if n_parts < 2:
+        return CLOUD, {}
+    bounds = part_bounds(hist, params.eps, n_parts)
+    if not bounds.size:
+        return CLOUD, {}
+    which = np.searchsorted(bounds, (np.arange(hist.size) + 0.5) * params.eps / hist.size)
+    return CLOUD_PARTS, {"part_bounds": bounds,
+                         "part_edges": np.bincount(which, weights=hist, minlength=bounds.size + 1)}
 
 
 class StageIncomplete(Exception):
@@ -246,7 +272,7 @@ def resume_planning(url: str, session: Session, *, storage_options: Mapping[str,
     count = RunStore.open(stage_url(url, "count"), storage_options=storage_options)
     p, a = count.params, count.attrs
     params = Params.checked(p["eps"], p["max_dim"], None, p.get("task_cost"))
-    stage = StageParams(p["cell_size"], p["region_rows"], p["block_rows"])
+    stage = StageParams(p["cell_size"], p["region_rows"], p["block_rows"], p.get("part_jumps"))
     points = count.read_input("points") if "points" in count.input_names else None
     return plan_on_cluster(url, points, params, stage, session, n_rows=int(a["n_rows"]),
                            dim=int(a["dim"]), fingerprint=count.fingerprint, source=p.get("source"),

@@ -142,7 +142,12 @@ def compute_task(store: RunStore, i: int, *, threads: int = 1) -> tuple[dict[str
                         threads=threads)
     counters = {"points": hi - lo, "halo": int(coords.shape[0]), "edges": int(table.stats.edges),
                 "splits": int(table.stats.splits)}
-    return {"values": table.values, "jumps": table.jumps}, counters
+    out = {"values": table.values, "jumps": table.jumps}
+    if "part_bounds" in store.input_names:
+        from .parts import offsets_at
+
+        out["parts"] = offsets_at(table.values, store.read_input("part_bounds"))
+    return out, counters
 
 
 class JumpSum:

@@ -72,6 +72,10 @@ class JobKind:
     read: str
     unit: str = "tasks"
     fold_reads: tuple[str, ...] | None = None
+    then: str | None = None
+
+    def follow_up(self, store: RunStore) -> RunStore | None:
+        return None if self.then is None else _resolve(self.then)(store)
 
     def task_function(self) -> TaskFunction:
         return _resolve(self.task)

@@ -48,6 +48,7 @@ class StageParams:
     cell_size: float | None = None  # default: 2 eps
     region_rows: int = 1_000_000
     block_rows: int = 1 << 20
+    part_jumps: int | None = None  # default: chitally.jobs.parts.PART_JUMPS
 
     def side(self, eps: float) -> float:
         side = float(self.cell_size) if self.cell_size is not None else 2.0 * float(eps)
@@ -77,7 +78,8 @@ class StageParams:
 
     def as_dict(self, eps: float) -> dict[str, Any]:
         return {"cell_size": self.side(eps), "region_rows": int(self.region_rows),
-                "block_rows": int(self.block_rows)}
+                "block_rows": int(self.block_rows),
+                "part_jumps": None if self.part_jumps is None else int(self.part_jumps)}
 
 
 def stage_url(run_url: str, stage: str) -> str:
@@ -319,21 +321,30 @@ def _gather(store: RunStore, r: int) -> tuple[np.ndarray, np.ndarray, np.ndarray
             int(og.size))
 
 
-def _pairs(coords: np.ndarray, eps: float) -> tuple[np.ndarray, np.ndarray]:
+def _pairs(coords: np.ndarray, eps: float, lengths: bool = False) -> tuple[np.ndarray, ...]:
+    """Every pair of rows within eps (by the kernel's own edge join), and their lengths."""
     from ..kernel import _halo_edges
 
-    lo, hi, _, m = _halo_edges(np.ascontiguousarray(coords), eps)
-    return lo[:m].astype(np.int64), hi[:m].astype(np.int64)
+    lo, hi, d2, m = _halo_edges(np.ascontiguousarray(coords), eps)
+    out = (lo[:m].astype(np.int64), hi[:m].astype(np.int64))
+    return (*out, np.sqrt(d2[:m])) if lengths else out
 
 
 def region_task(store: RunStore, r: int, *, threads: int = 1) -> tuple[dict[str, np.ndarray], dict[str, int]]:
     from ..planner import _row_cost
 
+    from .parts import LENGTH_BINS
+
+    eps = float(store.params["eps"])
     coords, gids, cells, n_own = _gather(store, r)
-    lo, hi = _pairs(coords, float(store.params["eps"]))
+    lo, hi, length = _pairs(coords, eps, lengths=True)
     degree = (np.bincount(lo, minlength=gids.size) + np.bincount(hi, minlength=gids.size)).astype(np.int64)
+    # each edge once, in the region owning its lower-numbered end: where the curve's
+    # jumps lie, to cut its reduction into parts of about equal size
+    low = np.where(gids[lo] < gids[hi], lo, hi)
+    hist = np.histogram(length[low < n_own], bins=LENGTH_BINS, range=(0.0, eps))[0].astype(np.int64)
     cost = float(_row_cost(degree[:n_own], store.params["max_dim"]).sum())
-    return ({"coords": coords, "gids": gids, "cells": cells, "degree": degree,
+    return ({"coords": coords, "gids": gids, "cells": cells, "degree": degree, "hist": hist,
              "summary": np.array([float(n_own), cost, float(degree[:n_own].sum())])},
             {"rows": n_own, "halo": int(gids.size - n_own), "edges": int(lo.size)})
 
@@ -342,17 +353,22 @@ class RegionCosts:
     """The fold of ``plan-region``: rows and total cost of each region."""
 
     def __init__(self, store: RunStore) -> None:
+        from .parts import LENGTH_BINS
+
         self.summary = np.zeros((store.n_tasks, 3), np.float64)
+        self.hist = np.zeros(LENGTH_BINS, np.int64)
 
     def restore(self, state: Mapping[str, np.ndarray]) -> None:
         self.summary = np.array(state["summary"], np.float64)
+        self.hist = np.array(state["hist"], np.int64)
 
     def add(self, tasks: list[int], outputs: list[Mapping[str, np.ndarray]]) -> None:
         for t, o in zip(tasks, outputs):
             self.summary[t] = o["summary"]
+            self.hist = self.hist + o["hist"]
 
     def state(self) -> dict[str, np.ndarray]:
-        return {"summary": self.summary}
+        return {"summary": self.summary, "hist": self.hist}
 
     def result(self) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
         return self.state(), {"rows": int(self.summary[:, 0].sum()), "cost": float(self.summary[:, 1].sum()),
