@@ -23,6 +23,9 @@ The spec (a JSON-able dict):
 ``delay_first``
     ``{task: seconds}`` slept by the first attempt only: a stalled attempt that a test
     can kill, knowing the next attempt goes through.
+``kind``
+    Only tasks of run stores of this job kind are logged and faulted; the others run
+    untouched (a run planned in stages runs several kinds, each numbering from 0).
 ``gate``
     ``{task: path}``: the attempt waits until the file exists (at most ``gate_timeout``
     seconds, default 300), so a test acts while a run is surely under way.
@@ -83,6 +86,9 @@ class FaultWrapper:
     # -------------------------------------------------------------- the task function
 
     def __call__(self, store: Any, task: int, attempt: str, *, threads: int = 1) -> Any:
+        kind = self.spec.get("kind")
+        if kind is not None and store.kind != kind:
+            return ORIGINAL(store, task, attempt, threads=threads)
         n = self._record(task, attempt)
         if int(task) in self.spec.get("poison", []):
             raise InjectedFault(f"injected poison in task {task}")

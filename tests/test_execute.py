@@ -160,6 +160,53 @@ def _cloud_inputs() -> tuple[CloudInput, ...]:
                  for i, name in enumerate(CLOUDS) for j, cap in enumerate(CAPS))
 
 
+# ------------------------------------------------------------------ cloud planned in stages
+
+CELLS = (1.0, 2.0, 4.0)  # cell side as a multiple of eps
+REGIONS = (4, 11, 10**9)  # rows per region: many small regions, a few, one
+
+
+@dataclass(frozen=True)
+class StagedInput:
+    """A cloud planned on the engine's stages: a named cloud, cell side (in eps), rows
+    per region, rows per input block, a cap."""
+
+    cloud: str
+    cell: float
+    region_rows: int
+    block_rows: int
+    cap: int | None
+
+    @property
+    def id(self) -> str:
+        return f"{self.cloud}-cell{self.cell:g}eps-regions{self.region_rows}-blocks{self.block_rows}-cap{self.cap}"
+
+
+def staged_store(tmp_path: Path, inp: StagedInput, name: str = "run") -> RunStore:
+    from chitally.jobs.stages import StageParams
+    from chitally.staged import plan_on_cluster
+    from chitally.store import fingerprint
+
+    pts, eps = points_of(inp.cloud)
+    params = cloud.Params.checked(eps, inp.cap)
+    stage = StageParams(cell_size=inp.cell * eps, region_rows=inp.region_rows, block_rows=inp.block_rows)
+    # the stages themselves run serially here; tests/test_staged.py runs them on Dask
+    with runs.Session(runs.Where(serial=True)) as session:
+        return plan_on_cluster(str(tmp_path / f"{name}.zarr"), pts, params, stage, session,
+                               n_rows=pts.shape[0], dim=pts.shape[1], fingerprint=fingerprint(pts))
+
+
+def staged_reference(inp: StagedInput) -> dict[str, Any]:
+    # the curve depends on the cloud and the cap only, never on cells, regions or blocks
+    return cloud_curves(inp.cloud, inp.cap)
+
+
+def _staged_inputs() -> tuple[StagedInput, ...]:
+    # every (cloud, cap) once, with cell sides and region sizes crossed as for the cover
+    return tuple(StagedInput(name, CELLS[(i + j) % 3], REGIONS[(i + 2 * j) % 3], (7, 16, 1000)[j % 3], cap)
+                 for i, name in enumerate(CLOUDS) for j, cap in enumerate(CAPS))
+
+
 # ------------------------------------------------------------------ batch, graph, bands
 
 
@@ -292,6 +339,13 @@ JOB_KINDS: dict[str, JobKindCase] = {
         make_store=cloud_store,
         reference=cloud_reference,
     ),
+    "cloud-staged": JobKindCase(
+        name="cloud",
+        inputs=_staged_inputs(),
+        small=StagedInput("duplicates-R2", 2.0, 4, 7, 3),
+        make_store=staged_store,
+        reference=staged_reference,
+    ),
     "batch": JobKindCase(
         name="batch",
         inputs=(SimpleInput("clouds", 30, 1), SimpleInput("clouds", 7, 2)),
@@ -315,8 +369,8 @@ JOB_KINDS: dict[str, JobKindCase] = {
     ),
 }
 
-KIND_PARAMS = [pytest.param(k, id=k.name) for k in JOB_KINDS.values()]
-RESULT_PARAMS = [pytest.param(k, inp, id=f"{k.name}-{inp.id}") for k in JOB_KINDS.values() for inp in k.inputs]
+KIND_PARAMS = [pytest.param(k, id=key) for key, k in JOB_KINDS.items()]
+RESULT_PARAMS = [pytest.param(k, inp, id=f"{key}-{inp.id}") for key, k in JOB_KINDS.items() for inp in k.inputs]
 
 
 def test_the_cloud_inputs_cover_every_pair_of_levels():

@@ -32,7 +32,7 @@ EXIT_SIGTERM = 143
 
 GRID_HELP = "Also sample on START:STOP:COUNT evenly spaced scales."
 CURVE_FORMATS = ("csv", "json", "npz")
-_CURVE_KINDS = ("cloud", "graph", "field")  # job kinds whose result is one curve
+_CURVE_KINDS = ("cloud", "cloud-parts", "graph", "field")  # job kinds whose result is one curve
 
 
 def fail(message: str, code: int) -> NoReturn:
@@ -198,7 +198,44 @@ cost_opt = click.option("--task-cost", type=float, default=None,
                         help="Target cost per task (default: the planner's choice).")
 
 _NAMES = {"eps": "--eps", "max_dim": "--max-dim", "cover_radius": "--cover-radius",
-          "task_cost": "--task-cost"}
+          "task_cost": "--task-cost", "cell_size": "--cell-size", "region_rows": "--region-rows"}
+
+
+def planner_opts(fn: Callable[..., Any]) -> Callable[..., Any]:
+    """--planner, --cell-size, --region-rows: where a cloud is planned."""
+    for opt in reversed([
+        click.option("--planner", type=click.Choice(["auto", "driver", "cluster"]), default="auto",
+                     show_default=True,
+                     help="Plan in this process (driver) or as stages on the cluster, never "
+                          "holding the points (cluster); auto plans on the cluster when the "
+                          "driver would need more than 2 GiB (about 5x the coordinates)."),
+        click.option("--cell-size", type=float, default=None,
+                     help="Cluster planner: side of the grid cells, >= eps (default: 2 eps)."),
+        click.option("--region-rows", type=int, default=None,
+                     help="Cluster planner: most points of a region, the unit of a planning "
+                          "task (default: 1,000,000)."),
+    ]):
+        fn = opt(fn)
+    return fn
+
+
+def _stage_params(eps: float, cell_size: float | None, region_rows: int | None) -> Any:
+    from .jobs.stages import StageParams
+
+    return StageParams.checked(eps, cell_size, region_rows, names=_NAMES)
+
+
+def _stage_bars(progress: bool) -> Callable[[str], Any]:
+    def bar(stage: str) -> Any:
+        say(f"planning stage {stage}")
+        return ProgressBar(progress, "tasks")
+
+    return bar
+
+
+def _say_stages(report: Any) -> None:
+    parts = ", ".join(f"{name} {sec:.1f} s" for name, sec in report.seconds.items())
+    say(f"planned on the cluster: {parts}; driver peak {report.driver_peak / 2**20:.0f} MiB")
 
 
 def _cloud_params(eps: float, max_dim: int | None, cover_radius: float | None = None,
@@ -384,6 +421,28 @@ class ProgressBar:
             self.bar.close()
 
 
+def _plan_and_run(url: str, inp: Any, params: Any, stage: Any, where: Any, progress: bool,
+                  store_options: dict[str, Any] | None, resume: bool = False) -> Any:
+    """Plan on the cluster (or continue planning), then run, on one cluster."""
+    from .runs import Session
+    from .staged import StageReport, plan_run, resume_planning
+
+    report = StageReport()
+    bar = ProgressBar(progress, "points")
+    with Session(where, on_connect=bar.on_connect) as session:
+        if resume:
+            store = resume_planning(url, session, storage_options=store_options,
+                                    events=_stage_bars(progress), report=report)
+        else:
+            store = plan_run(url, inp, params, stage, session, storage_options=store_options,
+                             events=_stage_bars(progress), report=report)
+        _say_stages(report)
+        try:
+            return session.run(store, events=bar, on_pending=bar.on_pending)
+        finally:
+            bar.close()
+
+
 def _run_store(store: Any, where: Any, progress: bool) -> Any:
     from .jobs import kind_of
     from .runs import run
@@ -500,7 +559,10 @@ _PLAN_LABELS = {
 def plan_lines(summary: dict[str, Any]) -> list[str]:
     """A plan summary in plain words, one figure a line."""
     lines = []
-    for key, label in _PLAN_LABELS.items():
+    labels = dict(_PLAN_LABELS)
+    if (summary.get("planner") or {}).get("kind") == "cluster":
+        labels.update(radius="side of a grid cell", balls="regions")
+    for key, label in labels.items():
         value = summary[key]
         if isinstance(value, dict):
             text = f"{value['min']:g} to {value['max']:g} (median {value['median']:g})"
@@ -517,6 +579,30 @@ def plan_lines(summary: dict[str, Any]) -> list[str]:
     return lines
 
 
+def planner_lines(planner: dict[str, Any] | None) -> list[str]:
+    if not planner:
+        return []
+    secs = planner["seconds"]
+    when = ", ".join(f"{k} {v:.2f} s" for k, v in secs.items()) if isinstance(secs, dict) else f"{secs:.2f} s"
+    return [f"{'planner':>28}: {planner['kind']} ({when})",
+            f"{'planner peak memory':>28}: {planner['driver_peak'] / 2**20:.1f} MiB",
+            f"{'expected driver peak':>28}: {planner['expected_driver_peak'] / 2**20:.1f} MiB (estimate)"]
+
+
+def _plan_input(input: str, key: str | None, columns: str | None, index_col: str | None) -> Any:
+    """The input as the cluster planner sees it: a source its workers open (never read
+    whole here) where the format allows, else the validated points."""
+    from .staged import PlanInput
+
+    return PlanInput.of_points(_read(input, key, columns, index_col))
+
+
+def choose(planner: str, inp: Any) -> str:
+    from .staged import choose_planner
+
+    return choose_planner(planner, inp.n_rows, inp.dim)
+
+
 @main.command("plan")
 @input_arg
 @eps_opt
@@ -524,20 +610,55 @@ def plan_lines(summary: dict[str, Any]) -> list[str]:
 @key_opt
 @radius_opt
 @cost_opt
+@planner_opts
+@click.option("--out", "out", default=None,
+              help="Cluster planner: the run store to plan into (the stages run; no curve yet).")
 @click.option("--json", "as_json", is_flag=True, help="Print the figures as JSON.")
+@_executor_options
+@storage_opts
 @guarded
 def plan_cmd(input: str, eps: float, max_dim: int | None, key: str | None, columns: str | None,
              index_col: str | None, cover_radius: float | None, task_cost: float | None,
-             as_json: bool) -> None:
-    """Show what a run would do (balls, tasks, halos, cost, memory, store layout); writes nothing."""
+             planner: str, cell_size: float | None, region_rows: int | None, out: str | None,
+             as_json: bool, progress: bool, store_options: dict[str, Any] | None,
+             **how: Any) -> None:
+    """Show what a run would do (tasks, halos, cost, memory, the planner's own time and
+    memory, store layout). The driver's planner writes nothing; the cluster planner runs
+    its stages into --out, and `chitally run` or `resume` then computes the curve."""
     from .jobs.cloud import describe
 
     params = _cloud_params(eps, max_dim, cover_radius, task_cost)
-    summary = describe(_read(input, key, columns, index_col), params)
+    stage = _stage_params(params.eps, cell_size, region_rows)
+    inp = _plan_input(input, key, columns, index_col)
+    if choose(planner, inp) == "cluster":
+        if out is None:
+            from .validate import InputError
+
+            raise InputError("--planner cluster plans into a run store: give --out RUN")
+        from .jobs.cloud import expected_driver_peak
+        from .runs import Session
+        from .staged import StageReport, plan_run, summarise
+        from .store import describe_layout
+
+        report = StageReport()
+        with Session(_where(**how)) as session:
+            store = plan_run(_store_url(out), inp, params, stage, session, storage_options=store_options,
+                             events=_stage_bars(progress), report=report)
+        summary = summarise(store)
+        summary["planner"] = {"kind": "cluster", "seconds": report.seconds,
+                              "driver_peak": report.driver_peak,
+                              "expected_driver_peak": max(report.driver_peak, expected_driver_peak(summary))}
+        summary["warnings"] = []
+        summary["layout"] = describe_layout(summary["tasks"])
+    else:
+        summary = describe(inp.points if inp.points is not None else _read(input, key, columns, index_col),
+                           params)
     if as_json:
         click.echo(json.dumps(summary, indent=2))
         return
     for line in plan_lines(summary):
+        click.echo(line)
+    for line in planner_lines(summary.get("planner")):
         click.echo(line)
     for w in summary["warnings"]:
         click.echo(f"warning: {w}")
@@ -555,20 +676,29 @@ def plan_cmd(input: str, eps: float, max_dim: int | None, key: str | None, colum
 @cost_opt
 @click.option("--grid", default=None, help=GRID_HELP)
 @click.option("--discard", is_flag=True, help="Delete committed work of an unfinished store at --out.")
+@planner_opts
 @_executor_options
 @storage_opts
 @guarded
 def run_cmd(input: str, eps: float, max_dim: int | None, key: str | None, columns: str | None,
             index_col: str | None, out: str,
             cover_radius: float | None, task_cost: float | None, grid: str | None, discard: bool,
+            planner: str, cell_size: float | None, region_rows: int | None,
             progress: bool, store_options: dict[str, Any] | None, **how: Any) -> None:
     """Plan, execute and reduce: the exact curve of INPUT on a Dask cluster."""
     from .jobs.cloud import create_or_open, plan_warnings
 
     params = _cloud_params(eps, max_dim, cover_radius, task_cost)
+    stage = _stage_params(params.eps, cell_size, region_rows)
     grid_values = _grid(grid)
     where = _where(**how)
-    points = _read(input, key, columns, index_col)  # validated before any store exists
+    inp = _plan_input(input, key, columns, index_col)  # validated before any store exists
+    if choose(planner, inp) == "cluster":
+        _compile_first(params.max_dim, inp.dim)
+        _report(_plan_and_run(_store_url(out), inp, params, stage, where, progress, store_options),
+                grid_values)
+        return
+    points = inp.points if inp.points is not None else _read(input, key, columns, index_col)
     _compile_first(params.max_dim, points.shape[1])  # workers then load from the cache
     store = create_or_open(_store_url(out), points, params, storage_options=store_options,
                            discard=discard)
@@ -866,7 +996,18 @@ def resume_cmd(run: str, input_: str | None, key: str | None, eps: float | None,
 
     grid_values = _grid(grid)
     where = _where(**how)
-    store = open_run(_store_url(run), storage_options=store_options)
+    from .staged import planning_started
+    from .store import NotAStore
+
+    try:
+        store = open_run(_store_url(run), storage_options=store_options)
+    except NotAStore:
+        if not planning_started(_store_url(run), store_options):
+            raise
+        say(f"{run}: planning on the cluster did not finish; continuing it")
+        _report(_plan_and_run(_store_url(run), None, None, None, where, progress, store_options,
+                              resume=True), grid_values)
+        return
     if eps is not None or max_dim is not None or input_ is not None:
         from .sources import read_points
 
@@ -951,7 +1092,7 @@ def export_cmd(run: str, fmt: str | None, grid: str | None, out: str | None,
 def _save(result: Any, path: Any, fmt: str | None, grid: Any) -> None:
     from .curve import Curve
 
-    if isinstance(result, Curve):
+    if isinstance(result, Curve) or hasattr(result, "save_samples"):  # a Curve or a PartedCurve
         result.save_samples(path, grid, format=fmt) if grid is not None else result.save(path, format=fmt)
     else:
         result.save(path, format=fmt)

@@ -46,6 +46,17 @@ def peak_memory() -> int:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
 
 
+def reset_peak_memory() -> bool:
+    """Start this process's peak (VmHWM) afresh from its current resident memory, so a
+    phase's own peak can be read after it; False where the system cannot (not Linux)."""
+    try:
+        with open("/proc/self/clear_refs", "w") as f:
+            f.write("5")
+        return True
+    except OSError:
+        return False
+
+
 def worker_store(store: RunStore) -> RunStore:
     """This process's open copy of `store` (its array handles cached across tasks).
 

@@ -82,6 +82,7 @@ class Plan:
     halo_rows: np.ndarray
     cost: np.ndarray
     memory: np.ndarray
+    n_edges: int = -1  # edges of the eps-graph, when the planner counted them
 
     @property
     def n_tasks(self) -> int:

@@ -356,6 +356,7 @@ def make_plan(
 
     halo_len = np.array([h.shape[0] for h in results], dtype=np.int64)
     owned_edges = np.add.reduceat(up, starts, dtype=np.int64)
+    n_edges = int(up.sum())
     del up
     halo_edges = np.array([int(deg[h].sum()) for h in results], dtype=np.int64)
     max_deg = np.maximum.reduceat(deg, starts)
@@ -380,6 +381,7 @@ def make_plan(
         halo_rows=halo_rows.astype(np.int64, copy=False),
         cost=cost[rank].astype(np.float64),
         memory=memory[rank],
+        n_edges=n_edges,
     )
 
 
@@ -425,4 +427,5 @@ def summarise_plan(plan: Plan, cover: Cover) -> dict:
         "heaviest_task_cost": float(plan.cost[heaviest]) if heaviest is not None else 0.0,
         "heaviest_task_memory": int(plan.memory[heaviest]) if heaviest is not None else 0,
         "max_task_memory": int(plan.memory.max()) if plan.n_tasks else 0,
+        "edges": int(plan.n_edges),
     }

@@ -35,7 +35,9 @@ class Reducer:
 
     def __init__(self, store: RunStore, *, every_tasks: int = 256, every_seconds: float = 30.0) -> None:
         self.store = store
-        self.fold: Fold = kind_of(store.kind).make_fold(store)
+        kind = kind_of(store.kind)
+        self.fold: Fold = kind.make_fold(store)
+        self._reads = kind.fold_reads
         self.every_tasks = every_tasks
         self.every_seconds = every_seconds
         self.covered = np.zeros(store.n_tasks, dtype=bool)
@@ -65,7 +67,7 @@ class Reducer:
         if self.is_covered(task):
             return True
         try:
-            outputs = self.store.commits.read(task)
+            outputs = self.store.commits.read(task, self._reads)
         except CorruptTask as exc:
             logger.warning("%s; setting it aside to be computed again", exc)
             self.store.commits.set_aside(task)

@@ -47,7 +47,14 @@ from .store import (
 
 logger = logging.getLogger(__name__)
 
-MAX_ROUNDS = 3  # executor passes per run: a damaged output found on reduce gets another
+#: What a driver process holds before any run-specific data (Python, numpy, numba, zarr,
+#: the Dask client): measured as the peak of a run of a tiny cloud, rounded up.
+DRIVER_BASELINE = 400 << 20
+
+MAX_ROUNDS = 3
+
+#: Job kinds whose result is one curve.
+CURVE_KINDS = ("cloud", "cloud-parts", "graph", "field")  # executor passes per run: a damaged output found on reduce gets another
 
 
 class Interrupted(Exception):
@@ -109,8 +116,9 @@ class RunReport:
 
     @property
     def curve(self) -> Any:
-        """The curve of a complete `cloud`, `graph` or `field` run (None otherwise)."""
-        return self.result if self.kind in ("cloud", "graph", "field") else None
+        """The curve of a complete `cloud`, `graph` or `field` run (None otherwise); a
+        `PartedCurve` for a curve too large for one part."""
+        return self.result if self.kind in CURVE_KINDS else None
 
 
 class _Driver(Callbacks):
@@ -261,6 +269,92 @@ def _for_workers(store: RunStore, storage_options: Mapping[str, Any] | None) -> 
     return reattach(StoreIO(store.url, storage_options), *args[1:])
 
 
+class Session:
+    """One place to run tasks for several stores in turn: the cluster is connected when
+    the first store needs it and kept for the next (planning stages, then the run).
+
+    Each store still gets its own lease, taken before the cluster starts, its worker
+    check and its memory preflight. Use as a context manager; `close` shuts the cluster.
+    """
+
+    def __init__(self, where: Where = Where(), *, on_connect: Callable[[Any], None] | None = None) -> None:
+        self.where = where
+        self.on_connect = on_connect
+        self.conn: Any = None
+
+    def __enter__(self) -> Session:
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.close()
+
+    def close(self) -> None:
+        if self.conn is not None:
+            conn, self.conn = self.conn, None
+            conn.close()
+
+    def run(self, store: RunStore, *, events: Events | None = None,
+            on_pending: Callable[[RunStore, list[int]], None] | None = None) -> RunReport:
+        """Execute `store`'s pending tasks (see `run`), then the job that finishes it if
+        its kind has one (the merge of a curve reduced in parts)."""
+        report = self._run_one(store, events=events, on_pending=on_pending)
+        kind = kind_of(store.kind)
+        if kind.then is None or report.complete or report.failed or report.done < report.n_tasks:
+            return report
+        follow = self.run(kind.follow_up(store), events=events, on_pending=on_pending)
+        result = read_result(store) if follow.complete else None
+        return RunReport(url=store.url, kind=store.kind, n_tasks=store.n_tasks, done=report.done,
+                         failed=dict(follow.failed), result=result,
+                         seconds=report.seconds + follow.seconds, computed=report.computed,
+                         set_aside=report.set_aside)
+
+    def _run_one(self, store: RunStore, *, events: Events | None = None,
+                 on_pending: Callable[[RunStore, list[int]], None] | None = None) -> RunReport:
+        from .cluster import check_workers, connect, preflight_memory, seconds, setting
+        from .interrupts import signals_as_interrupts
+
+        where = self.where
+        if store.is_complete():
+            try:
+                result = read_result(store)
+            except ResultDamaged:
+                result = None
+            if result is not None:
+                return RunReport(url=store.url, kind=store.kind, n_tasks=store.n_tasks,
+                                 done=store.n_tasks, result=result)
+        retries = int(setting("retries", where.retries))
+        lease = acquire_lease(store, takeover=where.takeover)
+        with signals_as_interrupts() as caught:
+            try:
+                with lease:
+                    if where.serial:
+                        executor: Executor = SerialExecutor(threads=where.threads or 1, retries=retries)
+                        return execute(store, executor, events=events, on_pending=on_pending, lease=lease)
+                    if self.conn is None:
+                        self.conn = connect(where.scheduler, where.scheduler_file, where.workers,
+                                            where.threads, security=where.security,
+                                            wait_workers=where.wait_workers,
+                                            wait_timeout=where.wait_timeout)
+                        if self.on_connect is not None:
+                            self.on_connect(self.conn)
+                    remote = _for_workers(store, where.storage_options)
+                    check_workers(self.conn.client, remote)
+                    preflight_memory(self.conn.client, int(store.task_memory().max(initial=0)))
+                    executor = DaskExecutor(self.conn.client, window_factor=setting("window-factor"),
+                                            retries=retries,
+                                            lost_after=seconds("lost-after", where.lost_after))
+                    if remote is not store:
+                        executor = _OnWorkers(executor, remote)
+                    return execute(store, executor, events=events, on_pending=on_pending, lease=lease)
+            except KeyboardInterrupt:
+                self.close()
+                done = int(store.commits.committed().sum())
+                raise Interrupted(store.url, done, store.n_tasks, caught.signal or 2) from None
+            except SchedulerLost as exc:
+                exc.url = store.url  # for the way out: resuming this store
+                raise
+
+
 def run(store: RunStore, where: Where = Where(), *, events: Events | None = None,
         on_pending: Callable[[RunStore, list[int]], None] | None = None,
         on_connect: Callable[[Any], None] | None = None) -> RunReport:
@@ -272,48 +366,8 @@ def run(store: RunStore, where: Where = Where(), *, events: Events | None = None
     is checked (versions, store access, memory per thread) before dispatch; SIGINT and
     SIGTERM raise `Interrupted` after the lease is released and the cluster closed.
     """
-    from .cluster import check_workers, connect, preflight_memory, seconds, setting
-    from .interrupts import signals_as_interrupts
-
-    if store.is_complete():
-        try:
-            result = read_result(store)
-        except ResultDamaged:
-            result = None
-        if result is not None:
-            return RunReport(url=store.url, kind=store.kind, n_tasks=store.n_tasks,
-                             done=store.n_tasks, result=result)
-    retries = int(setting("retries", where.retries))
-    lease = acquire_lease(store, takeover=where.takeover)
-    with signals_as_interrupts() as caught:
-        try:
-            with lease:
-                if where.serial:
-                    executor: Executor = SerialExecutor(threads=where.threads or 1, retries=retries)
-                    return execute(store, executor, events=events, on_pending=on_pending, lease=lease)
-                conn = connect(where.scheduler, where.scheduler_file, where.workers, where.threads,
-                               security=where.security, wait_workers=where.wait_workers,
-                               wait_timeout=where.wait_timeout)
-                try:
-                    if on_connect is not None:
-                        on_connect(conn)
-                    remote = _for_workers(store, where.storage_options)
-                    check_workers(conn.client, remote)
-                    preflight_memory(conn.client, int(store.task_memory().max(initial=0)))
-                    executor = DaskExecutor(conn.client, window_factor=setting("window-factor"),
-                                            retries=retries,
-                                            lost_after=seconds("lost-after", where.lost_after))
-                    if remote is not store:
-                        executor = _OnWorkers(executor, remote)
-                    return execute(store, executor, events=events, on_pending=on_pending, lease=lease)
-                finally:
-                    conn.close()
-        except KeyboardInterrupt:
-            done = int(store.commits.committed().sum())
-            raise Interrupted(store.url, done, store.n_tasks, caught.signal or 2) from None
-        except SchedulerLost as exc:
-            exc.url = store.url  # for the way out: resuming this store
-            raise
+    with Session(where, on_connect=on_connect) as session:
+        return session.run(store, events=events, on_pending=on_pending)
 
 
 def status(store: RunStore) -> dict[str, Any]:

@@ -51,7 +51,47 @@ FIELD = JobKind(
     unit="blocks",
 )
 
-KINDS: dict[str, JobKind] = {k.name: k for k in (CLOUD, BATCH, BANDS, GRAPH, FIELD)}
+# planning a cloud on the cluster (`chitally.jobs.stages`): four stages, each a kind
+_STAGES = "chitally.jobs.stages"
+PLAN_COUNT = JobKind(
+    name="plan-count", task=f"{_STAGES}:count_task", fold=f"{_STAGES}:CellCounts",
+    outputs=(("codes", "<i8"), ("counts", "<i8")), read=f"{_STAGES}:read_arrays", unit="blocks",
+)
+PLAN_SCATTER = JobKind(
+    name="plan-scatter", task=f"{_STAGES}:scatter_task", fold=f"{_STAGES}:Nothing",
+    outputs=(("coords", "<f8"), ("ids", "<i8"), ("cells", "<i8"), ("bounds", "<i8")),
+    read=f"{_STAGES}:read_arrays", unit="blocks", fold_reads=("bounds",),
+)
+PLAN_REGION = JobKind(
+    name="plan-region", task=f"{_STAGES}:region_task", fold=f"{_STAGES}:RegionCosts",
+    outputs=(("coords", "<f8"), ("gids", "<i8"), ("cells", "<i8"), ("degree", "<i8"),
+             ("hist", "<i8"), ("summary", "<f8")),
+    read=f"{_STAGES}:read_arrays", unit="regions", fold_reads=("summary", "hist"),
+)
+PLAN_HALO = JobKind(
+    name="plan-halo", task=f"{_STAGES}:halo_task", fold=f"{_STAGES}:TaskTable",
+    outputs=(("coords", "<f8"), ("offsets", "<i8"), ("owned", "<i8"), ("rows", "<i8"),
+             ("cost", "<f8"), ("memory", "<i8")),
+    read=f"{_STAGES}:read_arrays", unit="regions",
+    fold_reads=("offsets", "owned", "rows", "cost", "memory"),
+)
+
+# a cloud whose curve is larger than one part: jump tables reduced in parts of the scale
+CLOUD_PARTS = JobKind(
+    name="cloud-parts", task="chitally.jobs.cloud:compute_task", fold=f"{_STAGES}:Nothing",
+    outputs=(("values", "<f8"), ("jumps", "<i8"), ("parts", "<i8")),
+    read="chitally.jobs.parts:read_parted", unit="points", fold_reads=("parts",),
+    then="chitally.jobs.parts:merge_store",
+)
+CURVE_MERGE = JobKind(
+    name="curve-merge", task="chitally.jobs.parts:merge_task", fold="chitally.jobs.parts:PartTotals",
+    outputs=(("values", "<f8"), ("jumps", "<i8"), ("total", "<i8")),
+    read="chitally.jobs.parts:read_totals", unit="parts", fold_reads=("total",),
+)
+
+KINDS: dict[str, JobKind] = {k.name: k for k in (CLOUD, BATCH, BANDS, GRAPH, FIELD, PLAN_COUNT,
+                                                 PLAN_SCATTER, PLAN_REGION, PLAN_HALO, CLOUD_PARTS,
+                                                 CURVE_MERGE)}
 
 
 def kind_of(name: str) -> JobKind:
@@ -62,4 +102,5 @@ def kind_of(name: str) -> JobKind:
         raise ValueError(f"unknown job kind {name!r}; this chitally runs {sorted(KINDS)}") from None
 
 
-__all__ = ["BANDS", "BATCH", "CLOUD", "FIELD", "GRAPH", "KINDS", "Fold", "JobKind", "TaskOutput", "kind_of"]
+__all__ = ["BANDS", "BATCH", "CLOUD", "CLOUD_PARTS", "CURVE_MERGE", "FIELD", "GRAPH", "KINDS", "PLAN_COUNT", "PLAN_HALO",
+           "PLAN_REGION", "PLAN_SCATTER", "Fold", "JobKind", "TaskOutput", "kind_of"]

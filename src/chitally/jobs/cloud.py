@@ -102,6 +102,9 @@ def task_input(store: RunStore, i: int) -> tuple[np.ndarray, int, int]:
     def part(name: str, sel: slice) -> np.ndarray:
         return store.read_input(name, sel, task=i)
 
+    if store.attrs.get("layout") == "staged":
+        return _staged_input(store, i)
+
     lo, hi = (int(x) for x in part("halo_offsets", slice(i, i + 2)))
     row_start = int(part("row_start", slice(i, i + 1))[0])
     row_stop = int(part("row_stop", slice(i, i + 1))[0])
@@ -118,6 +121,19 @@ def task_input(store: RunStore, i: int) -> tuple[np.ndarray, int, int]:
     return coords, owned_start, owned_stop
 
 
+def _staged_input(store: RunStore, i: int) -> tuple[np.ndarray, int, int]:
+    """A task of a plan made on the cluster: its halo is one slice of the halo stage's
+    output for its region, in global row order, its own rows a contiguous part of it."""
+    from .stages import open_stage, stage_url
+
+    region = int(store.read_input("halo_region", slice(i, i + 1), task=i)[0])
+    h0, h1 = (int(v) for v in store.read_input("halo_span", slice(i, i + 1), task=i)[0])
+    lo, hi = (int(v) for v in store.read_input("owned", slice(i, i + 1), task=i)[0])
+    halo = open_stage(stage_url(store.url, "halo"), store.io.storage_options)
+    coords = halo.commits.read_rows(region, "coords", h0, h1)
+    return coords, lo, hi
+
+
 def compute_task(store: RunStore, i: int, *, threads: int = 1) -> tuple[dict[str, np.ndarray], dict[str, int]]:
     """The task function: task `i`'s jump table and counters."""
     params = store.params
@@ -126,7 +142,12 @@ def compute_task(store: RunStore, i: int, *, threads: int = 1) -> tuple[dict[str
                         threads=threads)
     counters = {"points": hi - lo, "halo": int(coords.shape[0]), "edges": int(table.stats.edges),
                 "splits": int(table.stats.splits)}
-    return {"values": table.values, "jumps": table.jumps}, counters
+    out = {"values": table.values, "jumps": table.jumps}
+    if "part_bounds" in store.input_names:
+        from .parts import offsets_at
+
+        out["parts"] = offsets_at(table.values, store.read_input("part_bounds"))
+    return out, counters
 
 
 class JumpSum:
@@ -206,12 +227,31 @@ def describe(points: np.ndarray, params: Params) -> dict[str, Any]:
     from ..store import describe_layout
     from ..validate import validate_points
 
+    import time
+
+    from ..engine import peak_memory, reset_peak_memory
+
     points = validate_points(points)
+    reset_peak_memory()
+    t0 = time.perf_counter()
     cover, plan, _ = plan_points(points, params)
+    seconds = time.perf_counter() - t0
     summary = summarise_plan(plan, cover)
+    peak = peak_memory()
+    summary["planner"] = {"kind": "driver", "seconds": seconds, "driver_peak": peak,
+                          "expected_driver_peak": max(peak, expected_driver_peak(summary))}
     summary["warnings"] = plan_warnings(plan)
     summary["layout"] = describe_layout(plan.n_tasks)
     return summary
+
+
+def expected_driver_peak(summary: Mapping[str, Any]) -> int:
+    """The driver's expected peak while the run executes (bytes): the process itself,
+    the task table, and the reducer's curve, which holds at most one jump per edge
+    (twice while merging)."""
+    from ..runs import DRIVER_BASELINE
+
+    return int(DRIVER_BASELINE + summary["tasks"] * 64 + 32 * max(int(summary.get("edges", 0)), 0))
 
 
 #: Measured driver and store overhead of one task (seconds): commit, verify, schedule.

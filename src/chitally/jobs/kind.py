@@ -59,6 +59,10 @@ class JobKind:
         ``module:function`` reading the verified result from a store, None before.
     unit : str
         What progress counts (shown to the user), e.g. "points", "clouds".
+    fold_reads : tuple of str, optional
+        The outputs the fold reads (each verified against its own digest in the commit
+        record); all of them when None. A stage whose tasks commit large data for later
+        stages beside a small summary folds the summary only.
     """
 
     name: str
@@ -67,6 +71,11 @@ class JobKind:
     outputs: tuple[tuple[str, str], ...]
     read: str
     unit: str = "tasks"
+    fold_reads: tuple[str, ...] | None = None
+    then: str | None = None
+
+    def follow_up(self, store: RunStore) -> RunStore | None:
+        return None if self.then is None else _resolve(self.then)(store)
 
     def task_function(self) -> TaskFunction:
         return _resolve(self.task)

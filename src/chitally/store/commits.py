@@ -114,6 +114,9 @@ class CommitLog:
             "task": i,
             "attempt": str(attempt),
             "digest": digest,
+            # each array's own digest too, so a reader that needs only some of them
+            # (a fold of summaries beside large data) verifies what it reads
+            "digests": {n: arrays_digest({n: a}) for n, a in data.items()},
             "outputs": {n: {"dtype": a.dtype.str, "shape": list(a.shape)} for n, a in data.items()},
             "committed": iso(),
         }
@@ -147,8 +150,8 @@ class CommitLog:
             raise CorruptTask(f"task {i}: commit record {key!r} lacks its digest or outputs")
         return rec
 
-    def read(self, i: int) -> dict[str, np.ndarray]:
-        """Task `i`'s outputs, proven by its commit record.
+    def read(self, i: int, names: Sequence[str] | None = None) -> dict[str, np.ndarray]:
+        """Task `i`'s outputs (or only those in `names`), proven by its commit record.
 
         Raises `CorruptTask`: no record, data missing or unreadable, wrong dtype, shape
         or digest.
@@ -157,6 +160,9 @@ class CommitLog:
         record = self.record(i)
         if record is None:
             raise CorruptTask(f"task {i}: no commit record (the task is pending)")
+        digests = record.get("digests")
+        if names is not None and isinstance(digests, dict) and set(names) <= digests.keys():
+            return self._read_some(i, list(names), digests)
         names = [n for n, _ in self.outputs]
         try:
             data = self.io.read_arrays(self.output_prefix(i), names, task=i)
@@ -167,6 +173,24 @@ class CommitLog:
             raise CorruptTask(f"task {i}: outputs do not match the commit record "
                               f"(digest {found[:12]}, recorded {str(record['digest'])[:12]})")
         return data
+
+    def _read_some(self, i: int, names: list[str], digests: Mapping[str, Any]) -> dict[str, np.ndarray]:
+        try:
+            data = self.io.read_arrays(self.output_prefix(i), names, task=i)
+        except CorruptTask as exc:
+            raise CorruptTask(f"task {i}: {exc}") from exc
+        for name, arr in data.items():
+            if arrays_digest({name: arr}) != digests[name]:
+                raise CorruptTask(f"task {i}: output {name!r} does not match its commit record")
+        return data
+
+    def read_rows(self, i: int, name: str, start: int, stop: int) -> np.ndarray:
+        """Rows ``start:stop`` of task `i`'s committed output `name`, without reading the
+        rest: large outputs are stored in row chunks, each with its own checksum, so a
+        damaged chunk raises `CorruptTask` here (the whole array's digest is checked by
+        the commit and by whoever reads it whole)."""
+        i = self._index(i)
+        return self.io.read_rows(f"{self.output_prefix(i)}/{name}", int(start), int(stop), task=i)
 
     def verified_record(self, i: int) -> dict[str, Any] | None:
         """The commit record if the outputs match it, else None (damaged or pending)."""

@@ -130,6 +130,19 @@ def local_path(url: str) -> str | None:
     return None
 
 
+#: Arrays above this size are stored in chunks of rows of about this size, so that a
+#: reader of a few rows (a region reading its part of every block) reads only those.
+ROW_CHUNK_BYTES = 1 << 20
+
+
+def _row_chunks(data: np.ndarray) -> tuple[int, ...]:
+    shape = tuple(max(int(s), 1) for s in data.shape)
+    if not shape or data.nbytes <= ROW_CHUNK_BYTES:
+        return shape
+    row_bytes = max(1, data.nbytes // max(1, data.shape[0]))
+    return (max(1, ROW_CHUNK_BYTES // row_bytes), *shape[1:])
+
+
 def _compressors() -> tuple[ZstdCodec, Crc32cCodec]:
     # The checksum comes after compression so that it covers the bytes on disk.
     return (ZstdCodec(level=1), Crc32cCodec())
@@ -288,7 +301,7 @@ class StoreIO:
         """Write a whole array at `path` (one chunk unless `chunks` is given)."""
         data = little_endian(data)
         if chunks is None:
-            chunks = tuple(max(int(s), 1) for s in data.shape) or ()
+            chunks = _row_chunks(data)
 
         def create(overwrite: bool) -> Any:
             return zarr.create_array(
@@ -323,6 +336,28 @@ class StoreIO:
         try:
             arr = zarr.open_array(self.zarr_store, path=path, mode="r")
             return np.asarray(arr[...])
+        except FileNotFoundError as exc:
+            raise CorruptTask(f"{path} is missing in {self.url}") from exc
+        except OSError as exc:
+            raise StoreError(f"reading {path} of {self.url} failed: {one_line(exc)}") from exc
+        except Exception as exc:
+            raise CorruptTask(f"{path} of {self.url} is unreadable: "
+                              f"{type(exc).__name__}: {one_line(exc)}") from exc
+
+    def read_rows(self, path: str, start: int, stop: int, *, task: int | None = None) -> np.ndarray:
+        """Rows ``start:stop`` of the array at `path`; only the chunks holding them are
+        read, each checked against its checksum (`CorruptTask` when one fails)."""
+        try:
+            arr = self._arrays.get(path)
+            if arr is None:
+                arr = zarr.open_array(self.zarr_store, path=path, mode="r")
+                self._arrays[path] = arr
+            if not (0 <= start <= stop <= arr.shape[0]):
+                raise CorruptTask(f"{path} of {self.url} has {arr.shape[0]} rows, rows "
+                                  f"{start}:{stop} were asked for")
+            return np.asarray(arr[start:stop])
+        except CorruptTask:
+            raise
         except FileNotFoundError as exc:
             raise CorruptTask(f"{path} is missing in {self.url}") from exc
         except OSError as exc:
