@@ -82,7 +82,7 @@ def cluster():
         yield c
 
 
-@pytest.mark.parametrize("cap", [None, 2])
+@pytest.mark.parametrize("cap", [None, pytest.param(2, marks=pytest.mark.slow)])
 def test_stages_on_dask_give_the_in_process_curve(tmp_path, cluster, cap):
     pts = clustered(1200, 5)
     where = runs.Where(scheduler=cluster.scheduler_address, wait_workers=2)
@@ -237,7 +237,7 @@ def test_a_killed_worker_during_a_stage_is_survived(tmp_path):
 
 # ------------------------------------------------------------------------- curves in parts
 
-@pytest.mark.parametrize("executor", ["serial", "dask"])
+@pytest.mark.parametrize("executor", ["serial", pytest.param("dask", marks=pytest.mark.slow)])
 def test_a_curve_reduced_in_parts_is_the_whole_curve(tmp_path, cluster, executor):
     from chitally import Curve
     from chitally.jobs.parts import PartedCurve
