@@ -288,8 +288,8 @@ def _global_ids(cells: np.ndarray, ids: np.ndarray, cell_start: np.ndarray) -> t
 
 
 def _gather(store: RunStore, r: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
-    """Region `r`'s rows then its halo rows, each in global order: (coords, global ids,
-    cells, number of own rows)."""
+    """Region `r`'s rows and its halo rows in global order: (coords, global ids, cells,
+    index of the first own row, number of own rows)."""
     scatter = sibling(store, "scatter")
     own, halo = [], []
     for b in range(scatter.n_tasks):
@@ -317,8 +317,13 @@ def _gather(store: RunStore, r: int) -> tuple[np.ndarray, np.ndarray, np.ndarray
     if not np.array_equal(og, np.arange(rows[r], rows[r + 1])):
         raise ValueError(f"region {r}: its rows do not cover its global row range "
                          f"{int(rows[r])}:{int(rows[r + 1])} (a block output is incomplete)")
-    return (np.concatenate([oc, hc]), np.concatenate([og, hg]), np.concatenate([ocell, hcell]),
-            int(og.size))
+    # all rows in global order: the own rows, a contiguous range of global ids, are then
+    # one slice, and a row's index orders rows as the global ids do
+    gids = np.concatenate([og, hg])
+    order = np.argsort(gids, kind="stable")
+    own_start = int(np.searchsorted(gids[order], rows[r]))
+    return (np.concatenate([oc, hc])[order], gids[order], np.concatenate([ocell, hcell])[order],
+            own_start, int(og.size))
 
 
 def _pairs(coords: np.ndarray, eps: float, lengths: bool = False) -> tuple[np.ndarray, ...]:
@@ -336,16 +341,18 @@ def region_task(store: RunStore, r: int, *, threads: int = 1) -> tuple[dict[str,
     from .parts import LENGTH_BINS
 
     eps = float(store.params["eps"])
-    coords, gids, cells, n_own = _gather(store, r)
+    coords, gids, cells, s0, n_own = _gather(store, r)
+    own = slice(s0, s0 + n_own)
     lo, hi, length = _pairs(coords, eps, lengths=True)
     degree = (np.bincount(lo, minlength=gids.size) + np.bincount(hi, minlength=gids.size)).astype(np.int64)
     # each edge once, in the region owning its lower-numbered end: where the curve's
     # jumps lie, to cut its reduction into parts of about equal size
     low = np.where(gids[lo] < gids[hi], lo, hi)
-    hist = np.histogram(length[low < n_own], bins=LENGTH_BINS, range=(0.0, eps))[0].astype(np.int64)
-    cost = float(_row_cost(degree[:n_own], store.params["max_dim"]).sum())
+    mine = (low >= s0) & (low < s0 + n_own)
+    hist = np.histogram(length[mine], bins=LENGTH_BINS, range=(0.0, eps))[0].astype(np.int64)
+    cost = float(_row_cost(degree[own], store.params["max_dim"]).sum())
     return ({"coords": coords, "gids": gids, "cells": cells, "degree": degree, "hist": hist,
-             "summary": np.array([float(n_own), cost, float(degree[:n_own].sum())])},
+             "summary": np.array([float(n_own), cost, float(degree[own].sum()), float(s0)])},
             {"rows": n_own, "halo": int(gids.size - n_own), "edges": int(lo.size)})
 
 
@@ -355,7 +362,7 @@ class RegionCosts:
     def __init__(self, store: RunStore) -> None:
         from .parts import LENGTH_BINS
 
-        self.summary = np.zeros((store.n_tasks, 3), np.float64)
+        self.summary = np.zeros((store.n_tasks, 4), np.float64)
         self.hist = np.zeros(LENGTH_BINS, np.int64)
 
     def restore(self, state: Mapping[str, np.ndarray]) -> None:
@@ -383,11 +390,13 @@ def halo_task(store: RunStore, r: int, *, threads: int = 1) -> tuple[dict[str, n
     region = sibling(store, "region")
     got = region.commits.read(r)
     coords, gids, cells, degree = got["coords"], got["gids"], got["cells"], got["degree"]
-    n_own = int(got["summary"][0])
+    n_own, s0 = int(got["summary"][0]), int(got["summary"][3])
+    own = slice(s0, s0 + n_own)
     eps, max_dim = float(store.params["eps"]), store.params["max_dim"]
     dim = int(store.attrs["dim"])
-    row_cost = _row_cost(degree[:n_own], max_dim)
-    cell_bounds = np.concatenate([[0], np.flatnonzero(np.diff(cells[:n_own])) + 1, [n_own]]).astype(np.int64)
+    n = gids.size
+    row_cost = _row_cost(degree[own], max_dim)
+    cell_bounds = np.concatenate([[0], np.flatnonzero(np.diff(cells[own])) + 1, [n_own]]).astype(np.int64)
     if n_own == 0:
         starts = np.zeros(0, np.int64)
     else:
@@ -396,30 +405,29 @@ def halo_task(store: RunStore, r: int, *, threads: int = 1) -> tuple[dict[str, n
     stops = np.append(starts[1:], n_own).astype(np.int64)
     n_tasks = starts.size
     lo, hi = _pairs(coords, eps)
-    task_of = np.full(gids.size, -1, np.int64)
-    task_of[:n_own] = np.repeat(np.arange(n_tasks, dtype=np.int64), stops - starts)
-    # the halo of a task: its rows and both ends of every edge with an end among them
-    t = np.concatenate([task_of[:n_own], task_of[lo], task_of[hi]])
-    row = np.concatenate([np.arange(n_own, dtype=np.int64), hi, lo])
-    keep = t >= 0
-    t, row = t[keep], row[keep]
-    key = np.unique(t * gids.size + row)
-    t, row = key // gids.size, key % gids.size
-    order = np.lexsort((gids[row], t))
-    t, row = t[order], row[order]
+    task_of = np.full(n, -1, np.int64)
+    task_of[own] = np.repeat(np.arange(n_tasks, dtype=np.int64), stops - starts)
+    # the halo of a task: its rows and both ends of every edge with an end among them,
+    # as keys task * n + row: sorted, they list each task's rows in global order
+    t = np.concatenate([task_of[own], task_of[lo], task_of[hi]])
+    row = np.concatenate([np.arange(s0, s0 + n_own, dtype=np.int64), hi, lo])
+    key = (t * n + row)[t >= 0]
+    key.sort()
+    if key.size:
+        key = key[np.concatenate(([True], key[1:] != key[:-1]))]
+    t, row = key // n, key % n
     offsets = np.searchsorted(t, np.arange(n_tasks + 1, dtype=np.int64)).astype(np.int64)
-    halo_gids = gids[row]
-    g0, g1 = gids[starts] if n_tasks else starts, gids[stops - 1] + 1 if n_tasks else stops
-    owned = np.stack([
-        np.array([np.searchsorted(halo_gids[offsets[k]:offsets[k + 1]], g0[k]) for k in range(n_tasks)],
-                 dtype=np.int64).reshape(-1),
-        np.array([np.searchsorted(halo_gids[offsets[k]:offsets[k + 1]], g1[k]) for k in range(n_tasks)],
-                 dtype=np.int64).reshape(-1)], axis=1) if n_tasks else np.zeros((0, 2), np.int64)
-    # an edge belongs to the task owning its lower-numbered end
-    low = np.where(gids[lo] < gids[hi], lo, hi)
-    owned_edges = np.bincount(task_of[low][task_of[low] >= 0], minlength=n_tasks)
+    task_ids = np.arange(n_tasks, dtype=np.int64)
+    owned = np.stack([np.searchsorted(key, task_ids * n + s0 + starts) - offsets[:-1],
+                      np.searchsorted(key, task_ids * n + s0 + stops) - offsets[:-1]], axis=1)
+    g0 = gids[s0 + starts] if n_tasks else starts
+    g1 = gids[s0 + stops - 1] + 1 if n_tasks else stops
+    # an edge belongs to the task owning its lower-numbered end (row order is id order)
+    low = np.minimum(lo, hi)
+    owner = task_of[low]
+    owned_edges = np.bincount(owner[owner >= 0], minlength=n_tasks)
     halo_edges = np.add.reduceat(degree[row], offsets[:-1]) if row.size else np.zeros(n_tasks, np.int64)
-    max_deg = np.maximum.reduceat(degree[:n_own], starts) if n_tasks else np.zeros(0, np.int64)
+    max_deg = np.maximum.reduceat(degree[own], starts) if n_tasks else np.zeros(0, np.int64)
     memory = _task_memory(np.diff(offsets), dim, halo_edges, owned_edges, max_deg).astype(np.int64)
     cost = np.add.reduceat(row_cost, starts) if n_tasks else np.zeros(0)
     return ({"coords": np.ascontiguousarray(coords[row]), "offsets": offsets, "owned": owned,
