@@ -24,6 +24,7 @@ from chitally.graph_kernel import (
     UNCAPPED,
     degree_square_sum,
     degree_values,
+    lower_star_degree_row,
     lower_star_row,
     stable_order,
 )
@@ -100,7 +101,14 @@ def test_degree_rows_equal_networkx_brute_force(name, cap):
     g = GRAPHS[name]()
     f = degrees_written_out(g)
     grid = np.arange(-1.0, f.max() + 2.0, 1.0)
-    assert np.array_equal(kernel_row(g, f, cap, grid), brute_row(g, f, cap, grid))
+    expected = brute_row(g, f, cap, grid)
+    assert np.array_equal(kernel_row(g, f, cap, grid), expected)
+    # the degrees found in the same call, and negated (superlevel) against -f
+    for sign, want in ((1.0, expected), (-1.0, brute_row(g, -f + 0.0, cap, -grid[::-1]))):
+        row = np.zeros(grid.size + 1, dtype=np.int64)
+        lower_star_degree_row(g.edges, g.n, sign, math.inf, UNCAPPED if cap is None else cap,
+                              sign * grid[::int(sign)], row, np.zeros(5, dtype=np.int64))
+        assert np.array_equal(np.cumsum(row)[:grid.size], want)
 
 
 @pytest.mark.parametrize("cap", CAPS)

@@ -352,14 +352,14 @@ def _lower_csr(n, edges, rank):
 
 
 @nb.njit(nogil=True, cache=True)
-def _rank_pairs(loff, rows, s, n, loc, pa, pj):
-    """The edges of G_v in rank space (v's lower row is rows[s:s+n], loc its positions),
+def _rank_pairs(loff, rows, lv, n, loc, pa, pj):
+    """The edges of G_v in rank space (v's lower row is lv[:n], loc its positions),
     each once from its later end's lower row; returns their number, writing only as many
     as the arrays hold."""
     ne = 0
     cap = pa.shape[0]
     for a in range(n):
-        u = rows[s + a]
+        u = lv[a]
         for x in range(loff[u], loff[u + 1]):
             j = loc[rows[x]]
             if j >= 0:
@@ -371,18 +371,23 @@ def _rank_pairs(loff, rows, s, n, loc, pa, pj):
 
 
 @nb.njit(nogil=True, cache=True)
-def _lower_bits(n, W, loff, rows):
-    """Row r: the bitset of r's lower neighbours (ranks), W words."""
+def _lower_bits(n, W, edges, rank):
+    """Row r: the bitset of the ranks of r's neighbours before it (W words); and the
+    number of them."""
     bits = np.zeros((n, W), dtype=np.uint64)
-    for r in range(n):
-        for x in range(loff[r], loff[r + 1]):
-            a = rows[x]
-            bits[r, a >> 6] |= ONE << np.uint64(a & 63)
-    return bits
+    low = np.zeros(n, dtype=np.int64)
+    for g in range(edges.shape[0]):
+        a = rank[edges[g, 0]]
+        b = rank[edges[g, 1]]
+        if a > b:
+            a, b = b, a
+        bits[b, a >> 6] |= ONE << np.uint64(a & 63)
+        low[b] += 1
+    return bits, low
 
 
 @nb.njit(nogil=True, cache=True)
-def _bit_pairs(bits, v, rows, s, n, loc, pa, pj):
+def _bit_pairs(bits, v, lv, n, loc, pa, pj):
     """`_rank_pairs` by bitsets: the neighbours of u in G_v that come before it are
     bits[u] & bits[v], a few words, so the pairs cost a word operation each rather than
     one look-up per lower neighbour of u. Returns (number of edges, whether G_v has a
@@ -392,7 +397,7 @@ def _bit_pairs(bits, v, rows, s, n, loc, pa, pj):
     cap = pa.shape[0]
     tri = False
     for a in range(1, n):
-        u = rows[s + a]
+        u = lv[a]
         for q in range((u >> 6) + 1):
             word = bits[u, q] & bits[v, q]
             while word != ZERO:
@@ -445,6 +450,12 @@ def lower_star_row(edges, vals, threshold, max_dim, grid, row, stats):
     the grid), for every vertex of value <= threshold; the row's running sum is then the
     curve on the grid.
 
+    The graph is relabelled by rank, so a vertex's lower neighbours are the ranks below
+    its own: up to 64 * BIT_WORDS vertices each keeps them as a bitset (the edges of a
+    lower link are then word operations, and a lower link without a triangle, the usual
+    case in sparse graphs, is counted from its numbers of vertices and edges), above that
+    as a sorted row.
+
     Parameters
     ----------
     edges : int64 (m, 2), distinct edges of vertices 0..n-1.
@@ -460,10 +471,22 @@ def lower_star_row(edges, vals, threshold, max_dim, grid, row, stats):
     rank = np.empty(n, dtype=np.int64)
     for r in range(n):
         rank[order[r]] = r
-    loff, rows = _lower_csr(n, edges, rank)
+    W = (n + 63) >> 6
+    use_bits = W <= BIT_WORDS
+    if use_bits:
+        bits, low = _lower_bits(n, W, edges, rank)
+        loff = np.zeros(1, dtype=np.int64)
+        rows = np.zeros(0, dtype=np.int32)
+    else:
+        bits = np.zeros((0, 1), dtype=np.uint64)
+        loff, rows = _lower_csr(n, edges, rank)
+        low = np.empty(n, dtype=np.int64)
+        for r in range(n):
+            low[r] = loff[r + 1] - loff[r]
     maxlow = 0
     for r in range(n):
-        maxlow = max(maxlow, loff[r + 1] - loff[r])
+        maxlow = max(maxlow, low[r])
+    lv = np.empty(maxlow + 1, dtype=np.int64)
     loc = np.full(n, -1, dtype=np.int32)
     pa = np.empty(max(4 * maxlow, 16), dtype=np.int32)
     pj = np.empty(max(4 * maxlow, 16), dtype=np.int32)
@@ -475,9 +498,6 @@ def lower_star_row(edges, vals, threshold, max_dim, grid, row, stats):
     cadj = np.zeros(64, dtype=np.uint64)
     stack1 = np.empty(2 * 64 + 2, dtype=np.uint64)
     signs1 = np.empty(2 * 64 + 130, dtype=np.int64)
-    # bitsets of the lower rows when they are short (n <= 64 * BIT_WORDS)
-    W = (n + 63) >> 6
-    bits = _lower_bits(n, W, loff, rows) if W <= BIT_WORDS else np.zeros((0, 1), dtype=np.uint64)
     G = grid.shape[0]
     gi = 0
     for v in range(n):
@@ -486,33 +506,53 @@ def lower_star_row(edges, vals, threshold, max_dim, grid, row, stats):
             break  # every later vertex lies above it too
         while gi < G and grid[gi] < value:
             gi += 1
-        s = loff[v]
-        nv = loff[v + 1] - s
+        nv = low[v]
         if nv == 0 or max_dim == 0:
             row[gi] += 1
             continue
         if max_dim == 1:
             row[gi] += 1 - nv
             continue
-        for a in range(nv):
-            loc[rows[s + a]] = a
-        tri = True
-        if W <= BIT_WORDS:
-            ne, tri = _bit_pairs(bits, v, rows, s, nv, loc, pa, pj)
+        # v's lower neighbours, ascending, and their positions
+        if use_bits:
+            a = 0
+            for q in range((v >> 6) + 1):
+                word = bits[v, q]
+                while word != ZERO:
+                    u = (q << 6) | _trailing_zeros(word)
+                    word &= word - ONE
+                    lv[a] = u
+                    loc[u] = a
+                    a += 1
         else:
-            ne = _rank_pairs(loff, rows, s, nv, loc, pa, pj)
+            s = loff[v]
+            for a in range(nv):
+                u = rows[s + a]
+                lv[a] = u
+                loc[u] = a
+        tri = True
+        if use_bits:
+            ne, tri = _bit_pairs(bits, v, lv, nv, loc, pa, pj)
+        else:
+            ne = _rank_pairs(loff, rows, lv, nv, loc, pa, pj)
         if ne > pa.shape[0]:
             pa = np.empty(2 * ne, dtype=np.int32)
             pj = np.empty(2 * ne, dtype=np.int32)
-            if W <= BIT_WORDS:
-                ne, tri = _bit_pairs(bits, v, rows, s, nv, loc, pa, pj)
+            if use_bits:
+                ne, tri = _bit_pairs(bits, v, lv, nv, loc, pa, pj)
             else:
-                ne = _rank_pairs(loff, rows, s, nv, loc, pa, pj)
+                ne = _rank_pairs(loff, rows, lv, nv, loc, pa, pj)
         for a in range(nv):
-            loc[rows[s + a]] = -1
+            loc[lv[a]] = -1
         if max_dim == 2 or not tri:
             # no clique of G_v above an edge: 1 - |V(G_v)| + |E(G_v)| under any cap >= 2
             row[gi] += 1 - nv + ne
             continue
         row[gi] += _link_jump(nv, ne, pa, pj, max_dim, deg, newid, cadj, rem1, counts,
                               stack1, signs1, stats)
+
+
+@nb.njit(nogil=True, cache=True)
+def lower_star_degree_row(edges, n, sign, threshold, max_dim, grid, row, stats):
+    """`lower_star_row` with every vertex valued sign * its degree (one call a graph)."""
+    lower_star_row(edges, degree_values(edges, n, sign), threshold, max_dim, grid, row, stats)

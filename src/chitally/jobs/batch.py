@@ -29,7 +29,7 @@ import numpy as np
 from ..clouds import Collection
 from ..curve import Curve
 from ..graph_data import GraphData, vertex_values
-from ..graph_kernel import UNCAPPED, degree_square_sum, degree_values, lower_star_row
+from ..graph_kernel import UNCAPPED, degree_square_sum, lower_star_degree_row, lower_star_row
 from ..graph_sources import GraphCollection
 from ..graphs import filtered_graph, owned_jumps
 from ..kernel import count_jumps
@@ -337,10 +337,10 @@ def _lower_star_rows(graphs: Sequence[GraphData], values: str | None, max_dim: i
     for i, g in enumerate(graphs):
         edges = np.ascontiguousarray(g.edges, dtype=np.int64)
         if values == "degree":
-            vals = degree_values(edges, g.n, sign)
+            lower_star_degree_row(edges, g.n, sign, thr, cap, grid, out[i], stats)
         else:
             vals = np.ascontiguousarray(sign * vertex_values(g, values) + 0.0, dtype=np.float64)
-        lower_star_row(edges, vals, thr, cap, grid, out[i], stats)
+            lower_star_row(edges, vals, thr, cap, grid, out[i], stats)
     return np.cumsum(out, axis=1)[:, :grid.size]
 
 
