@@ -16,6 +16,11 @@ Two filtrations of a graph's clique complex are counted here, both exactly:
   size one and nothing more (a disjoint point adds 1 to the reduced Euler
   characteristic), and leaving them out keeps the bitsets of hubs small.
 
+  Many small graphs (the batch path) are counted one graph a call by `lower_star_row`
+  (`lower_star_degree_row` for degrees): the graph is relabelled by rank, the lower
+  rows kept as bitsets (up to 64 * BIT_WORDS vertices), and each jump added straight to
+  the graph's row of a feature matrix; no CSR of the whole graph, no union of graphs.
+
 * **Edge values (flag).** Edges are ordered by (value, lower id, higher id) and counted by
   the point-cloud kernel's `count_range` on a CSR built from that order (`fill_csr_by_rank`).
 

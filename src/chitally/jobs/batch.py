@@ -29,7 +29,12 @@ import numpy as np
 from ..clouds import Collection
 from ..curve import Curve
 from ..graph_data import GraphData, vertex_values
-from ..graph_kernel import UNCAPPED, degree_square_sum, lower_star_degree_row, lower_star_row
+from ..graph_kernel import (
+    UNCAPPED,
+    degree_square_sum,
+    lower_star_degree_row,
+    lower_star_row,
+)
 from ..graph_sources import GraphCollection
 from ..graphs import filtered_graph, owned_jumps
 from ..kernel import count_jumps
