@@ -158,3 +158,17 @@ def test_degree_helpers_equal_numpy():
     d = np.bincount(g.edges.ravel(), minlength=g.n)  # numpy's count of each vertex's edges
     assert np.array_equal(degree_values(g.edges, g.n, -1.0), -d.astype(np.float64))
     assert degree_square_sum(g.edges, g.n) == float(np.dot(d, d))
+
+
+@pytest.mark.parametrize("values", ["auto", "degree", None])
+def test_batch_rows_of_vertex_values_equal_networkx_brute_force(values):
+    from chitally.jobs.batch import graph_rows
+
+    graphs = [GRAPHS["small"](), with_cliques(30, 0.3, [5], seed=9),
+              GraphData.from_edges(np.zeros((0, 2), dtype=np.int64), 2)]
+    grid = np.arange(-1.0, 25.0, 0.5)
+    rows = graph_rows(graphs, values, None, None, False, None, grid)
+    for g, row in zip(graphs, rows):
+        # None puts every vertex at 0; "auto" without weights is the degree
+        f = np.zeros(g.n) if values is None else degrees_written_out(g)
+        assert np.array_equal(row, brute_row(g, f, None, grid))

@@ -341,7 +341,7 @@ def _lower_star_rows(graphs: Sequence[GraphData], values: str | None, max_dim: i
     stats = np.zeros(5, dtype=np.int64)
     for i, g in enumerate(graphs):
         edges = np.ascontiguousarray(g.edges, dtype=np.int64)
-        if values == "degree":
+        if values in ("degree", "auto"):  # "auto" is the degree without weights, as in `filtered_graph`
             lower_star_degree_row(edges, g.n, sign, thr, cap, grid, out[i], stats)
         else:
             vals = np.ascontiguousarray(sign * vertex_values(g, values) + 0.0, dtype=np.float64)
