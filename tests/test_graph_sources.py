@@ -267,3 +267,19 @@ def test_folder_of_edge_lists(tmp_path: Path) -> None:
         read_edge_list_folder(empty)
     with pytest.raises(InputError, match="not a folder"):
         read_collection(tmp_path / "absent")
+
+
+def test_a_collection_names_its_graphs_without_changing_them():
+    from dataclasses import fields
+
+    from chitally.graph_data import GraphData
+    from chitally.graph_sources import graph_collection
+
+    g = GraphData.from_edges([[0, 1], [1, 2]], 4, node_data={"h": [1.0, 2.0, 3.0, 4.0]},
+                             edge_data={"w": [0.5, 1.5]}, label="a", name="first")
+    col = graph_collection([g, g.named("second")], names=["x", "first"])
+    assert [h.name for h in col.graphs] == ["x", "first"]
+    assert col.graphs[1] is not g and g.named("first") is g
+    for h in col.graphs:
+        # every field but the name is the very object of the graph given
+        assert all(getattr(h, f.name) is getattr(g, f.name) for f in fields(GraphData) if f.name != "name")

@@ -33,7 +33,7 @@ from __future__ import annotations
 
 import os
 from collections.abc import Iterator, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from typing import Any
 
 import fsspec
@@ -551,5 +551,5 @@ def graph_collection(source: Any, *, names: Sequence[str] | None = None) -> Grap
             names = [str(k) for k in range(len(col))]
     if len(set(names)) != len(names):
         raise InputError("graph names repeat")
-    graphs = tuple(replace(g, name=name) for g, name in zip(col.graphs, names))
+    graphs = tuple(g.named(name) for g, name in zip(col.graphs, names))
     return GraphCollection(graphs, col.labels, col.name)

@@ -29,6 +29,12 @@ import numpy as np
 from ..clouds import Collection
 from ..curve import Curve
 from ..graph_data import GraphData, vertex_values
+from ..graph_kernel import (
+    UNCAPPED,
+    degree_square_sum,
+    lower_star_degree_row,
+    lower_star_row,
+)
 from ..graph_sources import GraphCollection
 from ..graphs import filtered_graph, owned_jumps
 from ..kernel import count_jumps
@@ -298,8 +304,12 @@ def graph_rows(graphs: Sequence[GraphData], values: str | None, weights: str | N
     every grid point inside a graph's domain it is ``graph_curve(...).sample``. The
     graphs are counted together, as their disjoint union: the jumps a vertex or edge
     owns depend on its own graph alone (`owned_jumps`), and the union keeps each graph's
-    order of vertices and edges, so ties break as in the graph alone.
+    order of vertices and edges, so ties break as in the graph alone. Vertex values
+    (no weights) are counted one graph a call instead (`lower_star_row`), which needs
+    no union and adds each vertex's jump to its graph's row as it goes.
     """
+    if weights is None:
+        return _lower_star_rows(graphs, values, max_dim, superlevel, threshold, grid)
     out = np.zeros((len(graphs), grid.size + 1), dtype=np.int64)
     flat = out.reshape(-1)  # a view: exact int64 sums at (graph, first grid point) cells
     # unions small enough for the caches: the kernels visit vertices in filtration
@@ -319,11 +329,31 @@ def graph_rows(graphs: Sequence[GraphData], values: str | None, weights: str | N
     return np.cumsum(out, axis=1)[:, :grid.size]
 
 
+def _lower_star_rows(graphs: Sequence[GraphData], values: str | None, max_dim: int | None,
+                     superlevel: bool, threshold: float | None, grid: np.ndarray) -> np.ndarray:
+    """`graph_rows` of the lower-star filtration: each graph in one compiled call, with
+    the values and threshold `filtered_graph` would give it."""
+    sign = -1.0 if superlevel else 1.0
+    thr = math.inf if threshold is None else sign * float(threshold) + 0.0
+    cap = UNCAPPED if max_dim is None else int(max_dim)
+    grid = np.ascontiguousarray(grid, dtype=np.float64)
+    out = np.zeros((len(graphs), grid.size + 1), dtype=np.int64)
+    stats = np.zeros(5, dtype=np.int64)
+    for i, g in enumerate(graphs):
+        edges = np.ascontiguousarray(g.edges, dtype=np.int64)
+        if values in ("degree", "auto"):  # "auto" is the degree without weights, as in `filtered_graph`
+            lower_star_degree_row(edges, g.n, sign, thr, cap, grid, out[i], stats)
+        else:
+            vals = np.ascontiguousarray(sign * vertex_values(g, values) + 0.0, dtype=np.float64)
+            lower_star_row(edges, vals, thr, cap, grid, out[i], stats)
+    return np.cumsum(out, axis=1)[:, :grid.size]
+
+
 def graph_cost(graph: GraphData) -> float:
     """Relative cost of one graph: its vertices and the pairs among each vertex's
     neighbours (the lower links and edge neighbourhoods the kernels read)."""
-    d = graph.degrees().astype(np.float64)
-    return float(graph.n + 0.5 * float(np.dot(d, d)) + 64.0)
+    edges = np.ascontiguousarray(graph.edges, dtype=np.int64)
+    return float(graph.n + 0.5 * degree_square_sum(edges, graph.n) + 64.0)
 
 
 def graph_fingerprint(col: GraphCollection, params: GraphBatchParams) -> dict[str, Any]:
