@@ -103,9 +103,10 @@ def fmt(request: pytest.FixtureRequest) -> str:
     return request.param
 
 
-def _message(func: Callable[[], object]) -> str:
+def _message(func: Callable[..., object], *args: object, **kwargs: object) -> str:
+    """Call ``func`` expecting an InputError; return its message after checking it is one line."""
     with pytest.raises(InputError) as info:
-        func()
+        func(*args, **kwargs)
     message = str(info.value)
     assert "\n" not in message and "\r" not in message
     return message
@@ -153,13 +154,13 @@ def test_first_bad_row_is_named_like_read_points(tmp_path: Path, fmt: str, bad: 
     a[25, 1] = bad
     a[31, 0] = bad
     path, kw = WRITERS[fmt](tmp_path, a)
-    expected = _message(lambda: read_points(path, **kw))
+    expected = _message(read_points, path, **kw)
     assert "row 25, column 1" in expected
     src = open_points(path, **kw)
     blocks = src.blocks(_block_rows(fmt))
     assert next(blocks)[0] == 0 and next(blocks)[0] == CHUNK  # the first two blocks are good
-    assert _message(lambda: next(blocks)) == expected
-    assert _message(lambda: src.read(22, 40)) == expected
+    assert _message(next, blocks) == expected
+    assert _message(src.read, 22, 40) == expected
     assert _same_bits(src.read(26, 31), a[26:31])  # ranges without the bad rows still read
 
 
@@ -168,9 +169,9 @@ def test_integers_beyond_2_53_are_named_by_global_row(tmp_path: Path) -> None:
     a[23, 2] = 2**53 + 1
     for writer in (_write_npy, _write_zarr2, _write_hdf5):
         path, kw = writer(tmp_path, a)
-        expected = _message(lambda: read_points(path, **kw))
+        expected = _message(read_points, path, **kw)
         assert "row 23, column 2" in expected
-        assert _message(lambda: list(open_points(path, **kw).blocks(CHUNK))) == expected
+        assert _message(list, open_points(path, **kw).blocks(CHUNK)) == expected
         assert _same_bits(open_points(path, **kw).read(0, 20), a[:20].astype(np.float64))
 
 
@@ -179,12 +180,12 @@ def test_parquet_null_and_wide_integers_are_named_by_global_row(tmp_path: Path) 
     y = pa.array(np.where(np.arange(N) == 33, 2**60, np.arange(N)).astype(np.int64))
     pq.write_table(pa.table({"x": x, "y": y}), tmp_path / "n.parquet", row_group_size=CHUNK)
     path = str(tmp_path / "n.parquet")
-    expected = _message(lambda: read_points(path))
+    expected = _message(read_points, path)
     assert "row 27, column 0 ('x') is null" in expected
-    assert _message(lambda: list(open_points(path).blocks())) == expected
-    expected_y = _message(lambda: read_points(path, columns="y"))
+    assert _message(list, open_points(path).blocks()) == expected
+    expected_y = _message(read_points, path, columns="y")
     assert "row 33, column 0 ('y')" in expected_y
-    assert _message(lambda: open_points(path, columns="y").read(30, 40)) == expected_y
+    assert _message(open_points(path, columns="y").read, 30, 40) == expected_y
 
 
 def test_text_faults_in_later_blocks_are_named_like_read_points(tmp_path: Path) -> None:
@@ -194,12 +195,12 @@ def test_text_faults_in_later_blocks_are_named_like_read_points(tmp_path: Path) 
         lines[28] = line
         path = tmp_path / f"{bad}.csv"
         path.write_text("\n".join(lines) + "\n")
-        expected = _message(lambda: read_points(path))
+        expected = _message(read_points, path)
         assert "row 28 (line 29)" in expected
         src = open_points(path)
         blocks = src.blocks(CHUNK)
         assert [next(blocks)[0], next(blocks)[0]] == [0, CHUNK]
-        assert _message(lambda: next(blocks)) == expected
+        assert _message(next, blocks) == expected
 
 
 def test_text_rows_of_another_width_from_one_block_on(tmp_path: Path) -> None:
@@ -207,9 +208,9 @@ def test_text_rows_of_another_width_from_one_block_on(tmp_path: Path) -> None:
     lines = ["1,2,3"] * 20 + ["1,2,3,4"] * 20
     (tmp_path / "w.csv").write_text("\n".join(lines) + "\n")
     path = tmp_path / "w.csv"
-    expected = _message(lambda: read_points(path))
+    expected = _message(read_points, path)
     assert "row 20 (line 21) has 4 columns, the rows before it have 3" in expected
-    assert _message(lambda: list(open_points(path).blocks(CHUNK))) == expected
+    assert _message(list, open_points(path).blocks(CHUNK)) == expected
 
 
 def test_open_refuses_what_read_points_refuses(tmp_path: Path) -> None:
@@ -231,7 +232,7 @@ def test_open_refuses_what_read_points_refuses(tmp_path: Path) -> None:
         (hpath, {"columns": ["x"]}),
     ]
     for path, kw in cases:
-        assert _message(lambda: open_points(path, **kw)) == _message(lambda: read_points(path, **kw))
+        assert _message(open_points, path, **kw) == _message(read_points, path, **kw)
 
 
 def test_pickle_round_trip_reads_the_same(tmp_path: Path, fmt: str) -> None:
@@ -239,7 +240,7 @@ def test_pickle_round_trip_reads_the_same(tmp_path: Path, fmt: str) -> None:
     src = open_points(path, **kw)
     before = src.read(3, 29)  # a handle is open now; it must not travel
     data = pickle.dumps(src)
-    assert len(data) < 4096 if fmt != "npz" else True
+    assert len(data) < 4096  # metadata only: no data, no open file
     copy = pickle.loads(data)
     assert (copy.name, copy.n_rows, copy.dim, copy.block_rows) == (src.name, src.n_rows, src.dim, src.block_rows)
     assert _same_bits(copy.read(3, 29), before)
@@ -278,7 +279,7 @@ def test_memory_urls_and_storage_options(tmp_path: Path) -> None:
     src = open_points("memory://lazy-test/p.npy", storage_options={})
     assert _same_bits(src.read(4, 44), a[4:44])
     assert _same_bits(pickle.loads(pickle.dumps(src)).read(0, N), a)
-    path, kw = _write_zarr2(tmp_path, a)
+    path, _ = _write_zarr2(tmp_path, a)
     url = "file://" + path
     assert _same_bits(np.concatenate([b for _, b in open_points(url, storage_options={"auto_mkdir": False}).blocks()]), a)
 
@@ -299,8 +300,8 @@ def test_array_source_matches_validate_points() -> None:
     assert ArraySource.of(b, block_rows=CHUNK).token() != src.token()
     b[21, 0] = np.nan
     bad = ArraySource.of(b, block_rows=CHUNK)
-    assert _message(lambda: list(bad.blocks())) == _message(lambda: validate_points(b))
-    assert _message(lambda: ArraySource.of(np.zeros(3))) == _message(lambda: validate_points(np.zeros(3)))
+    assert _message(list, bad.blocks()) == _message(validate_points, b)
+    assert _message(ArraySource.of, np.zeros(3)) == _message(validate_points, np.zeros(3))
 
 
 def _peak_while_iterating(src: PointSource) -> tuple[int, int]:
@@ -316,9 +317,13 @@ def _peak_while_iterating(src: PointSource) -> tuple[int, int]:
     return peak, total_rows
 
 
-@pytest.mark.parametrize("kind", ["npy", "zarr"])
-def test_iterating_a_large_file_keeps_only_a_few_blocks(tmp_path: Path, kind: str) -> None:
-    rows, block_rows = 1 << 23, 1 << 20  # 8 Mi points in R^3: 201 MB of float64
+# A memory-mapped npy block costs its own copy only; a Zarr read holds the compressed
+# chunk, the decoded chunk and the output at once, plus the codec's working buffers.
+@pytest.mark.parametrize("kind,block_rows,max_blocks", [("npy", 1 << 20, 2), ("zarr", 1 << 18, 6)])
+def test_iterating_a_large_file_keeps_only_a_few_blocks(
+    tmp_path: Path, kind: str, block_rows: int, max_blocks: int
+) -> None:
+    rows = 1 << 23  # 8 Mi points in R^3: 201 MB of float64, 8 or 32 blocks
     a = np.random.default_rng(0).standard_normal((rows, M))
     if kind == "npy":
         path = str(tmp_path / "big.npy")
@@ -332,4 +337,6 @@ def test_iterating_a_large_file_keeps_only_a_few_blocks(tmp_path: Path, kind: st
     peak, total_rows = _peak_while_iterating(src)
     block_bytes = block_rows * M * 8
     assert total_rows == rows
-    assert peak < 4 * block_bytes, f"peak {peak / 2**20:.0f} MiB for blocks of {block_bytes / 2**20:.0f} MiB"
+    assert peak < max_blocks * block_bytes, (
+        f"peak {peak / 2**20:.1f} MiB for blocks of {block_bytes / 2**20:.1f} MiB"
+    )

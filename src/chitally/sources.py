@@ -232,26 +232,20 @@ def _read_npy(src: _Source, key: str | None) -> np.ndarray:
         raise InputError(f"{src.display}: cannot read as .npy: {_one_line(exc)}") from exc
 
 
-def _read_npz(src: _Source, key: str | None) -> tuple[np.ndarray, str]:
-    try:
-        with src.open("rb") as f, np.load(f, allow_pickle=False) as z:
-            names = list(z.files)
-            if key is None:
-                if len(names) != 1:
-                    raise InputError(
-                        f"{src.display}: holds {len(names)} arrays ({_listing(names)}); "
-                        f"choose one with key"
-                    )
-                key = names[0]
-            elif key not in names:
-                raise InputError(
-                    f"{src.display}: no array {key!r}; arrays: {_listing(names)}"
-                )
-            return z[key], f"{src.display}[{key!r}]"
-    except InputError:
-        raise
-    except (OSError, ValueError, EOFError) as exc:
-        raise InputError(f"{src.display}: cannot read as .npz: {_one_line(exc)}") from exc
+def _npz_key(src: _Source, names: list[str], key: str | None) -> tuple[str, str]:
+    """The array of an ``.npz`` archive that ``key`` chooses, and how messages name it."""
+    if key is None:
+        if len(names) != 1:
+            raise InputError(
+                f"{src.display}: holds {len(names)} arrays ({_listing(names)}); "
+                f"choose one with key"
+            )
+        key = names[0]
+    elif key not in names:
+        raise InputError(
+            f"{src.display}: no array {key!r}; arrays: {_listing(names)}"
+        )
+    return key, f"{src.display}[{key!r}]"
 
 
 # ---- text tables
@@ -641,11 +635,6 @@ def _zarr_rows(node: Any, where: str, start: int, stop: int) -> np.ndarray:
         raise InputError(f"{where}: cannot read the Zarr array: {_one_line(exc)}") from exc
 
 
-def _read_zarr(src: _Source, key: str | None) -> tuple[np.ndarray, str]:
-    node, where = _zarr_array(src, key)
-    return _zarr_rows(node, where, 0, node.shape[0]), where
-
-
 # ---- HDF5
 
 
@@ -661,12 +650,6 @@ def _hdf5_file(src: _Source) -> Iterator[Any]:
         raise
     except (OSError, ValueError, KeyError, TypeError) as exc:
         raise InputError(f"{src.display}: cannot read as HDF5: {_one_line(exc)}") from exc
-
-
-def _read_hdf5(src: _Source, key: str | None) -> tuple[np.ndarray, str]:
-    with _hdf5_file(src) as h5:
-        node, where = _hdf5_dataset(h5, src, key)
-        return np.asarray(node[()]), where
 
 
 def _hdf5_dataset(h5: Any, src: _Source, key: str | None) -> tuple[Any, str]:
@@ -702,17 +685,6 @@ def _pandas_index_columns(schema: Any) -> set[str]:
     # row label, not a coordinate.
     meta = schema.pandas_metadata or {}
     return {c for c in meta.get("index_columns", []) if isinstance(c, str)}
-
-
-def _read_parquet(
-    src: _Source,
-    key: str | None,
-    columns: tuple[int | str, ...] | None,
-    index_col: int | str | None,
-) -> tuple[np.ndarray, str]:
-    with _parquet_file(src, key, columns, index_col) as (pf, names, where):
-        table = pf.read(columns=list(dict.fromkeys(names)))
-        return _parquet_points(table, names, where), where
 
 
 @contextlib.contextmanager
@@ -942,21 +914,11 @@ def read_points(
     >>> read_points("memory://doc-example.csv", index_col=0).tolist()
     [[0.5, 1.5], [2.5, 3.5]]
     """
-    src, chosen, drop = _resolve(source, columns, index_col, storage_options)
-    where = src.display
-    if src.fmt == "npy":
-        data = _read_npy(src, key)
-    elif src.fmt == "npz":
-        data, where = _read_npz(src, key)
-    elif src.fmt == "text":
-        data, where = _read_text(src, key, chosen, drop)
-    elif src.fmt == "zarr":
-        data, where = _read_zarr(src, key)
-    elif src.fmt == "hdf5":
-        data, where = _read_hdf5(src, key)
-    else:
-        data, where = _read_parquet(src, key, chosen, drop)
-    return validate_points(data, where=where)
+    # One implementation of every format: the lazy source, read whole. Imported here
+    # because chitally.lazy builds on this module's helpers.
+    from .lazy import _open
+
+    return _open(source, key, columns, index_col, storage_options, count_rows=False).read_all()
 
 
 def describe_source(
