@@ -130,6 +130,10 @@ class _Lazy:
     block_rows: int
     random_access: bool
 
+    # True where _raw may return a view of memory that outlives the call (a file mapping,
+    # a cached or wrapped array): read() then copies, so no block aliases the input.
+    _shared_raw = False
+
     def _raw(self, start: int, stop: int) -> np.ndarray:
         """Rows [start, stop) of the chosen data in its own real dtype, unchecked."""
         raise NotImplementedError
@@ -158,7 +162,7 @@ class _Lazy:
         """
         start, stop = _check_range(self.name, self.n_rows, start, stop)
         block = _checked_values(self._raw(start, stop), self.name, start)
-        if not (block.flags.owndata and block.flags.writeable):
+        if not block.flags.writeable or (self._shared_raw and not block.flags.owndata):
             block = block.copy()
         return block
 
@@ -270,6 +274,7 @@ class _NumpyFile(_FileSource):
     byte ranges of a URL, or (``layout`` None) the whole array read on first use."""
 
     layout: _Layout | None = None
+    _shared_raw = True
 
     def _whole(self) -> np.ndarray:
         raise NotImplementedError
@@ -364,7 +369,7 @@ def _open_npy(src: _s._Source, key: str | None) -> NpySource:
             data = np.asarray(_s._read_npy(src, None))  # numpy's message, or an odd but valid file
     shape, dtype = (data.shape, data.dtype) if layout is None else (layout.shape, layout.dtype)
     _check_shape_and_dtype(shape, dtype, name)
-    source = NpySource(name, shape[0], shape[1], DEFAULT_BLOCK_ROWS, True, src, None, str(dtype), layout)
+    source = NpySource(name, shape[0], shape[1], DEFAULT_BLOCK_ROWS, True, src, None, dtype.str, layout)
     if data is not None:
         object.__setattr__(source, "_data", data)  # already open here: keep it in this process
     return source
@@ -395,7 +400,7 @@ def _open_npz(src: _s._Source, key: str | None) -> NpzSource:
     data = _read_npz_member(src, key) if layout is None else None
     shape, dtype = (data.shape, data.dtype) if data is not None else (layout.shape, layout.dtype)  # type: ignore[union-attr]
     _check_shape_and_dtype(shape, dtype, name)
-    source = NpzSource(name, shape[0], shape[1], DEFAULT_BLOCK_ROWS, True, src, key, str(dtype),
+    source = NpzSource(name, shape[0], shape[1], DEFAULT_BLOCK_ROWS, True, src, key, dtype.str,
                        layout, layout is not None)
     if data is not None:
         object.__setattr__(source, "_data", data)
@@ -429,7 +434,7 @@ class ZarrSource(_FileSource):
 def _open_zarr(src: _s._Source, key: str | None) -> ZarrSource:
     node, name = _s._zarr_array(src, key)
     rows = int((getattr(node, "shards", None) or node.chunks)[0])
-    return ZarrSource(name, node.shape[0], node.shape[1], max(rows, 1), True, src, key, str(np.dtype(node.dtype)))
+    return ZarrSource(name, node.shape[0], node.shape[1], max(rows, 1), True, src, key, np.dtype(node.dtype).str)
 
 
 @dataclass(frozen=True)
@@ -459,7 +464,7 @@ def _open_hdf5(src: _s._Source, key: str | None) -> Hdf5Source:
     with _s._hdf5_file(src) as h5:
         node, name = _s._hdf5_dataset(h5, src, key)
         rows = int(node.chunks[0]) if node.chunks else DEFAULT_BLOCK_ROWS
-        return Hdf5Source(name, node.shape[0], node.shape[1], max(rows, 1), True, src, key, str(node.dtype))
+        return Hdf5Source(name, node.shape[0], node.shape[1], max(rows, 1), True, src, key, node.dtype.str)
 
 
 # --------------------------------------------------------------------------- Parquet
@@ -557,37 +562,42 @@ class TextSource(_FileSource):
             raise ValueError(f"rows of {data.shape[1]} columns, the first have {self.dim}")
         return _checked_values(data, self.name, first_row)
 
+    def _chunks(self, table: Any, step: int, start: int, stop: int) -> Iterator[tuple[int, list[str]]]:
+        """Lines of data rows [start, stop) in lists of at most ``step``; rows before
+        ``start`` are counted, not parsed. Checks the row count on a full pass."""
+        row, first, chunk = 0, start, []
+        for line in table.lines:
+            if not _s._content(line).strip():
+                continue  # blank and comment lines are no rows
+            if row >= start:
+                chunk.append(line)
+                if len(chunk) == step:
+                    yield first, chunk
+                    first, chunk = first + step, []
+            row += 1
+            if row >= stop:
+                break
+        if chunk:
+            yield first, chunk
+        if row < stop:
+            raise InputError(f"{self.name}: now has {row} data rows, not {self.n_rows}; the file changed")
+
     def blocks(self, rows: int | None = None) -> Iterator[tuple[int, np.ndarray]]:
         """Yield ``(first row, block)`` in one sequential pass, ``rows`` rows each."""
         step = _check_rows(self.name, rows, self.block_rows)
-        first = 0
         with self._table() as table:
-            chunk: list[str] = []
-            for line in table.lines:
-                if not _s._content(line).strip():
-                    continue  # blank and comment lines are no rows
-                chunk.append(line)
-                if len(chunk) == step:
-                    yield first, self._parse(table, chunk, first)
-                    first += len(chunk)
-                    chunk = []
-            if chunk:
+            for first, chunk in self._chunks(table, step, 0, self.n_rows):
                 yield first, self._parse(table, chunk, first)
-                first += len(chunk)
-        if first != self.n_rows:
-            raise InputError(f"{self.name}: now has {first} data rows, not {self.n_rows}; the file changed")
 
     def read(self, start: int, stop: int) -> np.ndarray:
-        """Rows ``[start, stop)``, validated; scans the file from its beginning."""
+        """Rows ``[start, stop)``, validated; counts lines from the top of the file to
+        reach ``start``, parsing only the rows asked for."""
         start, stop = _check_range(self.name, self.n_rows, start, stop)
         parts: list[np.ndarray] = [np.empty((0, self.dim))]
         if stop > start:
-            for first, block in self.blocks():
-                last = first + len(block)
-                if last > start:
-                    parts.append(block[max(start - first, 0) : stop - first])
-                if last >= stop:
-                    break
+            with self._table() as table:
+                for first, chunk in self._chunks(table, self.block_rows, start, stop):
+                    parts.append(self._parse(table, chunk, first))
         return np.concatenate(parts)
 
     def read_all(self) -> np.ndarray:
@@ -636,6 +646,7 @@ class ArraySource(_Lazy):
     """
 
     array: np.ndarray = field(repr=False)
+    _shared_raw = True
 
     def __init__(self, array: Any, *, name: str = "points", block_rows: int = DEFAULT_BLOCK_ROWS) -> None:
         try:
@@ -661,7 +672,7 @@ class ArraySource(_Lazy):
             return h.hexdigest()
 
         return json.dumps(
-            {"format": "array", "shape": [self.n_rows, self.dim], "dtype": str(self.array.dtype),
+            {"format": "array", "shape": [self.n_rows, self.dim], "dtype": self.array.dtype.str,
              "blake2b": self._cached("_digest", digest)},
             sort_keys=True,
         )

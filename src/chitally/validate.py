@@ -142,7 +142,8 @@ def _inexact_message(value: Any) -> str:
 
 
 def _check_magnitude(out: np.ndarray, where: str, first_row: int = 0) -> None:
-    hit = _first_bad(out, lambda b: np.abs(b) > MAX_COORDINATE)
+    # Two comparisons instead of abs(): no float temporary as large as the slice.
+    hit = _first_bad(out, lambda b: (b > MAX_COORDINATE) | (b < -MAX_COORDINATE))
     if hit is not None:
         row, col = hit
         raise InputError(
