@@ -23,7 +23,13 @@ import pyarrow.parquet as pq
 import pytest
 import zarr
 
-from chitally.lazy import DEFAULT_BLOCK_ROWS, ArraySource, PointSource, content_digest, open_points
+from chitally.lazy import (
+    DEFAULT_BLOCK_ROWS,
+    ArraySource,
+    PointSource,
+    content_digest,
+    open_points,
+)
 from chitally.sources import InputError, read_points
 
 N = 1000

@@ -381,8 +381,8 @@ def _open_npz(src: _s._Source, key: str | None) -> NpzSource:
         with src.open("rb") as f:
             archive = zipfile.ZipFile(f)
             members = archive.namelist()
-            # numpy.load names a member "a.npy" "a", and a member's full name also works.
-            names = [m[:-4] if m.endswith(".npy") else m for m in members]
+            # numpy.load calls a member "a.npy" "a" (and takes its full name too).
+            names = [m.removesuffix(".npy") for m in members]
             key, name = _s._npz_key(src, names, key)
             info = archive.getinfo(key if key in members else key + ".npy")
             if info.compress_type == zipfile.ZIP_STORED and not info.flag_bits & 1:
