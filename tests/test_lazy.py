@@ -464,6 +464,14 @@ class TestPickle:
         copy = pickle.loads(pickle.dumps(source))
         assert same_bits(copy.read(250, 750), DATA[250:750])
 
+    def test_storage_options_travel_with_the_source(self, tmp_path: Path, memory_dir: str) -> None:
+        args = as_url(tmp_path, memory_dir, w_npz_stored(tmp_path, DATA))
+        options = {"skip_instance_cache": True}  # accepted by every fsspec filesystem
+        source = open_points(**args, storage_options=options)
+        copy = pickle.loads(pickle.dumps(source))
+        assert copy.src.options == options
+        assert same_bits(copy.read(400, 600), DATA[400:600])
+
     def test_in_a_subprocess(self, tmp_path: Path) -> None:
         writers = [w_npy, w_npz_stored, w_zarr_v3, w_hdf5_chunked, w_parquet_columns, w_csv_pandas_columns]
         sources = []
