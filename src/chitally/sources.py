@@ -14,13 +14,14 @@ and are re-exported here, where callers have always found them.
 
 from __future__ import annotations
 
+import contextlib
 import importlib
 import itertools
 import os
 import re
 import warnings
 from collections.abc import Iterator, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from types import ModuleType
 from typing import Any
 from urllib.parse import urlsplit, urlunsplit
@@ -110,6 +111,12 @@ class _Source:
     is_dir: bool
     fmt: str | None
     compression: str | None
+    # fsspec options for URLs (credentials, endpoints); never shown in messages.
+    options: dict[str, Any] = field(default_factory=dict, compare=False, repr=False)
+
+    def open(self, mode: str = "rb", **kwargs: Any) -> Any:
+        """An fsspec file for this source, with its storage options."""
+        return fsspec.open(self.text, mode, **{**self.options, **kwargs})
 
 
 def _is_url(text: str) -> bool:
@@ -171,13 +178,14 @@ def _coerce_source(source: Any) -> str:
     raise InputError(f"source must be a path or URL string, got {_short(source)} ({type(source).__name__})")
 
 
-def _locate(source: Any) -> _Source:
+def _locate(source: Any, storage_options: dict[str, Any] | None = None) -> _Source:
     text = _coerce_source(source)
     is_url = _is_url(text)
     display = _display(text)
+    options = dict(storage_options or {})
     if is_url:
         try:
-            fs, path = fsspec.core.url_to_fs(text)
+            fs, path = fsspec.core.url_to_fs(text, **options)
         except (ImportError, ValueError) as exc:
             raise InputError(f"{display}: cannot open this URL: {_one_line(exc)}") from exc
         try:
@@ -196,7 +204,7 @@ def _locate(source: Any) -> _Source:
         fmt = "zarr"
     if fmt is None:
         raise InputError(f"{display}: unknown file type; supported: {_SUPPORTED_TEXT}")
-    return _Source(text, display, is_url, is_dir, fmt, compression)
+    return _Source(text, display, is_url, is_dir, fmt, compression, options)
 
 
 # --------------------------------------------------------------------------- readers
@@ -218,32 +226,26 @@ def _read_npy(src: _Source, key: str | None) -> np.ndarray:
                 # Zero-length arrays cannot be mapped; read them normally.
                 a = np.load(src.text, allow_pickle=False)
             return a
-        with fsspec.open(src.text, "rb") as f:
+        with src.open("rb") as f:
             return np.load(f, allow_pickle=False)
     except (OSError, ValueError, EOFError) as exc:
         raise InputError(f"{src.display}: cannot read as .npy: {_one_line(exc)}") from exc
 
 
-def _read_npz(src: _Source, key: str | None) -> tuple[np.ndarray, str]:
-    try:
-        with fsspec.open(src.text, "rb") as f, np.load(f, allow_pickle=False) as z:
-            names = list(z.files)
-            if key is None:
-                if len(names) != 1:
-                    raise InputError(
-                        f"{src.display}: holds {len(names)} arrays ({_listing(names)}); "
-                        f"choose one with key"
-                    )
-                key = names[0]
-            elif key not in names:
-                raise InputError(
-                    f"{src.display}: no array {key!r}; arrays: {_listing(names)}"
-                )
-            return z[key], f"{src.display}[{key!r}]"
-    except InputError:
-        raise
-    except (OSError, ValueError, EOFError) as exc:
-        raise InputError(f"{src.display}: cannot read as .npz: {_one_line(exc)}") from exc
+def _npz_key(src: _Source, names: list[str], key: str | None) -> tuple[str, str]:
+    """The array of an ``.npz`` archive that ``key`` chooses, and how messages name it."""
+    if key is None:
+        if len(names) != 1:
+            raise InputError(
+                f"{src.display}: holds {len(names)} arrays ({_listing(names)}); "
+                f"choose one with key"
+            )
+        key = names[0]
+    elif key not in names:
+        raise InputError(
+            f"{src.display}: no array {key!r}; arrays: {_listing(names)}"
+        )
+    return key, f"{src.display}[{key!r}]"
 
 
 # ---- text tables
@@ -349,7 +351,7 @@ def _sniff(lines: Iterator[str], buffered: list[str]) -> _TextLayout | None:
 
 def _open_text(src: _Source) -> Any:
     # utf-8-sig drops the byte-order mark that spreadsheet exports put first.
-    return fsspec.open(src.text, "rt", compression=src.compression, encoding="utf-8-sig")
+    return src.open("rt", compression=src.compression, encoding="utf-8-sig")
 
 
 def _locate_text_error(src: _Source, layout: _TextLayout, usecols: list[int] | None) -> str | None:
@@ -503,16 +505,34 @@ def _text_selection(
     return usecols, f"{src.display}[{', '.join(labels)}]"
 
 
-def _read_text(
+@dataclass(frozen=True)
+class _TextTable:
+    layout: _TextLayout
+    usecols: list[int] | None  # file columns to parse; None: all
+    where: str  # how messages name the selection
+    lines: Iterator[str]  # every line after the header (blank and comment lines too)
+
+    @property
+    def dim(self) -> int:
+        return self.layout.width if self.usecols is None else len(self.usecols)
+
+
+@contextlib.contextmanager
+def _text_table(
     src: _Source,
     key: str | None,
     columns: tuple[int | str, ...] | None,
     index_col: int | str | None,
-) -> tuple[np.ndarray, str]:
+) -> Iterator[_TextTable]:
+    """Open a text table, settle its layout and columns, and word every parse failure.
+
+    A ``ValueError`` raised by the caller's parsing inside the block (numpy's loadtxt)
+    is turned into a message naming the first bad row of the whole file, so whole-file
+    and block-wise readers report a fault identically.
+    """
     _reject_key(src, key, "a text table holds one array")
     layout: _TextLayout | None = None
     usecols: list[int] | None = None
-    where = src.display
     try:
         with _open_text(src) as f:
             buffered: list[str] = []
@@ -528,17 +548,7 @@ def _read_text(
             usecols, where = _text_selection(src, layout, columns, index_col)
             if layout.header_line is not None:
                 del buffered[layout.header_line]
-            with warnings.catch_warnings():
-                # An input with a header only is reported below, not warned about.
-                warnings.simplefilter("ignore", UserWarning)
-                data = np.loadtxt(
-                    itertools.chain(buffered, lines),
-                    dtype=np.float64,
-                    delimiter=layout.delimiter,
-                    comments="#",
-                    ndmin=2,
-                    usecols=usecols,
-                )
+            yield _TextTable(layout, usecols, where, itertools.chain(buffered, lines))
     except InputError:
         raise
     except ValueError as exc:
@@ -548,19 +558,45 @@ def _read_text(
         raise InputError(f"{src.display}: {located or _one_line(exc)}") from exc
     except (OSError, EOFError) as exc:
         raise InputError(f"{src.display}: cannot read: {_one_line(exc)}") from exc
+
+
+def _parse_text_lines(table: _TextTable, lines: Iterator[str] | list[str]) -> np.ndarray:
+    """Parse data lines of ``table`` as float64, shape (k, table.dim); raises ValueError."""
+    with warnings.catch_warnings():
+        # An input with a header only is reported by the caller, not warned about.
+        warnings.simplefilter("ignore", UserWarning)
+        return np.loadtxt(
+            lines,
+            dtype=np.float64,
+            delimiter=table.layout.delimiter,
+            comments="#",
+            ndmin=2,
+            usecols=table.usecols,
+        )
+
+
+def _read_text(
+    src: _Source,
+    key: str | None,
+    columns: tuple[int | str, ...] | None,
+    index_col: int | str | None,
+) -> tuple[np.ndarray, str]:
+    with _text_table(src, key, columns, index_col) as table:
+        data = _parse_text_lines(table, table.lines)
     if data.shape[0] == 0:
         raise InputError(f"{src.display}: holds no data rows")
-    return data, where
+    return data, table.where
 
 
 # ---- Zarr
 
 
-def _read_zarr(src: _Source, key: str | None) -> tuple[np.ndarray, str]:
+def _zarr_array(src: _Source, key: str | None) -> tuple[Any, str]:
+    """The Zarr array chosen by ``key`` (shape and dtype checked, no data read) and its name."""
     import zarr
 
     try:
-        store = fsspec.get_mapper(src.text) if src.is_url else src.text
+        store = fsspec.get_mapper(src.text, **src.options) if src.is_url else src.text
         node = zarr.open(store=store, mode="r")
     except (OSError, ValueError, KeyError, TypeError) as exc:
         raise InputError(f"{src.display}: no Zarr array or group here: {_one_line(exc)}") from exc
@@ -589,8 +625,12 @@ def _read_zarr(src: _Source, key: str | None) -> tuple[np.ndarray, str]:
     else:
         _reject_key(src, key, "it is a single Zarr array")
     _check_shape_and_dtype(node.shape, np.dtype(node.dtype), where)
+    return node, where
+
+
+def _zarr_rows(node: Any, where: str, start: int, stop: int) -> np.ndarray:
     try:
-        return np.asarray(node[...]), where
+        return np.asarray(node[start:stop])
     except (OSError, ValueError, KeyError) as exc:
         raise InputError(f"{where}: cannot read the Zarr array: {_one_line(exc)}") from exc
 
@@ -598,21 +638,24 @@ def _read_zarr(src: _Source, key: str | None) -> tuple[np.ndarray, str]:
 # ---- HDF5
 
 
-def _read_hdf5(src: _Source, key: str | None) -> tuple[np.ndarray, str]:
+@contextlib.contextmanager
+def _hdf5_file(src: _Source) -> Iterator[Any]:
+    """The open h5py file; any HDF5 failure inside the block is worded as one line."""
     h5py = _require("h5py", "hdf5", "HDF5", src.display)
     try:
-        if src.is_url:
-            with fsspec.open(src.text, "rb") as f, h5py.File(f, "r") as h5:
-                return _read_hdf5_dataset(h5py, h5, src, key)
-        with h5py.File(src.text, "r") as h5:
-            return _read_hdf5_dataset(h5py, h5, src, key)
+        with contextlib.ExitStack() as stack:
+            target = stack.enter_context(src.open("rb")) if src.is_url else src.text
+            yield stack.enter_context(h5py.File(target, "r"))
     except InputError:
         raise
     except (OSError, ValueError, KeyError, TypeError) as exc:
         raise InputError(f"{src.display}: cannot read as HDF5: {_one_line(exc)}") from exc
 
 
-def _read_hdf5_dataset(h5py: ModuleType, h5: Any, src: _Source, key: str | None) -> tuple[np.ndarray, str]:
+def _hdf5_dataset(h5: Any, src: _Source, key: str | None) -> tuple[Any, str]:
+    """The dataset chosen by ``key`` (shape and dtype checked, no data read) and its name."""
+    import h5py
+
     datasets: list[str] = []
     h5.visititems(lambda name, obj: datasets.append(name) if isinstance(obj, h5py.Dataset) else None)
     if key is None:
@@ -631,7 +674,7 @@ def _read_hdf5_dataset(h5py: ModuleType, h5: Any, src: _Source, key: str | None)
         )
     where = f"{src.display}[{key!r}]"
     _check_shape_and_dtype(node.shape, node.dtype, where)
-    return np.asarray(node[()]), where
+    return node, where
 
 
 # ---- Parquet
@@ -644,21 +687,25 @@ def _pandas_index_columns(schema: Any) -> set[str]:
     return {c for c in meta.get("index_columns", []) if isinstance(c, str)}
 
 
-def _read_parquet(
+@contextlib.contextmanager
+def _parquet_file(
     src: _Source,
     key: str | None,
     columns: tuple[int | str, ...] | None,
     index_col: int | str | None,
-) -> tuple[np.ndarray, str]:
+) -> Iterator[tuple[Any, list[str], str]]:
+    """The open ``pyarrow.parquet.ParquetFile``, the chosen column names and how messages
+    name them; Arrow failures inside the block become one line."""
     pa = _require("pyarrow", "parquet", "Parquet", src.display)
     pq = _require("pyarrow.parquet", "parquet", "Parquet", src.display)
     if key is not None and columns is not None:
         raise InputError(f"{src.display}: key and columns both choose Parquet columns; give only one")
     try:
-        if src.is_url:
-            with fsspec.open(src.text, "rb") as f:
-                return _read_parquet_columns(pa, pq.ParquetFile(f), src, key, columns, index_col)
-        return _read_parquet_columns(pa, pq.ParquetFile(src.text), src, key, columns, index_col)
+        with contextlib.ExitStack() as stack:
+            target = stack.enter_context(src.open("rb")) if src.is_url else src.text
+            pf = pq.ParquetFile(target)
+            names, where = _parquet_selection(pf, src, key, columns, index_col)
+            yield pf, names, where
     except InputError:
         raise
     except (OSError, ValueError, pa.ArrowException) as exc:
@@ -678,14 +725,16 @@ def _parquet_column(src: _Source, all_names: list[str], column: int | str) -> st
     return column
 
 
-def _read_parquet_columns(
-    pa: ModuleType,
+def _parquet_selection(
     pf: Any,
     src: _Source,
     key: str | None,
     columns: tuple[int | str, ...] | None,
     index_col: int | str | None,
-) -> tuple[np.ndarray, str]:
+) -> tuple[list[str], str]:
+    """The Parquet columns to read, in point-column order, and how messages name them."""
+    import pyarrow as pa
+
     schema = pf.schema_arrow
     all_names = list(schema.names)
 
@@ -739,24 +788,49 @@ def _read_parquet_columns(
                     f"not an integer or float type"
                 )
         where = f"{src.display}[{', '.join(names)}]"
-    table = pf.read(columns=list(dict.fromkeys(names)))
+    return names, where
+
+
+def _parquet_points(table: Any, names: list[str], where: str, first_row: int = 0) -> np.ndarray:
+    """Columns ``names`` of an Arrow table as float64 (n, len(names)); nulls and integers
+    float64 would round are refused, naming rows of the whole file from ``first_row``."""
     out = np.empty((table.num_rows, len(names)), dtype=np.float64)
     for j, name in enumerate(names):
         column = table.column(name)
         if column.null_count:
             row = int(np.argmax(column.is_null().to_numpy(zero_copy_only=False)))
-            raise InputError(f"{where}: row {row}, column {j} ({name!r}) is null")
+            raise InputError(f"{where}: row {first_row + row}, column {j} ({name!r}) is null")
         values = column.to_numpy()
         if values.dtype.kind in "iu":
             hit = _first_inexact_integer(values.reshape(-1, 1))
             if hit is not None:
                 row = hit[0]
-                raise InputError(f"{where}: row {row}, column {j} ({name!r}) {_inexact_message(values[row])}")
+                raise InputError(
+                    f"{where}: row {first_row + row}, column {j} ({name!r}) {_inexact_message(values[row])}"
+                )
         out[:, j] = values
-    return out, where
+    return out
 
 
 # --------------------------------------------------------------------------- public
+
+
+def _resolve(
+    source: Any,
+    columns: Any,
+    index_col: Any,
+    storage_options: dict[str, Any] | None,
+) -> tuple[_Source, tuple[int | str, ...] | None, int | str | None]:
+    """Locate a source and check that the column choices suit its format."""
+    chosen = validate_columns(columns, name="columns")
+    drop = validate_column(index_col, name="index_col")
+    src = _locate(source, storage_options)
+    if (chosen is not None or drop is not None) and src.fmt not in ("text", "parquet"):
+        raise InputError(
+            f"{src.display}: columns and index_col choose columns of text tables and Parquet "
+            f"files; a {_FORMAT_LABELS[src.fmt or '']} input holds arrays (choose one with key)"
+        )
+    return src, chosen, drop
 
 
 def read_points(
@@ -765,6 +839,7 @@ def read_points(
     key: str | None = None,
     columns: str | Sequence[int | str] | None = None,
     index_col: int | str | None = None,
+    storage_options: dict[str, Any] | None = None,
 ) -> np.ndarray:
     """Read a point set and validate it.
 
@@ -790,6 +865,8 @@ def read_points(
     index_col : str or int, optional
         Text tables and Parquet only: a column (name or 0-based number) to leave out,
         typically a row index written by pandas. It may not also be in ``columns``.
+    storage_options : dict, optional
+        fsspec options for a URL (credentials, endpoint); ignored for local paths.
 
     Returns
     -------
@@ -837,28 +914,11 @@ def read_points(
     >>> read_points("memory://doc-example.csv", index_col=0).tolist()
     [[0.5, 1.5], [2.5, 3.5]]
     """
-    chosen = validate_columns(columns, name="columns")
-    drop = validate_column(index_col, name="index_col")
-    src = _locate(source)
-    where = src.display
-    if (chosen is not None or drop is not None) and src.fmt not in ("text", "parquet"):
-        raise InputError(
-            f"{src.display}: columns and index_col choose columns of text tables and Parquet "
-            f"files; a {_FORMAT_LABELS[src.fmt or '']} input holds arrays (choose one with key)"
-        )
-    if src.fmt == "npy":
-        data = _read_npy(src, key)
-    elif src.fmt == "npz":
-        data, where = _read_npz(src, key)
-    elif src.fmt == "text":
-        data, where = _read_text(src, key, chosen, drop)
-    elif src.fmt == "zarr":
-        data, where = _read_zarr(src, key)
-    elif src.fmt == "hdf5":
-        data, where = _read_hdf5(src, key)
-    else:
-        data, where = _read_parquet(src, key, chosen, drop)
-    return validate_points(data, where=where)
+    # One implementation of every format: the lazy source, read whole. Imported here
+    # because chitally.lazy builds on this module's helpers.
+    from .lazy import _open
+
+    return _open(source, key, columns, index_col, storage_options, count_rows=False).read_all()
 
 
 def describe_source(

@@ -141,12 +141,13 @@ def _inexact_message(value: Any) -> str:
     return f"holds the integer {int(value)}, beyond 2**53 in magnitude, which float64 cannot hold exactly"
 
 
-def _check_magnitude(out: np.ndarray, where: str) -> None:
-    hit = _first_bad(out, lambda b: np.abs(b) > MAX_COORDINATE)
+def _check_magnitude(out: np.ndarray, where: str, first_row: int = 0) -> None:
+    # Two comparisons instead of abs(): no float temporary as large as the slice.
+    hit = _first_bad(out, lambda b: (b > MAX_COORDINATE) | (b < -MAX_COORDINATE))
     if hit is not None:
         row, col = hit
         raise InputError(
-            f"{where}: row {row}, column {col} is {float(out[row, col])!r}; coordinates must lie "
+            f"{where}: row {first_row + row}, column {col} is {float(out[row, col])!r}; coordinates must lie "
             f"within +-{MAX_COORDINATE:g} so that squared distances do not overflow (rescale the input)"
         )
 
@@ -187,11 +188,23 @@ def validate_points(points: Any, *, where: str = "points") -> np.ndarray:
     except (ValueError, TypeError) as exc:
         raise InputError(f"{where}: not an (n, m) array of numbers: {_one_line(exc)}") from exc
     _check_shape_and_dtype(a.shape, a.dtype, where)
+    return _checked_values(a, where)
+
+
+def _checked_values(a: np.ndarray, where: str, first_row: int = 0) -> np.ndarray:
+    """Convert a 2-D real array whose shape and dtype passed to float64 and check each value.
+
+    ``a`` may be one block of a larger input that starts at row ``first_row``: messages
+    name rows of the whole input, so a block reader and :func:`validate_points` word
+    the same fault the same way.
+    """
     if a.dtype.kind in "iu":
         hit = _first_inexact_integer(a)
         if hit is not None:
             row, col = hit
-            raise InputError(f"{where}: row {row}, column {col} {_inexact_message(a[row, col])}")
+            raise InputError(
+                f"{where}: row {first_row + row}, column {col} {_inexact_message(a[row, col])}"
+            )
     out = np.ascontiguousarray(a, dtype=np.float64)
     if a.dtype.kind != "f":
         return out  # integers are always finite
@@ -199,10 +212,10 @@ def validate_points(points: Any, *, where: str = "points") -> np.ndarray:
     if hit is not None:
         row, col = hit
         raise InputError(
-            f"{where}: row {row}, column {col} is {float(out[row, col])!r}; "
+            f"{where}: row {first_row + row}, column {col} is {float(out[row, col])!r}; "
             f"every coordinate must be finite"
         )
-    _check_magnitude(out, where)
+    _check_magnitude(out, where, first_row)
     return out
 
 
