@@ -592,9 +592,19 @@ def planner_lines(planner: dict[str, Any] | None) -> list[str]:
 def _plan_input(input: str, key: str | None, columns: str | None, index_col: str | None) -> Any:
     """The input as the cluster planner sees it: a source its workers open (never read
     whole here) where the format allows, else the validated points."""
+    from .lazy import open_points
     from .staged import PlanInput
+    from .validate import validate_column, validate_columns
 
-    return PlanInput.of_points(_read(input, key, columns, index_col))
+    cols = validate_columns(columns, name="--columns")
+    idx = validate_column(index_col, name="--index-col")
+    source = open_points(input, key=key, columns=cols, index_col=idx)
+    if not source.random_access:  # a text table: read once here rather than by every block
+        return PlanInput.of_points(source.read_all())
+    where = input if "://" in str(input) else os.path.abspath(input)
+    spec = {"path": where, "key": key, "columns": cols, "index_col": idx}
+    return PlanInput(source.n_rows, source.dim, {"source": source.token(), "shape": [source.n_rows, source.dim]},
+                     source=spec, opened=source)
 
 
 def choose(planner: str, inp: Any) -> str:
@@ -651,8 +661,7 @@ def plan_cmd(input: str, eps: float, max_dim: int | None, key: str | None, colum
         summary["warnings"] = []
         summary["layout"] = describe_layout(summary["tasks"])
     else:
-        summary = describe(inp.points if inp.points is not None else _read(input, key, columns, index_col),
-                           params)
+        summary = describe(inp.points if inp.points is not None else inp.opened.read_all(), params)
     if as_json:
         click.echo(json.dumps(summary, indent=2))
         return
@@ -698,7 +707,7 @@ def run_cmd(input: str, eps: float, max_dim: int | None, key: str | None, column
         _report(_plan_and_run(_store_url(out), inp, params, stage, where, progress, store_options),
                 grid_values)
         return
-    points = inp.points if inp.points is not None else _read(input, key, columns, index_col)
+    points = inp.points if inp.points is not None else inp.opened.read_all()
     _compile_first(params.max_dim, points.shape[1])  # workers then load from the cache
     store = create_or_open(_store_url(out), points, params, storage_options=store_options,
                            discard=discard)

@@ -226,6 +226,7 @@ class PlanInput:
     fingerprint: Mapping[str, Any]
     points: np.ndarray | None = None
     source: Mapping[str, Any] | None = None
+    opened: Any = None  # the open `chitally.lazy` source behind `source`, when there is one
 
     @staticmethod
     def of_points(points: np.ndarray) -> PlanInput:

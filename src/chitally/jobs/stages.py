@@ -133,7 +133,8 @@ def _block(count: RunStore, i: int) -> tuple[np.ndarray, int]:
     else:
         from ..lazy import open_points
 
-        x = _source(source, count.io.storage_options).read(a, b)
+        # the input's own location and options (the run store's may be another service)
+        x = _source(source, None).read(a, b)
     return np.ascontiguousarray(x, dtype=np.float64), a
 
 
