@@ -133,13 +133,15 @@ def plan_on_cluster(url: str, points: np.ndarray | None, params: Params, stage: 
     else:
         target = float(params.task_cost)
 
-    # 5. halo: tasks and their materialised halos
+    # 5. halo: tasks and their materialised halos; its memory is known now: the region's
+    # rows and its pairs (about 80 bytes each through the join, the keys and their sort)
+    halo_mem = (rows_per_region * 1.3 * (dim * 8 + 64) + summary[:, 2] * 0.65 * 80).astype(np.int64)
     halo_attrs = {**attrs, "n_regions": n_regions, "target": target,
                   "max_task_rows": DEFAULT_MAX_TASK_ROWS}
     halo = open_or_create(
         stage_url(url, "halo"), PLAN_HALO.name, base_params, fp,
         lambda: JobSpec(kind=PLAN_HALO.name, params=base_params, fingerprint=fp,
-                        outputs=PLAN_HALO.outputs, cost=summary[:, 1].copy(), memory=region_mem,
+                        outputs=PLAN_HALO.outputs, cost=summary[:, 1].copy(), memory=halo_mem,
                         attrs=halo_attrs),
         storage_options=so)
     table = run_stage("halo", halo)
