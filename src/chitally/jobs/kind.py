@@ -59,6 +59,10 @@ class JobKind:
         ``module:function`` reading the verified result from a store, None before.
     unit : str
         What progress counts (shown to the user), e.g. "points", "clouds".
+    defaults : tuple of (name, value)
+        Parameters added after stores of this kind were first made, with the value a
+        store without them was made for: a missing one reads as that value when a
+        store's parameters are compared (`RunStore.check_matches`).
     """
 
     name: str
@@ -67,6 +71,7 @@ class JobKind:
     outputs: tuple[tuple[str, str], ...]
     read: str
     unit: str = "tasks"
+    defaults: tuple[tuple[str, Any], ...] = ()
 
     def task_function(self) -> TaskFunction:
         return _resolve(self.task)
