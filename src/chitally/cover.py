@@ -14,7 +14,14 @@ import numba as nb
 import numpy as np
 
 from chitally.kdtree import STACK_DEPTH, box_key, build_tree_parallel, near_leaves_by
-from chitally.metric import distance_key, key_bound, metric_tag, query_radius, validate_metric, within_key
+from chitally.metric import (
+    distance_key,
+    key_bound,
+    metric_tag,
+    query_radius,
+    validate_metric,
+    within_key,
+)
 from chitally.plan import Cover
 
 __all__ = ["build_cover"]

@@ -43,7 +43,16 @@ from scipy.spatial import cKDTree
 
 from . import kdtree
 from .blocks import Pacer, run_blocks, whole_calls
-from .metric import accumulate, distance_key, key_bound, key_length, metric_tag, minkowski_p, query_radius, within_key
+from .metric import (
+    accumulate,
+    distance_key,
+    key_bound,
+    key_length,
+    metric_tag,
+    minkowski_p,
+    query_radius,
+    within_key,
+)
 
 UNCAPPED = -1  # the compiled code's spelling of max_dim=None
 

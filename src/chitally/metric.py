@@ -98,7 +98,7 @@ def accumulate(s, d, tag):
     a = abs(d)
     if code == 1:
         return s + a
-    return a if a > s else s
+    return max(s, a)
 
 
 @nb.njit(inline="always", nogil=True, cache=True)

@@ -16,7 +16,13 @@ from concurrent.futures import ThreadPoolExecutor
 import numba as nb
 import numpy as np
 
-from chitally.metric import distance_key, metric_tag, query_radius, validate_metric, within_key
+from chitally.metric import (
+    distance_key,
+    metric_tag,
+    query_radius,
+    validate_metric,
+    within_key,
+)
 from chitally.plan import Cover, Plan
 
 __all__ = [
