@@ -40,7 +40,7 @@ def graph_phases(x: np.ndarray, eps: float) -> dict:
     t["query_pairs"] = t2 - t1
     t["pairs"] = pairs.shape[0]
     t0 = clock()
-    kernel._filter_pairs(x, pairs, eps)
+    kernel._filter_pairs(x, pairs, eps, ())
     t1 = clock()
     kernel._edge_graph(x, pairs, eps)
     t2 = clock()

@@ -213,3 +213,87 @@ def gudhi_curve(points: np.ndarray, eps: float, max_dim: int | None) -> Curve:
             f"our rule has {expected_edges}"
         )
     return _curve(values, jumps, eps, max_dim, n)
+
+
+# ------------------------------------------------------------ other metrics, by matrix
+
+#: scipy.spatial.distance.cdist's name of each metric chitally offers.
+SCIPY_METRIC = {"euclidean": "euclidean", "manhattan": "cityblock", "chebyshev": "chebyshev"}
+
+
+def metric_lengths(points: np.ndarray, metric: str) -> np.ndarray:
+    """(n, n) edge lengths by chitally's rule of `metric`, with numpy elementwise
+    operations in coordinate order: squares summed then sqrt (Euclidean), absolute
+    differences summed (Manhattan), their largest (Chebyshev)."""
+    if metric == "euclidean":
+        return pairwise_lengths(points)
+    p = np.asarray(points, dtype=np.float64)
+    n, m = p.shape
+    out = np.zeros((n, n), dtype=np.float64)
+    for k in range(m):
+        t = np.abs(p[:, None, k] - p[None, :, k])
+        out = out + t if metric == "manhattan" else np.maximum(out, t)
+    return out
+
+
+def scipy_lengths(points: np.ndarray, metric: str) -> np.ndarray:
+    """scipy's ``cdist(points, points, name)`` for `metric` (see SCIPY_METRIC)."""
+    from scipy.spatial.distance import cdist
+
+    p = np.asarray(points, dtype=np.float64)
+    return cdist(p, p, SCIPY_METRIC[metric])
+
+
+def brute_force_matrix_curve(lengths: np.ndarray, eps: float, max_dim: int | None) -> Curve:
+    """`brute_force_curve` on a given matrix of lengths: networkx
+    ``enumerate_all_cliques`` on the graph of the pairs with length <= eps, each clique
+    valued by its longest edge."""
+    lengths = np.asarray(lengths, dtype=np.float64)
+    n = lengths.shape[0]
+    graph = nx.Graph()
+    graph.add_nodes_from(range(n))
+    ii, jj = np.nonzero(np.triu(lengths <= eps, k=1))
+    graph.add_edges_from(zip(ii.tolist(), jj.tolist()))
+    values: list[float] = []
+    jumps: list[int] = []
+    seen: dict[tuple[int, ...], float] = {}
+    for clique in nx.enumerate_all_cliques(graph):
+        size = len(clique)
+        if max_dim is not None and size > max_dim + 1:
+            break
+        value = 0.0 if size == 1 else max(seen[tuple(clique[:-1])], float(lengths[clique[:-1], clique[-1]].max()))
+        seen[tuple(clique)] = value
+        values.append(value)
+        jumps.append(1 if size % 2 == 1 else -1)
+    return _curve(values, jumps, eps, max_dim, n)
+
+
+def gudhi_matrix_curve(lengths: np.ndarray, eps: float, max_dim: int | None) -> Curve:
+    """The curve read out of ``gudhi.RipsComplex(distance_matrix=lengths,
+    max_edge_length=eps)`` expanded to the cap (to n - 1 without one), as `gudhi_curve`
+    does for points. Every edge gudhi keeps must carry its matrix entry bit for bit, and
+    gudhi must keep exactly the pairs with entry <= eps."""
+    lengths = np.asarray(lengths, dtype=np.float64)
+    n = lengths.shape[0]
+    cap = max(n - 1, 1) if max_dim is None else max_dim
+    tree = gudhi.RipsComplex(distance_matrix=lengths, max_edge_length=float(eps)).create_simplex_tree(
+        max_dimension=cap
+    )
+    values: list[float] = []
+    jumps: list[int] = []
+    edges = 0
+    for simplex, filtration in tree.get_simplices():
+        dim = len(simplex) - 1
+        if dim == 1:
+            edges += 1
+            entry = lengths[simplex[0], simplex[1]]
+            if np.float64(filtration).view(np.int64) != entry.view(np.int64):
+                raise AssertionError(f"gudhi's edge {simplex} has value {filtration!r}, the matrix {entry!r}")
+        if dim > cap:
+            continue
+        values.append(filtration)
+        jumps.append(1 if dim % 2 == 0 else -1)
+    expected_edges = int(np.count_nonzero(np.triu(lengths <= eps, k=1)))
+    if edges != expected_edges:
+        raise AssertionError(f"gudhi has {edges} edges at max_edge_length={eps!r}, the matrix {expected_edges}")
+    return _curve(values, jumps, eps, max_dim, n)

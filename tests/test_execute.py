@@ -36,7 +36,13 @@ from typing import Any
 import numpy as np
 import pytest
 from engine_fixtures import wait_for
-from references import brute_force_curve, gudhi_curve
+from references import (
+    brute_force_curve,
+    brute_force_matrix_curve,
+    gudhi_curve,
+    gudhi_matrix_curve,
+    scipy_lengths,
+)
 
 from chitally import engine, euler_curve, runs
 from chitally.engine import TaskResult
@@ -114,13 +120,13 @@ class CloudInput:
         return f"{self.cloud}-R{self.radius:g}eps-{self.split}-cap{self.cap}"
 
 
-def split_cost(split: str, pts: np.ndarray, eps: float, cap, radius) -> float:
+def split_cost(split: str, pts: np.ndarray, eps: float, cap, radius, metric: str = "euclidean") -> float:
     """The task_cost that makes `split` of this cloud (planning is pure: no store)."""
     if split == "tiny":
         return TINY
     if split == "huge":
         return HUGE
-    _, plan, _ = cloud.plan_points(pts, cloud.Params.checked(eps, cap, radius, HUGE))
+    _, plan, _ = cloud.plan_points(pts, cloud.Params.checked(eps, cap, radius, HUGE, metric=metric))
     return float(plan.cost.sum()) / 6
 
 
@@ -205,6 +211,64 @@ def _staged_inputs() -> tuple[StagedInput, ...]:
     # every (cloud, cap) once, with cell sides and region sizes crossed as for the cover
     return tuple(StagedInput(name, CELLS[(i + j) % 3], REGIONS[(i + 2 * j) % 3], (7, 16, 1000)[j % 3], cap)
                  for i, name in enumerate(CLOUDS) for j, cap in enumerate(CAPS))
+
+
+# ------------------------------------------------------------ the cloud kind in other metrics
+
+# Clouds whose distances are exact in any summation order (so scipy's cdist and the rule
+# agree bit for bit), with many ties, and an eps equal to many distances.
+METRIC_EPS = {("lattice-R3", "manhattan"): 2.0, ("lattice-R3", "chebyshev"): 1.0,
+              ("dyadic-R2", "manhattan"): 0.625, ("dyadic-R2", "chebyshev"): 0.375}
+
+
+@functools.cache
+def metric_points(name: str) -> np.ndarray:
+    if name == "lattice-R3":  # integers in [0, 5)^3, coincident points included
+        return np.random.default_rng(21).integers(0, 5, (40, 3)).astype(np.float64)
+    if name == "dyadic-R2":  # multiples of 1/16
+        return np.random.default_rng(22).integers(0, 64, (50, 2)) / 16.0
+    raise KeyError(name)
+
+
+@dataclass(frozen=True)
+class MetricInput:
+    """A cloud run store's input in another metric: a named cloud, a metric, a split, a cap."""
+
+    cloud: str
+    metric: str
+    split: str
+    cap: int | None
+
+    @property
+    def id(self) -> str:
+        return f"{self.cloud}-{self.metric}-{self.split}-cap{self.cap}"
+
+
+def metric_store(tmp_path: Path, inp: MetricInput, name: str = "run") -> RunStore:
+    pts, eps = metric_points(inp.cloud), METRIC_EPS[inp.cloud, inp.metric]
+    cost = split_cost(inp.split, pts, eps, inp.cap, None, inp.metric)
+    params = cloud.Params.checked(eps, inp.cap, None, cost, metric=inp.metric)
+    store = cloud.create_or_open(str(tmp_path / f"{name}.zarr"), pts, params)
+    assert store.params["metric"] == inp.metric
+    assert (store.n_tasks == pts.shape[0]) if inp.split == "tiny" else (store.n_tasks == 1) if inp.split == "huge" \
+        else (1 < store.n_tasks < pts.shape[0])
+    return store
+
+
+@functools.cache
+def metric_curves(name: str, metric: str, cap: int | None) -> dict[str, Any]:
+    pts, eps = metric_points(name), METRIC_EPS[name, metric]
+    D = scipy_lengths(pts, metric)  # scipy.spatial.distance.cdist(pts, pts, "cityblock" | "chebyshev")
+    return {
+        "chitally.euler_curve(metric=...) (in process, no store)": euler_curve(pts, eps, cap, metric=metric),
+        "networkx enumerate_all_cliques on the eps-graph of scipy's cdist (brute force)":
+            brute_force_matrix_curve(D, eps, cap),
+        "gudhi RipsComplex(distance_matrix=scipy's cdist)": gudhi_matrix_curve(D, eps, cap),
+    }
+
+
+def metric_reference(inp: MetricInput) -> dict[str, Any]:
+    return metric_curves(inp.cloud, inp.metric, inp.cap)
 
 
 # ------------------------------------------------------------------ batch, graph, bands
@@ -346,6 +410,16 @@ JOB_KINDS: dict[str, JobKindCase] = {
         make_store=staged_store,
         reference=staged_reference,
     ),
+    "cloud-metric": JobKindCase(
+        name="cloud",
+        inputs=(MetricInput("lattice-R3", "manhattan", "medium", None),
+                MetricInput("lattice-R3", "chebyshev", "tiny", 2),
+                MetricInput("dyadic-R2", "chebyshev", "huge", 3),
+                MetricInput("dyadic-R2", "manhattan", "medium", 1)),
+        small=MetricInput("lattice-R3", "chebyshev", "medium", 3),
+        make_store=metric_store,
+        reference=metric_reference,
+    ),
     "batch": JobKindCase(
         name="batch",
         inputs=(SimpleInput("clouds", 30, 1), SimpleInput("clouds", 7, 2)),
@@ -369,8 +443,8 @@ JOB_KINDS: dict[str, JobKindCase] = {
     ),
 }
 
-KIND_PARAMS = [pytest.param(k, id=key) for key, k in JOB_KINDS.items()]
-RESULT_PARAMS = [pytest.param(k, inp, id=f"{key}-{inp.id}") for key, k in JOB_KINDS.items() for inp in k.inputs]
+KIND_PARAMS = [pytest.param(k, id=case) for case, k in JOB_KINDS.items()]
+RESULT_PARAMS = [pytest.param(k, inp, id=f"{case}-{inp.id}") for case, k in JOB_KINDS.items() for inp in k.inputs]
 
 
 def test_the_cloud_inputs_cover_every_pair_of_levels():
@@ -389,6 +463,9 @@ def test_the_references_agree():
         for cap in CAPS:
             curves = list(cloud_curves(name, cap).values())
             assert curves[0] == curves[1] == curves[2], (name, cap)
+    for inp in JOB_KINDS["cloud-metric"].inputs:
+        curves = list(metric_reference(inp).values())
+        assert curves[0] == curves[1] == curves[2], inp.id
 
 
 # ============================================================= the faulty task function

@@ -197,8 +197,17 @@ radius_opt = click.option("--cover-radius", type=float, default=None,
 cost_opt = click.option("--task-cost", type=float, default=None,
                         help="Target cost per task (default: the planner's choice).")
 
+# chitally.metric.METRICS, spelled out so that the CLI starts without importing numba
+# (tests/test_metric.py checks that the two agree)
+METRIC_CHOICES = ("euclidean", "manhattan", "chebyshev")
+metric_opt = click.option("--metric", type=click.Choice(METRIC_CHOICES), default="euclidean",
+                          show_default=True,
+                          help="Distance between points: euclidean, manhattan (sum of |dx|, p = 1) "
+                               "or chebyshev (largest |dx|, p = inf).")
+
 _NAMES = {"eps": "--eps", "max_dim": "--max-dim", "cover_radius": "--cover-radius",
-          "task_cost": "--task-cost", "cell_size": "--cell-size", "region_rows": "--region-rows"}
+          "task_cost": "--task-cost", "cell_size": "--cell-size", "region_rows": "--region-rows",
+          "metric": "--metric"}
 
 
 def planner_opts(fn: Callable[..., Any]) -> Callable[..., Any]:
@@ -239,10 +248,10 @@ def _say_stages(report: Any) -> None:
 
 
 def _cloud_params(eps: float, max_dim: int | None, cover_radius: float | None = None,
-                  task_cost: float | None = None) -> Any:
+                  task_cost: float | None = None, metric: str = "euclidean") -> Any:
     from .jobs.cloud import Params
 
-    return Params.checked(eps, max_dim, cover_radius, task_cost, names=_NAMES)
+    return Params.checked(eps, max_dim, cover_radius, task_cost, names=_NAMES, metric=metric)
 
 
 def _executor_options(fn: Callable[..., Any]) -> Callable[..., Any]:
@@ -522,20 +531,23 @@ def _compile_first(max_dim: int | None, dim: int | None) -> float:
               help="Output format (default: from --out's ending).")
 @click.option("--grid", default=None, help=GRID_HELP + " With --out, the file holds the samples.")
 @click.option("--threads", type=int, default=None, help="Kernel threads (default: by size).")
+@metric_opt
 @guarded
 def curve_cmd(input: str, eps: float, max_dim: int | None, key: str | None, columns: str | None,
               index_col: str | None, out: str | None, fmt: str | None, grid: str | None,
-              threads: int | None) -> None:
+              threads: int | None, metric: str) -> None:
     """Compute the curve of INPUT in this process."""
-    params = _cloud_params(eps, max_dim)
+    params = _cloud_params(eps, max_dim, metric=metric)
     grid_values = _grid(grid)
     fmt = check_output(out, fmt)
     from .inprocess import euler_curve
 
     points = _read(input, key, columns, index_col)
     _compile_first(params.max_dim, points.shape[1])
-    curve, stats = euler_curve(points, params.eps, params.max_dim, threads=threads, return_stats=True)
-    say(f"{points.shape[0]} points in R^{points.shape[1]}, eps {params.eps:g}, max_dim "
+    curve, stats = euler_curve(points, params.eps, params.max_dim, threads=threads, return_stats=True,
+                               metric=params.metric)
+    say(f"{points.shape[0]} points in R^{points.shape[1]}"
+        f"{'' if params.metric == 'euclidean' else ' (' + params.metric + ')'}, eps {params.eps:g}, max_dim "
         f"{params.max_dim if params.max_dim is not None else 'none'}: {stats.edges} edges; "
         f"{curve.n_jumps} jumps, chi(0) = {curve.at(0.0)}, chi(eps) = {curve.final}; "
         f"{stats.seconds_graph + stats.seconds_count:.2f} s")
@@ -546,6 +558,7 @@ _PLAN_LABELS = {
     "points": "points",
     "dim": "coordinates per point",
     "eps": "eps (largest scale)",
+    "metric": "distance between points",
     "max_dim": "simplex dimension cap",
     "radius": "ball radius of the cover",
     "balls": "balls in the cover",
@@ -563,6 +576,8 @@ def plan_lines(summary: dict[str, Any]) -> list[str]:
     if (summary.get("planner") or {}).get("kind") == "cluster":
         labels.update(radius="side of a grid cell", balls="regions")
     for key, label in labels.items():
+        if key not in summary:
+            continue
         value = summary[key]
         if isinstance(value, dict):
             text = f"{value['min']:g} to {value['max']:g} (median {value['median']:g})"
@@ -620,6 +635,7 @@ def choose(planner: str, inp: Any) -> str:
 @key_opt
 @radius_opt
 @cost_opt
+@metric_opt
 @planner_opts
 @click.option("--out", "out", default=None,
               help="Cluster planner: the run store to plan into (the stages run; no curve yet).")
@@ -629,15 +645,15 @@ def choose(planner: str, inp: Any) -> str:
 @guarded
 def plan_cmd(input: str, eps: float, max_dim: int | None, key: str | None, columns: str | None,
              index_col: str | None, cover_radius: float | None, task_cost: float | None,
-             planner: str, cell_size: float | None, region_rows: int | None, out: str | None,
-             as_json: bool, progress: bool, store_options: dict[str, Any] | None,
+             metric: str, planner: str, cell_size: float | None, region_rows: int | None,
+             out: str | None, as_json: bool, progress: bool, store_options: dict[str, Any] | None,
              **how: Any) -> None:
     """Show what a run would do (tasks, halos, cost, memory, the planner's own time and
     memory, store layout). The driver's planner writes nothing; the cluster planner runs
     its stages into --out, and `chitally run` or `resume` then computes the curve."""
     from .jobs.cloud import describe
 
-    params = _cloud_params(eps, max_dim, cover_radius, task_cost)
+    params = _cloud_params(eps, max_dim, cover_radius, task_cost, metric)
     stage = _stage_params(params.eps, cell_size, region_rows)
     inp = _plan_input(input, key, columns, index_col)
     if choose(planner, inp) == "cluster":
@@ -683,6 +699,7 @@ def plan_cmd(input: str, eps: float, max_dim: int | None, key: str | None, colum
 @click.option("--out", "out", required=True, help="The run store: a local path or an fsspec URL all workers reach.")
 @radius_opt
 @cost_opt
+@metric_opt
 @click.option("--grid", default=None, help=GRID_HELP)
 @click.option("--discard", is_flag=True, help="Delete committed work of an unfinished store at --out.")
 @planner_opts
@@ -691,13 +708,13 @@ def plan_cmd(input: str, eps: float, max_dim: int | None, key: str | None, colum
 @guarded
 def run_cmd(input: str, eps: float, max_dim: int | None, key: str | None, columns: str | None,
             index_col: str | None, out: str,
-            cover_radius: float | None, task_cost: float | None, grid: str | None, discard: bool,
-            planner: str, cell_size: float | None, region_rows: int | None,
+            cover_radius: float | None, task_cost: float | None, metric: str, grid: str | None,
+            discard: bool, planner: str, cell_size: float | None, region_rows: int | None,
             progress: bool, store_options: dict[str, Any] | None, **how: Any) -> None:
     """Plan, execute and reduce: the exact curve of INPUT on a Dask cluster."""
     from .jobs.cloud import create_or_open, plan_warnings
 
-    params = _cloud_params(eps, max_dim, cover_radius, task_cost)
+    params = _cloud_params(eps, max_dim, cover_radius, task_cost, metric)
     stage = _stage_params(params.eps, cell_size, region_rows)
     grid_values = _grid(grid)
     where = _where(**how)
@@ -814,6 +831,9 @@ def field_cmd(input: str, key: str | None, construction: str, superlevel: bool, 
 @superlevel_opt
 @threshold_opt
 @cost_opt
+@click.option("--metric", type=click.Choice(METRIC_CHOICES), default=None,
+              help="Point clouds: distance between points (default euclidean); manhattan (sum of |dx|, "
+                   "p = 1) or chebyshev (largest |dx|, p = inf).")
 @click.option("--out", "out", required=True, help="The run store: a local path or an fsspec URL all workers reach.")
 @click.option("--discard", is_flag=True, help="Delete committed work of an unfinished store at --out.")
 @_executor_options
@@ -822,7 +842,7 @@ def field_cmd(input: str, key: str | None, construction: str, superlevel: bool, 
 def batch_cmd(input: str, eps: float | None, grid: str, max_dim: int | None, normalise: bool,
               labels: str | None, key: str | None, columns: str | None, index_col: str | None,
               graphs: bool, values: str | None, weights: str | None, superlevel: bool,
-              threshold: float | None, task_cost: float | None, out: str, discard: bool,
+              threshold: float | None, task_cost: float | None, metric: str | None, out: str, discard: bool,
               progress: bool, store_options: dict[str, Any] | None, **how: Any) -> None:
     """A feature matrix: every cloud of INPUT (a folder of point files, an .npz of
     arrays, a 3-D .npy or a Zarr group), or every graph of INPUT (a folder in the graph
@@ -832,6 +852,8 @@ def batch_cmd(input: str, eps: float | None, grid: str, max_dim: int | None, nor
 
     grid_values = _grid(grid)
     if graphs or is_graph_collection(input):
+        if metric is not None:
+            fail("--metric applies to point clouds; graphs have no coordinates", EXIT_USAGE)
         _graph_batch(input, eps, grid_values, max_dim, normalise, labels, key, columns, index_col,
                      values, weights, superlevel, threshold, task_cost, out, discard, progress, how,
                      store_options)
@@ -847,7 +869,7 @@ def batch_cmd(input: str, eps: float | None, grid: str, max_dim: int | None, nor
     if eps is None:
         fail("--eps is required for point clouds (the largest scale)", EXIT_USAGE)
     params = BatchParams.checked(eps, grid_values, max_dim, normalise, task_cost,
-                                 names={**_NAMES, "grid": "--grid"})
+                                 names={**_NAMES, "grid": "--grid"}, metric=metric)
     where = _where(**how)
     if columns is not None or index_col is not None:
         fail("--columns and --index-col apply to one file, not to a collection (use --key)", EXIT_USAGE)
@@ -856,8 +878,9 @@ def batch_cmd(input: str, eps: float | None, grid: str, max_dim: int | None, nor
         col = Collection(col.names, col.clouds, read_labels(labels, col.names))
     store = create_or_open(_store_url(out), col, params, storage_options=store_options,
                            discard=discard)
-    say(f"{len(col)} clouds in R^{col.dim}, {sum(c.shape[0] for c in col.clouds)} points, "
-        f"{store.n_tasks} tasks")
+    say(f"{len(col)} clouds in R^{col.dim}"
+        f"{'' if params.metric == 'euclidean' else ' (' + params.metric + ')'}, "
+        f"{sum(c.shape[0] for c in col.clouds)} points, {store.n_tasks} tasks")
     _report(_run_store(store, where, progress))
 
 
@@ -1000,6 +1023,7 @@ def resume_cmd(run: str, input_: str | None, key: str | None, eps: float | None,
                grid: str | None, progress: bool, store_options: dict[str, Any] | None,
                **how: Any) -> None:
     """Continue RUN: compute only the tasks without a valid commit, then reduce."""
+    from .jobs import kind_of
     from .runs import open_run
     from .store import fingerprint
 
@@ -1026,7 +1050,7 @@ def resume_cmd(run: str, input_: str | None, key: str | None, eps: float | None,
         if max_dim is not None:
             wanted["max_dim"] = max_dim
         fp = fingerprint(read_points(input_, key=key)) if input_ is not None else store.fingerprint
-        store.check_matches(store.kind, wanted, fp)
+        store.check_matches(store.kind, wanted, fp, dict(kind_of(store.kind).defaults))
     _report(_run_store(store, where, progress), grid_values)
 
 
@@ -1143,17 +1167,19 @@ def _scan_eps_values(eps: str | None, eps_range: str | None) -> Any:
 @click.option("--sample", type=int, default=None, help="Rows to sample; their degrees are exact (default 2000).")
 @click.option("--seed", type=int, default=0, show_default=True, help="Seed of the sample.")
 @key_opt
+@metric_opt
 @click.option("--json", "as_json", is_flag=True, help="Print the figures as JSON.")
 @guarded
 def scan_cmd(input: str, eps: str | None, eps_range: str | None, max_dim: int | None, sample: int | None,
-             seed: int, key: str | None, columns: str | None, index_col: str | None, as_json: bool) -> None:
+             seed: int, key: str | None, columns: str | None, index_col: str | None, metric: str,
+             as_json: bool) -> None:
     """Which eps? Degrees, edges, time and memory of a run at several scales, estimated from a sample; writes nothing."""
     from .scan import scan_eps
 
     values = _scan_eps_values(eps, eps_range)
     more = {} if sample is None else {"sample": sample}
     report = scan_eps(_read(input, key, columns, index_col), values, max_dim=max_dim, seed=seed,
-                      threads=os.cpu_count() or 1, **more)
+                      threads=os.cpu_count() or 1, metric=metric, **more)
     click.echo(json.dumps(report.as_dict(), indent=2) if as_json else report.table())
 
 

@@ -13,8 +13,15 @@ from __future__ import annotations
 import numba as nb
 import numpy as np
 
-from chitally.kdtree import STACK_DEPTH, box_squared_distance, build_tree_parallel, near_leaves
-from chitally.metric import query_radius, squared_distance, within
+from chitally.kdtree import STACK_DEPTH, box_key, build_tree_parallel, near_leaves_by
+from chitally.metric import (
+    distance_key,
+    key_bound,
+    metric_tag,
+    query_radius,
+    validate_metric,
+    within_key,
+)
 from chitally.plan import Cover
 
 __all__ = ["build_cover"]
@@ -29,18 +36,18 @@ LEAF_SIZE = 16
 CENTRE_LEAF_SIZE = 32
 
 
-def _prune_bound(radius: float) -> float:
-    """Squared distance beyond which a tree box cannot hold a row within `radius`.
+def _prune_bound(radius: float, metric: str = "euclidean") -> float:
+    """The key (squared distance when Euclidean) beyond which a tree box cannot hold a
+    row within `radius`.
 
     Box bounds are compared in their own arithmetic, so the bound is the widened radius
-    of `metric.query_radius`; only `metric.within` decides membership.
+    of `metric.query_radius`; only `metric.within_key` decides membership.
     """
-    reach = query_radius(radius)
-    return reach * reach
+    return key_bound(query_radius(radius), metric)
 
 
 @nb.njit(nogil=True, cache=True)
-def _greedy_cover(xs, start, stop, box_lo, box_hi, radius, prune2):
+def _greedy_cover(xs, start, stop, box_lo, box_hi, radius, prune2, tag):
     """The greedy cover over rows in leaf order.
 
     Returns (owner, centre_rows, n_balls): owner[i] is the ball of leaf row i and ball b is
@@ -70,12 +77,12 @@ def _greedy_cover(xs, start, stop, box_lo, box_hi, radius, prune2):
             node = stack[top]
             if uncovered[node] == 0:
                 continue
-            if box_squared_distance(box_lo, box_hi, node, xs, p) > prune2:
+            if box_key(box_lo, box_hi, node, xs, p, tag) > prune2:
                 continue
             if node >= first_leaf:
                 claimed = 0
                 for i in range(start[node], stop[node]):
-                    if owner[i] < 0 and within(squared_distance(xs, i, xs, p), radius):
+                    if owner[i] < 0 and within_key(distance_key(xs, i, xs, p, tag), radius, tag):
                         owner[i] = b
                         claimed += 1
                 if claimed > 0:
@@ -93,7 +100,7 @@ def _greedy_cover(xs, start, stop, box_lo, box_hi, radius, prune2):
 
 
 @nb.njit(nogil=True, cache=True)
-def _join_leaf(xs, perm, start, stop, box_lo, box_hi, leaf, reach, prune2, offsets, out, fill):
+def _join_leaf(xs, perm, start, stop, box_lo, box_hi, leaf, reach, prune2, offsets, out, fill, tag):
     """For every row of one leaf, the tree rows within `reach` of it (exact rule).
 
     Queries are batched per leaf so that the tree is walked once per leaf, not once per
@@ -101,19 +108,19 @@ def _join_leaf(xs, perm, start, stop, box_lo, box_hi, leaf, reach, prune2, offse
     true, writes the original ids of the matches into ``out[offsets[perm[i]]:...]``.
     """
     near = np.empty(64, dtype=np.int64)
-    n_near = near_leaves(start, stop, box_lo, box_hi, leaf, prune2, near, 0)
+    n_near = near_leaves_by(start, stop, box_lo, box_hi, leaf, prune2, near, 0, tag)
     if n_near > near.shape[0]:
         near = np.empty(n_near, dtype=np.int64)
-        near_leaves(start, stop, box_lo, box_hi, leaf, prune2, near, 0)
+        near_leaves_by(start, stop, box_lo, box_hi, leaf, prune2, near, 0, tag)
     for i in range(start[leaf], stop[leaf]):
         count = 0
         base = offsets[perm[i]] if fill else 0
         for t in range(n_near):
             other = near[t]
-            if box_squared_distance(box_lo, box_hi, other, xs, i) > prune2:
+            if box_key(box_lo, box_hi, other, xs, i, tag) > prune2:
                 continue
             for j in range(start[other], stop[other]):
-                if within(squared_distance(xs, j, xs, i), reach):
+                if within_key(distance_key(xs, j, xs, i, tag), reach, tag):
                     if fill:
                         out[base + count] = perm[j]
                     count += 1
@@ -122,7 +129,7 @@ def _join_leaf(xs, perm, start, stop, box_lo, box_hi, leaf, reach, prune2, offse
 
 
 @nb.njit(parallel=True, cache=True)
-def _neighbour_balls(centre_xyz, reach, prune2, leaf_size):
+def _neighbour_balls(centre_xyz, reach, prune2, leaf_size, tag):
     """CSR lists of the balls whose centres are within `reach` (exact rule) of each
     ball's centre, the ball itself included, each list sorted."""
     n_balls = centre_xyz.shape[0]
@@ -134,12 +141,12 @@ def _neighbour_balls(centre_xyz, reach, prune2, leaf_size):
     offsets = np.zeros(n_balls + 1, dtype=np.int64)
     tree = (cs, cperm, start, stop, box_lo, box_hi)
     for t in nb.prange(n_leaves):
-        _join_leaf(*tree, first_leaf + t, reach, prune2, offsets, counts, False)
+        _join_leaf(*tree, first_leaf + t, reach, prune2, offsets, counts, False, tag)
     for b in range(n_balls):
         offsets[b + 1] = offsets[b] + counts[b]
     balls = np.empty(offsets[n_balls], dtype=np.int64)
     for t in nb.prange(n_leaves):
-        _join_leaf(*tree, first_leaf + t, reach, prune2, offsets, balls, True)
+        _join_leaf(*tree, first_leaf + t, reach, prune2, offsets, balls, True, tag)
     for b in nb.prange(n_balls):
         balls[offsets[b] : offsets[b + 1]].sort()
     return offsets, balls
@@ -163,12 +170,13 @@ def _renumber(perm, owner, n_balls):
     return order, ball_offsets
 
 
-def build_cover(points: np.ndarray, eps: float, radius: float | None = None) -> Cover:
+def build_cover(points: np.ndarray, eps: float, radius: float | None = None,
+                metric: str = "euclidean") -> Cover:
     """Cover the points with greedy balls of radius R and renumber them ball by ball.
 
     Rows are visited in the leaf order of a median-split KD-tree; each row still uncovered
     when it is reached becomes a centre and owns every uncovered row within R of it, by
-    the exact rule ``metric.within(d2, R)``. Because centres are picked along the leaf
+    the exact rule ``metric.within_key(key, R)``. Because centres are picked along the leaf
     order, ball numbers follow it too: consecutive balls are spatial neighbours, and a
     contiguous range of balls is a compact region (a union of a few KD subtrees). The new
     row order is ball by ball, and leaf order inside each ball, which is the order the
@@ -184,6 +192,9 @@ def build_cover(points: np.ndarray, eps: float, radius: float | None = None) -> 
         The Vietoris-Rips scale, > 0. It only sets the neighbour-ball reach ``2R + eps``.
     radius : float, optional
         Ball radius R > 0; ``eps`` by default.
+    metric : {"euclidean", "manhattan", "chebyshev"}
+        The metric of every distance (see :mod:`chitally.metric`). The cover and its
+        neighbour lists rest on the triangle inequality alone, so they hold in each.
 
     Returns
     -------
@@ -222,9 +233,11 @@ def build_cover(points: np.ndarray, eps: float, radius: float | None = None) -> 
     if not (np.isfinite(radius) and radius > 0):
         raise ValueError(f"radius must be finite and > 0, got {radius!r}")
 
+    metric = validate_metric(metric)
+    tag = metric_tag(metric)
     xs, perm, start, stop, box_lo, box_hi = build_tree_parallel(x, LEAF_SIZE)
     owner, centre_leaf_rows, n_balls = _greedy_cover(
-        xs, start, stop, box_lo, box_hi, radius, _prune_bound(radius)
+        xs, start, stop, box_lo, box_hi, radius, _prune_bound(radius, metric), tag
     )
     del start, stop, box_lo, box_hi
     order, ball_offsets = _renumber(perm, owner, n_balls)
@@ -238,7 +251,7 @@ def build_cover(points: np.ndarray, eps: float, radius: float | None = None) -> 
     # including an extra ball is harmless and missing one would lose edges.
     reach = query_radius(2.0 * radius + eps)
     neighbour_offsets, neighbour_balls = _neighbour_balls(
-        centre_xyz, reach, _prune_bound(reach), CENTRE_LEAF_SIZE
+        centre_xyz, reach, _prune_bound(reach, metric), CENTRE_LEAF_SIZE, tag
     )
     return Cover(
         radius=radius,

@@ -38,6 +38,7 @@ from .jobs.batch import (
     graph_rows,
     group,
 )
+from .metric import validate_metric
 from .validate import InputError
 
 try:  # scikit-learn is optional: the transformer needs it, the matrix does not
@@ -156,7 +157,7 @@ def _in_process(col: Collection, params: BatchParams, threads: int | None) -> np
     grid = np.asarray(params.grid, np.float64)
     costs = cloud_cost(np.array([c.shape[0] for c in col.clouds]))
     return _in_groups(costs, lambda ids: cloud_rows([col.clouds[i] for i in ids], params.eps,
-                                                    params.max_dim, grid), grid.size, threads)
+                                                    params.max_dim, grid, params.metric), grid.size, threads)
 
 
 def _graphs_in_process(col: Any, params: GraphBatchParams, threads: int | None) -> np.ndarray:
@@ -212,6 +213,12 @@ def _graph_matrix(items: Any, grid: Any, max_dim: Any, normalise: bool, options:
     return _run_matrix(rs, where)
 
 
+def _no_metric(metric: Any) -> None:
+    """Graphs have no coordinates: a metric other than the default is refused."""
+    if validate_metric(metric) != "euclidean":
+        raise InputError("metric applies to point clouds, not to graphs")
+
+
 def _run_matrix(rs: Any, where: Any) -> FeatureMatrix:
     from .runs import Where, run
 
@@ -226,7 +233,8 @@ def feature_matrix(clouds: Any, eps: float | None = None, grid: Any = None, max_
                    superlevel: bool = False, threshold: float | None = None, graphs: bool | None = None,
                    names: Sequence[str] | None = None,
                    labels: Any = None, store: str | None = None, where: Any = None,
-                   threads: int | None = None, storage_options: Mapping[str, Any] | None = None) -> FeatureMatrix:
+                   threads: int | None = None, storage_options: Mapping[str, Any] | None = None,
+                   metric: str = "euclidean") -> FeatureMatrix:
     """The exact feature matrix of a collection of clouds or graphs.
 
     Parameters
@@ -262,6 +270,8 @@ def feature_matrix(clouds: Any, eps: float | None = None, grid: Any = None, max_
         (a `chitally.runs.Where`; default a LocalCluster), instead of in this process.
     threads : int, optional
         In-process threads (default: all cores).
+    metric : {"euclidean", "manhattan", "chebyshev"}
+        Clouds: the distance between two points (see `chitally.euler_curve`).
 
     Returns
     -------
@@ -288,12 +298,13 @@ def feature_matrix(clouds: Any, eps: float | None = None, grid: Any = None, max_
     if _are_graphs(clouds, eps, graphs):
         if eps is not None:
             raise InputError("eps is the largest scale of point clouds; graphs take threshold")
+        _no_metric(metric)
         return _graph_matrix(clouds, grid, max_dim, normalise, options, names, labels, store, where,
                              threads, storage_options)
     given = _graph_options_given(options)
     if given:
         raise InputError(f"{given[0]} applies to graphs, not to point clouds")
-    params = BatchParams.checked(eps, grid, max_dim, normalise)
+    params = BatchParams.checked(eps, grid, max_dim, normalise, metric=metric)
     col = read_collection(clouds, names=names)
     if labels is not None:
         col = Collection(col.names, col.clouds, read_labels(labels, col.names))
@@ -326,6 +337,8 @@ class CurveFeatures(TransformerMixin, BaseEstimator):
         Graphs: the filtration, as for `chitally.graphs.graph_curve`.
     graphs : bool, optional
         Say the items are graphs (True) or clouds (False) instead of detecting it.
+    metric : {"euclidean", "manhattan", "chebyshev"}
+        Clouds: the distance between two points (see `chitally.euler_curve`).
     n_jobs : int, optional
         Threads in this process (default: all cores).
     scheduler : str, optional
@@ -343,7 +356,7 @@ class CurveFeatures(TransformerMixin, BaseEstimator):
     def __init__(self, eps: float | None = None, grid: Any = "0:1:16", max_dim: int | None = None,
                  normalise: bool = False, values: Any = "auto", weights: str | None = None,
                  superlevel: bool = False, threshold: float | None = None, graphs: bool | None = None,
-                 n_jobs: int | None = None, scheduler: str | None = None) -> None:
+                 n_jobs: int | None = None, scheduler: str | None = None, metric: str = "euclidean") -> None:
         self.eps = eps
         self.grid = grid
         self.max_dim = max_dim
@@ -355,6 +368,7 @@ class CurveFeatures(TransformerMixin, BaseEstimator):
         self.graphs = graphs
         self.n_jobs = n_jobs
         self.scheduler = scheduler
+        self.metric = metric
 
     def _grid(self) -> Any:
         grid = self.grid
@@ -372,6 +386,7 @@ class CurveFeatures(TransformerMixin, BaseEstimator):
         if _are_graphs(X, self.eps, self.graphs):
             if self.eps is not None:
                 raise InputError("eps is the largest scale of point clouds; graphs take threshold")
+            _no_metric(self.metric)
             return GraphBatchParams.checked(self._grid(), max_dim=self.max_dim, normalise=self.normalise,
                                             **self._options())
         if self.eps is None:
@@ -379,7 +394,7 @@ class CurveFeatures(TransformerMixin, BaseEstimator):
         given = _graph_options_given(self._options())
         if given:
             raise InputError(f"{given[0]} applies to graphs, not to point clouds")
-        return BatchParams.checked(self.eps, self._grid(), self.max_dim, self.normalise)
+        return BatchParams.checked(self.eps, self._grid(), self.max_dim, self.normalise, metric=self.metric)
 
     def fit(self, X: Any, y: Any = None) -> CurveFeatures:
         params = self._params(X)
@@ -413,7 +428,7 @@ class CurveFeatures(TransformerMixin, BaseEstimator):
         with tempfile.TemporaryDirectory(prefix="chitally-features-") as tmp:
             fm = feature_matrix(X, None if graphs else params.eps, list(params.grid), params.max_dim,
                                 params.normalise, graphs=graphs, store=os.path.join(tmp, "run.zarr"),
-                                where=where, **(self._options() if graphs else {}))
+                                where=where, **(self._options() if graphs else {"metric": params.metric}))
         return fm.values.astype(np.float64)
 
     def get_feature_names_out(self, input_features: Any = None) -> np.ndarray:

@@ -15,6 +15,7 @@ import numpy as np
 
 from .curve import Curve
 from .kernel import KernelStats, build_tree, count_jumps
+from .metric import validate_metric
 from .sources import validate_eps, validate_max_dim, validate_points
 
 
@@ -31,9 +32,11 @@ def _leaf_ordered(points: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 @overload
-def euler_curve(points, eps, max_dim=..., *, threads=..., return_stats: Literal[False] = ...) -> Curve: ...
+def euler_curve(points, eps, max_dim=..., *, threads=..., return_stats: Literal[False] = ...,
+                metric=...) -> Curve: ...
 @overload
-def euler_curve(points, eps, max_dim=..., *, threads=..., return_stats: Literal[True]) -> tuple[Curve, KernelStats]: ...
+def euler_curve(points, eps, max_dim=..., *, threads=..., return_stats: Literal[True],
+                metric=...) -> tuple[Curve, KernelStats]: ...
 
 
 def euler_curve(
@@ -43,6 +46,7 @@ def euler_curve(
     *,
     threads: int | None = None,
     return_stats: bool = False,
+    metric: str = "euclidean",
 ) -> Curve | tuple[Curve, KernelStats]:
     """The exact Euler characteristic curve of the Vietoris-Rips filtration up to eps.
 
@@ -51,7 +55,7 @@ def euler_curve(
     points : array of shape (n, m)
         Finite real coordinates; coincident points count as distinct vertices.
     eps : float
-        Largest scale (> 0). Edges are the pairs at Euclidean distance <= eps.
+        Largest scale (> 0). Edges are the pairs at distance <= eps in `metric`.
     max_dim : int, optional
         Count simplices of dimension <= max_dim only; None counts all of them.
     threads : int, optional
@@ -63,6 +67,10 @@ def euler_curve(
         `kernel.default_threads`). Many small clouds thus run one thread each.
     return_stats : bool
         Also return the kernel's counters (edges, cones, collapses, splits, seconds).
+    metric : {"euclidean", "manhattan", "chebyshev"}
+        The distance between two points: Euclidean (default), Manhattan (sum of the
+        absolute coordinate differences, p = 1) or Chebyshev (their largest, p = inf),
+        each by its one rule in :mod:`chitally.metric`.
 
     Returns
     -------
@@ -79,9 +87,10 @@ def euler_curve(
     points = validate_points(points)
     eps = validate_eps(eps)
     max_dim = validate_max_dim(max_dim)
+    metric = validate_metric(metric)
     t0 = time.perf_counter()
     coords = _leaf_ordered(points)[0]
-    table = count_jumps(coords, eps, max_dim, threads=threads or None)
+    table = count_jumps(coords, eps, max_dim, threads=threads or None, metric=metric)
     curve = Curve.from_jumps(table.values, table.jumps, eps=eps, max_dim=max_dim, n_points=points.shape[0])
     if return_stats:
         # the relabelling counts as neighbour search, like the KD-tree query itself

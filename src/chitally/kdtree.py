@@ -8,7 +8,8 @@ order (children of k are 2k+1 and 2k+2), no pointers. The build reorders a copy 
 coordinates physically, so queries and the final leaf order read memory sequentially.
 
 The tree only proposes candidates: its boxes are compared against a widened bound
-(`metric.query_radius`), and membership is always decided by the one distance rule of
+(`metric.query_radius`), in the key of the metric at hand (box gaps squared and summed,
+summed, or their largest), and membership is always decided by the one distance rule of
 :mod:`chitally.metric`. No I/O, no Dask, no Zarr here.
 """
 
@@ -18,6 +19,8 @@ import math
 
 import numba as nb
 import numpy as np
+
+from .metric import accumulate
 
 # Deepest tree the fixed traversal stacks can walk: 2**127 leaves is far beyond any
 # point count a process can hold.
@@ -180,11 +183,52 @@ def box_box_squared_distance(box_lo, box_hi, a, b):
     return s
 
 
+@nb.njit(inline="always", nogil=True, cache=True)
+def box_key(box_lo, box_hi, node, q, qi, tag):
+    """A lower bound on the key (metric.distance_key, metric of `tag`) between row qi of
+    q and any point in the box of `node`: the per-coordinate gaps combined by the
+    metric's own rule."""
+    if len(tag) == 0:
+        return box_squared_distance(box_lo, box_hi, node, q, qi)
+    s = 0.0
+    for k in range(box_lo.shape[1]):
+        v = q[qi, k]
+        t = 0.0
+        if v < box_lo[node, k]:
+            t = box_lo[node, k] - v
+        elif v > box_hi[node, k]:
+            t = v - box_hi[node, k]
+        s = accumulate(s, t, tag)
+    return s
+
+
+@nb.njit(inline="always", nogil=True, cache=True)
+def box_box_key(box_lo, box_hi, a, b, tag):
+    """A lower bound on the key between any point of box a and any point of box b."""
+    if len(tag) == 0:
+        return box_box_squared_distance(box_lo, box_hi, a, b)
+    s = 0.0
+    for k in range(box_lo.shape[1]):
+        t = 0.0
+        if box_hi[a, k] < box_lo[b, k]:
+            t = box_lo[b, k] - box_hi[a, k]
+        elif box_hi[b, k] < box_lo[a, k]:
+            t = box_lo[a, k] - box_hi[b, k]
+        s = accumulate(s, t, tag)
+    return s
+
+
 @nb.njit(nogil=True, cache=True)
 def near_leaves(start, stop, box_lo, box_hi, a, prune2, out, from_row):
     """Leaves holding a row at or after `from_row` whose boxes come within sqrt(prune2)
     of node a's box, in leaf order, written into `out` while it has room; returns how
     many there are (call again with a bigger `out` when that exceeds its length)."""
+    return near_leaves_by(start, stop, box_lo, box_hi, a, prune2, out, from_row, ())
+
+
+@nb.njit(nogil=True, cache=True)
+def near_leaves_by(start, stop, box_lo, box_hi, a, prune, out, from_row, tag):
+    """`near_leaves` in the metric of `tag`: `prune` is a key (metric.key_bound)."""
     n_nodes = start.shape[0]
     first_leaf = (n_nodes - 1) // 2
     stack = np.empty(STACK_DEPTH, dtype=np.int64)
@@ -196,7 +240,7 @@ def near_leaves(start, stop, box_lo, box_hi, a, prune2, out, from_row):
         node = stack[top]
         if stop[node] == start[node] or stop[node] <= from_row:
             continue
-        if box_box_squared_distance(box_lo, box_hi, a, node) > prune2:
+        if box_box_key(box_lo, box_hi, a, node, tag) > prune:
             continue
         if node >= first_leaf:
             if count < out.shape[0]:

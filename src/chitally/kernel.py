@@ -43,7 +43,16 @@ from scipy.spatial import cKDTree
 
 from . import kdtree
 from .blocks import Pacer, run_blocks, whole_calls
-from .metric import query_radius, squared_distance
+from .metric import (
+    accumulate,
+    distance_key,
+    key_bound,
+    key_length,
+    metric_tag,
+    minkowski_p,
+    query_radius,
+    within_key,
+)
 
 UNCAPPED = -1  # the compiled code's spelling of max_dim=None
 
@@ -149,8 +158,9 @@ def _edge_blocks(n: int, call) -> None:
 
 
 @nb.njit(nogil=True, cache=True)
-def _filter_pairs(coords, pairs, eps):
-    """Keep the candidate pairs that pass the one distance rule, as (lo, hi, d2)."""
+def _filter_pairs(coords, pairs, eps, mt):
+    """Keep the candidate pairs that pass the one distance rule, as (lo, hi, d2); d2 is
+    the key of the metric of `mt` (metric.metric_tag)."""
     k = pairs.shape[0]
     lo = np.empty(k, dtype=np.int32)
     hi = np.empty(k, dtype=np.int32)
@@ -159,8 +169,8 @@ def _filter_pairs(coords, pairs, eps):
     for t in range(k):
         i = pairs[t, 0]
         j = pairs[t, 1]
-        s = squared_distance(coords, i, coords, j)
-        if math.sqrt(s) <= eps:
+        s = distance_key(coords, i, coords, j, mt)
+        if within_key(s, eps, mt):
             if i > j:
                 i, j = j, i
             lo[m] = i
@@ -261,7 +271,7 @@ def _edge_graph(coords: np.ndarray, pairs: np.ndarray, eps: float):
     ehi int32[m], ed2 float64[m]): edge g is (elo[g], ehi[g]) of squared length ed2[g];
     CSR entry k is neighbour nbrs[k] through edge erank[k], rows in increasing rank.
     """
-    lo0, hi0, d20, m = _filter_pairs(coords, pairs, eps)
+    lo0, hi0, d20, m = _filter_pairs(coords, pairs, eps, ())
     return _sorted_graph(coords.shape[0], lo0, hi0, d20, m)
 
 
@@ -456,7 +466,7 @@ def width_tag(dims: int) -> tuple:
 
 
 @nb.njit(inline="always", nogil=True)
-def _within_mask(X, tag, i, j0, e2, buf):
+def _within_mask(X, tag, mt, i, j0, e2, buf):
     """Bit u set when d2(i, j0 + u) <= e2, for the _TREE_LEAF rows from j0.
 
     len(tag) coordinates unrolled; with an empty tag, the X.shape[0] coordinates build
@@ -468,7 +478,7 @@ def _within_mask(X, tag, i, j0, e2, buf):
             s = 0.0
             for k in range(width):
                 d = X[k, i] - X[k, j0 + u]
-                s += d * d
+                s = accumulate(s, d, mt)
             mask |= np.uint64(s <= e2) << np.uint64(u)
         return mask
     for u in range(_TREE_LEAF):
@@ -477,14 +487,14 @@ def _within_mask(X, tag, i, j0, e2, buf):
         xi = X[k, i]
         for u in range(_TREE_LEAF):
             d = xi - X[k, j0 + u]
-            buf[u] += d * d
+            buf[u] = accumulate(buf[u], d, mt)
     for u in range(_TREE_LEAF):
         mask |= np.uint64(buf[u] <= e2) << np.uint64(u)
     return mask
 
 
 @nb.njit(inline="always", nogil=True)
-def _closer_count(X, tag, c, thr):
+def _closer_count(X, tag, mt, c, thr):
     """(#j < c with d2(j, c) < thr, #j < c with d2(j, c) == thr) for len(tag) >= 1
     coordinates."""
     width = len(tag)
@@ -495,7 +505,7 @@ def _closer_count(X, tag, c, thr):
         s = 0.0
         for k in range(width):
             d = X[k, j] - X[k, c]
-            s += d * d
+            s = accumulate(s, d, mt)
         inside = j < c
         below += (s < thr) & inside
         equal += (s == thr) & inside
@@ -545,21 +555,21 @@ def build_tree(x: np.ndarray, leaf_size: int):
 
 
 @nb.njit(nogil=True, cache=True)
-def _sampled_edges(X, tag, h, e2, buf, samples, t0, t1):
+def _sampled_edges(X, tag, mt, h, e2, buf, samples, t0, t1):
     """Rows within reach of samples [t0, t1) of `samples` evenly spaced rows (themselves
     included)."""
     found = 0
     for t in range(t0, t1):
         i = t * h // samples
         for j0 in range(0, h, _TREE_LEAF):
-            mask = _within_mask(X, tag, i, j0, e2, buf)
+            mask = _within_mask(X, tag, mt, i, j0, e2, buf)
             if h - j0 < _TREE_LEAF:
                 mask &= ALL_ONES >> np.uint64(_TREE_LEAF - (h - j0))
             found += _popcount(mask)
     return found
 
 
-def _sampled_edge_count(X: np.ndarray, tag: tuple, h: int, e2: float, buf: np.ndarray) -> int:
+def _sampled_edge_count(X: np.ndarray, tag: tuple, h: int, e2: float, buf: np.ndarray, mt: tuple = ()) -> int:
     """A generous estimate of the edges among h rows, from the degrees of 64 evenly
     spaced rows: the join then rarely grows (and copies) its output. None (0) below
     _SAMPLED_ROWS rows, where 64 samples would cost a good part of the join itself and
@@ -570,7 +580,7 @@ def _sampled_edge_count(X: np.ndarray, tag: tuple, h: int, e2: float, buf: np.nd
     found = [0]
 
     def count(a: int, b: int) -> None:
-        found[0] += _sampled_edges(X, tag, h, e2, buf, samples, a, b)
+        found[0] += _sampled_edges(X, tag, mt, h, e2, buf, samples, a, b)
 
     if samples * h <= _FIRST_ROWS:
         count(0, samples)
@@ -589,7 +599,7 @@ def _rows_by_coordinate(xs: np.ndarray, pad: int) -> np.ndarray:
 
 
 @nb.njit(nogil=True, cache=True)
-def _join_leaves(X, tag, xs, perm, start, stop, box_lo, box_hi, eps, e2, prune2, max_edges,
+def _join_leaves(X, tag, mt, xs, perm, start, stop, box_lo, box_hi, eps, e2, prune2, max_edges,
                  a_from, a_to, olo, ohi, od2, m, near, buf):
     """The pairs within eps of leaves [a_from, a_to) (heap node numbers) with every leaf
     at or after them, appended to (olo, ohi, od2) from m; returns the arrays (grown when
@@ -601,15 +611,15 @@ def _join_leaves(X, tag, xs, perm, start, stop, box_lo, box_hi, eps, e2, prune2,
         if a0 == a1:
             continue
         # leaves wholly before leaf a were joined with it when their turn came
-        n_near = kdtree.near_leaves(start, stop, box_lo, box_hi, a, prune2, near, a0)
+        n_near = kdtree.near_leaves_by(start, stop, box_lo, box_hi, a, prune2, near, a0, mt)
         if n_near > near.shape[0]:
             near = np.empty(2 * n_near, dtype=np.int64)
-            kdtree.near_leaves(start, stop, box_lo, box_hi, a, prune2, near, a0)
+            kdtree.near_leaves_by(start, stop, box_lo, box_hi, a, prune2, near, a0, mt)
         for i in range(a0, a1):
             p = perm[i]
             for t in range(n_near):
                 b = near[t]
-                if b != a and kdtree.box_squared_distance(box_lo, box_hi, b, xs, i) > prune2:
+                if b != a and kdtree.box_key(box_lo, box_hi, b, xs, i, mt) > prune2:
                     continue
                 b0 = start[b]
                 b1 = stop[b]
@@ -633,14 +643,14 @@ def _join_leaves(X, tag, xs, perm, start, stop, box_lo, box_hi, eps, e2, prune2,
                     ohi = nhi
                     od2 = nd2
                 # the mask proposes (rows jfrom..b1-1 of the leaf only); the one rule decides
-                mask = _within_mask(X, tag, i, b0, e2, buf)
+                mask = _within_mask(X, tag, mt, i, b0, e2, buf)
                 mask &= ALL_ONES >> np.uint64(_TREE_LEAF - (b1 - b0))
                 mask &= ~((ONE << np.uint64(jfrom - b0)) - ONE)
                 while mask != ZERO:
                     j = b0 + _trailing_zeros(mask)
                     mask &= mask - ONE
-                    d2 = squared_distance(xs, i, xs, j)
-                    if math.sqrt(d2) <= eps:
+                    d2 = distance_key(xs, i, xs, j, mt)
+                    if within_key(d2, eps, mt):
                         q = perm[j]
                         if p < q:
                             olo[m] = p
@@ -655,9 +665,10 @@ def _join_leaves(X, tag, xs, perm, start, stop, box_lo, box_hi, eps, e2, prune2,
     return olo, ohi, od2, m, near
 
 
-def _tree_edges(coords: np.ndarray, eps: float, prune2: float, max_edges: int):
-    """Every pair within eps by the one rule, as (lo, hi, d2, m) like _filter_pairs;
-    m = -1 when there are more than max_edges.
+def _tree_edges(coords: np.ndarray, eps: float, prune2: float, max_edges: int, metric: str = "euclidean"):
+    """Every pair within eps by the one rule of `metric`, as (lo, hi, d2, m) like
+    _filter_pairs (d2 the metric's key; prune2 a key too, metric.key_bound); m = -1 when
+    there are more than max_edges.
 
     Leaf by leaf: one walk finds the leaves at or after it in leaf order whose boxes come
     within the pruning bound of its box, then each row is tested against the boxes of
@@ -676,15 +687,16 @@ def _tree_edges(coords: np.ndarray, eps: float, prune2: float, max_edges: int):
     buf = np.empty(_TREE_LEAF)
     n_nodes = start.shape[0]
     first_leaf = (n_nodes - 1) // 2
-    e2 = eps * eps * (1.0 + 1e-12) + 1e-300
+    mt = metric_tag(metric)
+    e2 = key_bound(eps, metric) * (1.0 + 1e-12) + 1e-300
     # a dense halo's estimate may be huge: beyond 2**27 edges the output grows as it fills
-    cap = max(1024, 4 * h, min(_sampled_edge_count(X, tag, h, e2, buf), 1 << 27))
+    cap = max(1024, 4 * h, min(_sampled_edge_count(X, tag, h, e2, buf, mt), 1 << 27))
     out = [np.empty(cap, dtype=np.int32), np.empty(cap, dtype=np.int32), np.empty(cap, dtype=np.float64),
            0, np.empty(64, dtype=np.int64)]
 
     def join(a: int, b: int) -> None:
         if out[3] >= 0:  # past max_edges: the rest is skipped
-            out[:] = _join_leaves(X, tag, xs, perm, start, stop, box_lo, box_hi, eps, e2, prune2,
+            out[:] = _join_leaves(X, tag, mt, xs, perm, start, stop, box_lo, box_hi, eps, e2, prune2,
                                   max_edges, a, b, out[0], out[1], out[2], out[3], out[4], buf)
 
     if n_nodes - first_leaf <= _FIRST_LEAVES:
@@ -973,7 +985,7 @@ def _reduced_euler(adj, L, W, stack, signs, degs, verts, stats):
 
 
 @nb.njit(nogil=True, cache=True)
-def _cap2_near(coords, tag, offsets, nbrs, erank, own_lo, own_hi, out_jump):
+def _cap2_near(coords, tag, offsets, nbrs, erank, own_lo, own_hi, out_jump, mt):
     """Cap 2 for len(tag) = the 1 to _UNROLLED_DIMS coordinates: c(e) = -1 + |L(e)| by
     distances."""
     m = coords.shape[1]
@@ -996,14 +1008,14 @@ def _cap2_near(coords, tag, offsets, nbrs, erank, own_lo, own_hi, out_jump):
                 xk = coords[w, k]
                 X[k, a] = xk
                 d = coords[p, k] - xk
-                v += d * d
+                v = accumulate(v, d, mt)
             T[a] = v
         for c in range(n_act):
             q = nbrs[s + c]
             if q < p:
                 continue
             thr = T[c]
-            below, equal = _closer_count(X, tag, c, thr)
+            below, equal = _closer_count(X, tag, mt, c, thr)
             if equal:
                 # equal lengths: the edge order breaks the tie by (lower id, higher id).
                 # e = (p, q) with p < q, and r is neither p nor q, so (r, q) comes first
@@ -1012,15 +1024,15 @@ def _cap2_near(coords, tag, offsets, nbrs, erank, own_lo, own_hi, out_jump):
                     d2 = 0.0
                     for k in range(m):
                         d = X[k, j] - X[k, c]
-                        d2 += d * d
+                        d2 = accumulate(d2, d, mt)
                     if d2 == thr and min(nbrs[s + j], q) < p:
                         below += 1
             out_jump[erank[s + c]] = below - 1
 
 
-def _count_cap2_near(coords, offsets, nbrs, erank, own_lo, own_hi, out_jump):
+def _count_cap2_near(coords, offsets, nbrs, erank, own_lo, own_hi, out_jump, mt=()):
     """_cap2_near for the number of coordinates of coords."""
-    _cap2_near(coords, width_tag(coords.shape[1]), offsets, nbrs, erank, own_lo, own_hi, out_jump)
+    _cap2_near(coords, width_tag(coords.shape[1]), offsets, nbrs, erank, own_lo, own_hi, out_jump, mt)
 
 
 @nb.njit(nogil=True, cache=True)
@@ -1318,7 +1330,7 @@ class _Frame:
 
 
 @nb.njit(nogil=True, cache=True)
-def _group_lengths(ed2, elo, g0, g1, own_lo, own_hi, out_jump, n):
+def _group_lengths(ed2, elo, g0, g1, own_lo, own_hi, out_jump, n, mt):
     """Group the nonzero jumps of the owned edges in [g0, g1) by length (edges are in
     increasing d2) after the first n groups, in ed2 (now lengths) and out_jump; returns
     the new n. Entry g is written at an index of at most g, after it was read."""
@@ -1326,7 +1338,7 @@ def _group_lengths(ed2, elo, g0, g1, own_lo, own_hi, out_jump, n):
         if own_lo <= elo[g] < own_hi:
             j = out_jump[g]
             if j != 0:
-                v = math.sqrt(ed2[g])
+                v = key_length(ed2[g], mt)
                 if n > 0 and v == ed2[n - 1]:
                     out_jump[n - 1] += j
                 else:
@@ -1351,12 +1363,13 @@ def _owned_count(elo: np.ndarray, lo: int, hi: int, h: int) -> int:
 
 
 def _collect(ed2: np.ndarray, elo: np.ndarray, lo: int, hi: int, out_jump: np.ndarray,
-             n_vertices: int) -> tuple[np.ndarray, np.ndarray]:
+             n_vertices: int, metric: str = "euclidean") -> tuple[np.ndarray, np.ndarray]:
     """The jump table of the owned edges and vertices; consumes ed2 and out_jump."""
     n = [0]
+    mt = metric_tag(metric)
 
     def group(a: int, b: int) -> None:
-        n[0] = _group_lengths(ed2, elo, a, b, lo, hi, out_jump, n[0])
+        n[0] = _group_lengths(ed2, elo, a, b, lo, hi, out_jump, n[0], mt)
 
     _edge_blocks(ed2.shape[0], group)
     k = [0]
@@ -1424,8 +1437,8 @@ class JumpTable:
     stats: KernelStats = field(default_factory=KernelStats, compare=False)
 
 
-def _halo_edges(coords: np.ndarray, eps: float):
-    """(lo, hi, d2, m): the m edges of the halo, in any order."""
+def _halo_edges(coords: np.ndarray, eps: float, metric: str = "euclidean"):
+    """(lo, hi, d2, m): the m edges of the halo in `metric` (d2 its key), in any order."""
     eps = float(eps)
     h = coords.shape[0]
     if not eps >= 0.0:  # negative or nan: no pair passes the rule
@@ -1435,22 +1448,21 @@ def _halo_edges(coords: np.ndarray, eps: float):
         # the tree's boxes and median splits assume finite coordinates; keep the old
         # behaviour for anything else
         tree = cKDTree(coords)
-        pairs = tree.query_pairs(query_radius(eps), output_type="ndarray")
+        pairs = tree.query_pairs(query_radius(eps), p=minkowski_p(metric), output_type="ndarray")
         if pairs.shape[0] > _MAX_EDGES:
             raise ValueError(f"a halo of {pairs.shape[0]} candidate pairs is too large for one task")
         if pairs.dtype != np.int64 and pairs.dtype != np.int32:
             pairs = pairs.astype(np.int64)
-        return _filter_pairs(coords, pairs, eps)
-    reach = query_radius(eps)
-    lo0, hi0, d20, m = _tree_edges(coords, eps, reach * reach, _MAX_EDGES)
+        return _filter_pairs(coords, pairs, eps, metric_tag(metric))
+    lo0, hi0, d20, m = _tree_edges(coords, eps, key_bound(query_radius(eps), metric), _MAX_EDGES, metric)
     if m < 0:
         raise ValueError(f"a halo of more than {_MAX_EDGES} edges is too large for one task")
     return lo0, hi0, d20, m
 
 
-def _halo_graph(coords: np.ndarray, eps: float):
+def _halo_graph(coords: np.ndarray, eps: float, metric: str = "euclidean"):
     """(offsets, nbrs, erank, elo, ehi, ed2) of the halo; see _edge_graph."""
-    return _sorted_graph(coords.shape[0], *_halo_edges(coords, eps))
+    return _sorted_graph(coords.shape[0], *_halo_edges(coords, eps, metric))
 
 
 @nb.njit(nogil=True, cache=True)
@@ -1481,12 +1493,12 @@ def _bucket_values(d2, g0, g1, scale, top, fill, out, scatter):
 
 
 @nb.njit(nogil=True, cache=True)
-def _group_values(d2, g0, g1, counts, n):
+def _group_values(d2, g0, g1, counts, n, mt):
     """Group the square roots of the sorted d2[g0:g1] after the first n groups: lengths
     into d2 itself (entry g is written at an index of at most g, after it was read),
     their multiplicities into counts; returns the new n."""
     for g in range(g0, g1):
-        v = math.sqrt(d2[g])
+        v = key_length(d2[g], mt)
         if n > 0 and v == d2[n - 1]:
             counts[n - 1] += 1
         else:
@@ -1523,7 +1535,7 @@ def _sorted_values(d2: np.ndarray) -> np.ndarray:
     return out
 
 
-def _cap1(h: int, edges: tuple, lo: int, hi: int):
+def _cap1(h: int, edges: tuple, lo: int, hi: int, metric: str = "euclidean"):
     """Cap 1: -1 per owned edge at its length. Only the owned edges' squared lengths are
     sorted, and their square roots grouped: no edge order, no CSR. Returns (values,
     jumps, owned edges)."""
@@ -1539,9 +1551,10 @@ def _cap1(h: int, edges: tuple, lo: int, hi: int):
     d2 = _sorted_values(d20[:m])
     counts = np.empty(m, dtype=np.int64)
     n = [0]
+    mt = metric_tag(metric)
 
     def group(a: int, b: int) -> None:
-        n[0] = _group_values(d2, a, b, counts, n[0])
+        n[0] = _group_values(d2, a, b, counts, n[0], mt)
 
     _edge_blocks(m, group)
     jumps = counts[: n[0]]
@@ -1580,7 +1593,7 @@ _FIRST_WORK = 1 << 16
 
 
 def _count(coords, offsets, nbrs, erank, lo: int, hi: int, cap: int, out_jump: np.ndarray,
-           threads: int | None) -> np.ndarray:
+           threads: int | None, mt: tuple = ()) -> np.ndarray:
     """Fill out_jump for the owned edges (cap >= 2) in blocks of rows over threads;
     returns the summed counters."""
     h = offsets.shape[0] - 1
@@ -1589,7 +1602,7 @@ def _count(coords, offsets, nbrs, erank, lo: int, hi: int, cap: int, out_jump: n
         tag = width_tag(coords.shape[1])
 
         def call(a: int, b: int, _state: None) -> None:
-            _cap2_near(coords, tag, offsets, nbrs, erank, a, b, out_jump)
+            _cap2_near(coords, tag, offsets, nbrs, erank, a, b, out_jump, mt)
 
         def state() -> None:
             return None
@@ -1641,6 +1654,7 @@ def count_jumps(
     threads: int | None = 1,
     *,
     blocks: bool = True,
+    metric: str = "euclidean",
 ) -> JumpTable:
     """The jump table of the owned rows of a halo.
 
@@ -1663,6 +1677,8 @@ def count_jumps(
         a KeyboardInterrupt is raised within a fraction of a second (default). False
         makes one call per loop, which cannot be interrupted before its end; the result
         is the same.
+    metric : {"euclidean", "manhattan", "chebyshev"}
+        The metric of the edge lengths, by its one rule in :mod:`chitally.metric`.
 
     Returns
     -------
@@ -1689,10 +1705,10 @@ def count_jumps(
         return JumpTable(values, jumps, stats)
     with contextlib.nullcontext() if blocks else whole_calls():
         t0 = time.perf_counter()
-        edges = _halo_edges(coords, eps)
+        edges = _halo_edges(coords, eps, metric)
         if cap == 1:
             t1 = time.perf_counter()
-            values, jumps, stats.edges = _cap1(h, edges, lo, hi)
+            values, jumps, stats.edges = _cap1(h, edges, lo, hi, metric)
             counted = np.zeros(len(STAT_NAMES), dtype=np.int64)
         else:
             offsets, nbrs, erank, elo, _ehi, ed2 = _sorted_graph(h, *edges)
@@ -1700,8 +1716,8 @@ def count_jumps(
             t1 = time.perf_counter()
             out_jump = np.empty(ed2.shape[0], dtype=np.int64)
             stats.edges = _owned_count(elo, lo, hi, h)
-            counted = _count(coords, offsets, nbrs, erank, lo, hi, cap, out_jump, threads)
-            values, jumps = _collect(ed2, elo, lo, hi, out_jump, hi - lo)
+            counted = _count(coords, offsets, nbrs, erank, lo, hi, cap, out_jump, threads, metric_tag(metric))
+            values, jumps = _collect(ed2, elo, lo, hi, out_jump, hi - lo, metric)
     t2 = time.perf_counter()
     for name, value in zip(STAT_NAMES[1:], counted[1:]):
         setattr(stats, name, int(value))
@@ -1715,7 +1731,7 @@ def count_jumps(
 # ---------------------------------------------------------------------------------------
 
 
-def compiled_calls(max_dim: int | None, dims: int) -> list[tuple[object, tuple]]:
+def compiled_calls(max_dim: int | None, dims: int, metric: str = "euclidean") -> list[tuple[object, tuple]]:
     """The compiled functions `count_jumps` calls from Python for one cap and number of
     coordinates, each with the numba argument types of its call.
 
@@ -1732,23 +1748,25 @@ def compiled_calls(max_dim: int | None, dims: int) -> list[tuple[object, tuple]]
     I4, I8, F8, U8 = (types.Array(t, 1, "C") for t in (types.int32, types.int64, types.float64, types.uint64))
     F8_2, U8_2 = types.Array(types.float64, 2, "C"), types.Array(types.uint64, 2, "C")
     tag = nb.typeof(width_tag(int(dims)))
+    mt = nb.typeof(metric_tag(metric))
     calls: list[tuple[object, tuple]] = [
         (_split_nodes, (F8_2, I8, I8, I8, F8_2, F8_2, i8, i8, i8)),
-        (_sampled_edges, (F8_2, tag, i8, f8, F8, i8, i8, i8)),
-        (_join_leaves, (F8_2, tag, F8_2, I8, I8, I8, F8_2, F8_2, f8, f8, f8, i8, i8, i8, I4, I4, F8, i8, I8, F8)),
+        (_sampled_edges, (F8_2, tag, mt, i8, f8, F8, i8, i8, i8)),
+        (_join_leaves, (F8_2, tag, mt, F8_2, I8, I8, I8, F8_2, F8_2, f8, f8, f8, i8, i8, i8, I4, I4, F8, i8, I8,
+                        F8)),
     ]
     if cap == 1:
         calls += [(_keep_owned, (I4, F8, i8, i8, i8, i8, i8)),
                   (_bucket_values, (F8, i8, i8, f8, i8, I8, F8, types.boolean)),
-                  (_group_values, (F8, i8, i8, I8, i8))]
+                  (_group_values, (F8, i8, i8, I8, i8, mt))]
         return calls
     calls += [(_coarse_count, (I4, I4, F8, i8, i8, f8, i8, I8, I8)),
               (_coarse_scatter, (I4, I4, F8, i8, i8, f8, i8, I8, I4, I4, F8)),
               (_fine_sort, (I4, I4, F8, I8, i8, i8, f8, I8, I4, I4, F8)),
               (_fill_rows, (I4, I4, i8, i8, I8, I4, I4)),
-              (_group_lengths, (F8, I4, i8, i8, i8, i8, I8, i8))]
+              (_group_lengths, (F8, I4, i8, i8, i8, i8, I8, i8, mt))]
     if cap == 2 and 1 <= dims <= _UNROLLED_DIMS:
-        calls.append((_cap2_near, (F8_2, tag, I8, I4, I4, i8, i8, I8)))
+        calls.append((_cap2_near, (F8_2, tag, I8, I4, I4, i8, i8, I8, mt)))
     elif cap == 2:
         calls.append((_count_cap2, (I8, I4, I4, i8, i8, I8, I8)))
     else:

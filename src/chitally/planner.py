@@ -16,7 +16,13 @@ from concurrent.futures import ThreadPoolExecutor
 import numba as nb
 import numpy as np
 
-from chitally.metric import query_radius, squared_distance, within
+from chitally.metric import (
+    distance_key,
+    metric_tag,
+    query_radius,
+    validate_metric,
+    within_key,
+)
 from chitally.plan import Cover, Plan
 
 __all__ = [
@@ -40,7 +46,7 @@ DEFAULT_MAX_TASK_ROWS = 100_000
 
 
 @nb.njit(parallel=True, cache=True)
-def _degrees(x, ball_offsets, centre_xyz, nb_offsets, nb_balls, reach, eps):
+def _degrees(x, ball_offsets, centre_xyz, nb_offsets, nb_balls, reach, eps, tag):
     """Eps-neighbour counts of every row (exact rule, coincident points included).
 
     Returns (deg, up): all neighbours, and those with a larger row id (the edges the row
@@ -57,10 +63,10 @@ def _degrees(x, ball_offsets, centre_xyz, nb_offsets, nb_balls, reach, eps):
             above = 0
             for t in range(nb_offsets[b], nb_offsets[b + 1]):
                 other = nb_balls[t]
-                if not within(squared_distance(x, i, centre_xyz, other), reach):
+                if not within_key(distance_key(x, i, centre_xyz, other, tag), reach, tag):
                     continue
                 for j in range(ball_offsets[other], ball_offsets[other + 1]):
-                    if within(squared_distance(x, i, x, j), eps):
+                    if within_key(distance_key(x, i, x, j, tag), eps, tag):
                         if j < i:
                             below += 1
                         elif j > i:
@@ -134,7 +140,7 @@ def _ball_of_row(ball_offsets, row):
 
 
 @nb.njit(nogil=True, cache=True)
-def _task_halo(x, ball_offsets, centre_xyz, nb_offsets, nb_balls, row_start, row_stop, reach, eps):
+def _task_halo(x, ball_offsets, centre_xyz, nb_offsets, nb_balls, row_start, row_stop, reach, eps, tag):
     """Exact halo of the task owning rows row_start..row_stop-1: the sorted rows within
     eps of an owned row, the owned rows included.
 
@@ -184,12 +190,12 @@ def _task_halo(x, ball_offsets, centre_xyz, nb_offsets, nb_balls, row_start, row
         for i in range(i0, i1):
             for t in range(near.shape[0]):
                 other = near[t]
-                if not within(squared_distance(x, i, centre_xyz, other), reach):
+                if not within_key(distance_key(x, i, centre_xyz, other, tag), reach, tag):
                     continue
                 base = cand_base[where[t]]
                 j0 = ball_offsets[other]
                 for j in range(j0, ball_offsets[other + 1]):
-                    if within(squared_distance(x, i, x, j), eps):
+                    if within_key(distance_key(x, i, x, j, tag), eps, tag):
                         mark[base + j - j0] = True
     n_halo = 0
     for k in range(mark.shape[0]):
@@ -254,6 +260,7 @@ def make_plan(
     *,
     task_cost: float | None = None,
     max_task_rows: int | None = None,
+    metric: str = "euclidean",
 ) -> Plan:
     """Cut the ball-sorted rows into tasks with exact halos, heaviest first.
 
@@ -273,13 +280,15 @@ def make_plan(
         total * DEFAULT_TASK_ROWS / N)`` (see the module constants for why).
     max_task_rows : int, optional
         Most rows a task may own; default ``DEFAULT_MAX_TASK_ROWS`` (100,000).
+    metric : {"euclidean", "manhattan", "chebyshev"}
+        The metric of every distance; the cover must have been built in it.
 
     Returns
     -------
     Plan
         Tasks own contiguous row ranges that partition ``0..N-1``, ordered by decreasing
         cost (ties by ``row_start``). A task's halo is exactly the sorted rows within eps
-        (by ``metric.within``) of one of its rows, its own rows included.
+        (by ``metric.within_key``) of one of its rows, its own rows included.
 
     Notes
     -----
@@ -329,7 +338,8 @@ def make_plan(
     # row i; widened, because skipping a ball that holds a neighbour would be a bug.
     reach = query_radius(float(cover.radius) + eps)
 
-    deg, up = _degrees(x, ball_offsets, centre_xyz, nb_offsets, nb_balls, reach, eps)
+    tag = metric_tag(validate_metric(metric))
+    deg, up = _degrees(x, ball_offsets, centre_xyz, nb_offsets, nb_balls, reach, eps, tag)
     row_cost = _row_cost(deg, max_dim)
     total = float(row_cost.sum())
     if task_cost is None:
@@ -344,7 +354,7 @@ def make_plan(
 
     def one(k: int) -> np.ndarray:
         rows = (int(starts[k]), int(stops[k]))
-        return _task_halo(x, ball_offsets, centre_xyz, nb_offsets, nb_balls, *rows, reach, eps)
+        return _task_halo(x, ball_offsets, centre_xyz, nb_offsets, nb_balls, *rows, reach, eps, tag)
 
     n_threads = max(1, min(nb.get_num_threads(), len(starts)))
     if n_threads == 1:

@@ -67,6 +67,14 @@ class Interrupted(Exception):
         self.url, self.done, self.n_tasks, self.signal = url, done, n_tasks, signal
 
 
+def _implied(kind: str) -> dict[str, Any]:
+    """The parameters a store of `kind` made before they existed was made for."""
+    try:
+        return dict(kind_of(kind).defaults)
+    except ValueError:  # not a kind of this chitally: nothing is implied
+        return {}
+
+
 def open_or_create(url: str, kind: str, params: Mapping[str, Any], fingerprint: Mapping[str, Any],
                    make_spec: Callable[[], JobSpec], *,
                    storage_options: Mapping[str, Any] | None = None,
@@ -83,7 +91,7 @@ def open_or_create(url: str, kind: str, params: Mapping[str, Any], fingerprint: 
     except IncompleteStore:
         store = RunStore.open(url, storage_options=storage_options, allow_incomplete=True)
         try:
-            store.rebuild_marker(params, fingerprint)
+            store.rebuild_marker(params, fingerprint, _implied(kind))
         except StoreError as exc:
             logger.info("%s: the marker cannot be rebuilt (%s)", url, exc)
             return RunStore.create(url, make_spec(), storage_options=storage_options, discard=discard)
@@ -92,7 +100,7 @@ def open_or_create(url: str, kind: str, params: Mapping[str, Any], fingerprint: 
         if "is a file" in str(exc):
             raise
         return RunStore.create(url, make_spec(), storage_options=storage_options, discard=discard)
-    store.check_matches(kind, params, fingerprint)
+    store.check_matches(kind, params, fingerprint, _implied(kind))
     return store
 
 

@@ -28,11 +28,14 @@ from .inprocess import leaf_order
 from .kernel import count_jumps
 from .metric import (
     QUERY_SLACK,
+    distance_key,
     lengths,
-    pair_squared_distances,
+    metric_tag,
+    minkowski_p,
+    pair_keys,
     query_radius,
-    squared_distance,
-    within,
+    validate_metric,
+    within_key,
 )
 
 # The planner's models are private functions of planner.py; they are imported, not
@@ -306,7 +309,24 @@ def _caps(max_dim: Any) -> tuple[int | None, ...]:
 # --------------------------------------------------------------------------- degrees
 
 
-def _sample_degrees(tree: cKDTree, x: np.ndarray, rows: np.ndarray, eps: float, workers: int) -> np.ndarray:
+class _MetricTree:
+    """A cKDTree that answers every query in one metric (its Minkowski p); the exact
+    rule of that metric then decides, as for the Euclidean one."""
+
+    def __init__(self, x: np.ndarray, metric: str) -> None:
+        self.metric = metric
+        self.p = minkowski_p(metric)
+        # cKDTree only proposes; the sliding-midpoint tree builds in a third of the time.
+        self.tree = cKDTree(x, leafsize=16, balanced_tree=False, compact_nodes=False)
+
+    def query(self, x: np.ndarray, k: int = 1, **kw: Any) -> Any:
+        return self.tree.query(x, k=k, p=self.p, **kw)
+
+    def query_ball_point(self, x: np.ndarray, r: float, **kw: Any) -> Any:
+        return self.tree.query_ball_point(x, r, p=self.p, **kw)
+
+
+def _sample_degrees(tree: _MetricTree, x: np.ndarray, rows: np.ndarray, eps: float, workers: int) -> np.ndarray:
     """Exact degrees (by the rule) of `rows` against every point."""
     q = x[rows]
     outer = tree.query_ball_point(q, query_radius(eps), return_length=True, workers=workers)
@@ -315,25 +335,25 @@ def _sample_degrees(tree: cKDTree, x: np.ndarray, rows: np.ndarray, eps: float, 
     for k in np.flatnonzero(outer != inner):
         # A point at (nearly) exactly eps: the rule decides.
         cand = np.asarray(tree.query_ball_point(q[k], query_radius(eps)), dtype=np.int64)
-        d2 = pair_squared_distances(x, np.full(cand.shape[0], rows[k]), x, cand)
-        deg[k] = int(np.count_nonzero(lengths(d2) <= eps)) - 1
+        d2 = pair_keys(x, np.full(cand.shape[0], rows[k]), x, cand, tree.metric)
+        deg[k] = int(np.count_nonzero(lengths(d2, tree.metric) <= eps)) - 1
     return deg
 
 
-def _neighbour_lists(tree: cKDTree, x: np.ndarray, rows: np.ndarray, eps: float, workers: int):
+def _neighbour_lists(tree: _MetricTree, x: np.ndarray, rows: np.ndarray, eps: float, workers: int):
     """Each row's neighbours within eps by the rule, self excluded, as flat arrays:
     (owner: index into rows, neighbour id, distance)."""
     lists = tree.query_ball_point(x[rows], query_radius(eps), workers=workers)
     sizes = np.array([len(c) for c in lists], dtype=np.int64)
     owner = np.repeat(np.arange(rows.shape[0]), sizes)
     cand = np.concatenate([np.asarray(c, dtype=np.int64) for c in lists]) if sizes.sum() else sizes[:0]
-    dist = lengths(pair_squared_distances(x, rows[owner], x, cand))
+    dist = lengths(pair_keys(x, rows[owner], x, cand, tree.metric), tree.metric)
     keep = (dist <= eps) & (cand != rows[owner])
     return owner[keep], cand[keep], dist[keep]
 
 
 @nb.njit(nogil=True, cache=True)
-def _link_edges(x, offsets, nbrs, eps):
+def _link_edges(x, offsets, nbrs, eps, tag):
     """For each row, the pairs of its neighbours that are within eps of each other
     (the triangles at the row), by the one rule."""
     out = np.zeros(offsets.shape[0] - 1, dtype=np.int64)
@@ -341,7 +361,7 @@ def _link_edges(x, offsets, nbrs, eps):
         count = 0
         for a in range(offsets[r], offsets[r + 1]):
             for b in range(a + 1, offsets[r + 1]):
-                if within(squared_distance(x, nbrs[a], x, nbrs[b]), eps):
+                if within_key(distance_key(x, nbrs[a], x, nbrs[b], tag), eps, tag):
                     count += 1
         out[r] = count
     return out
@@ -361,7 +381,7 @@ def _triangles(tree, x, rows, eps_list, degrees, n_points, workers) -> list[floa
         keep = dist <= eps_list[i]
         offsets = np.zeros(rows.shape[0] + 1, dtype=np.int64)
         np.cumsum(np.bincount(owner[keep], minlength=rows.shape[0]), out=offsets[1:])
-        t = _link_edges(x, offsets, np.ascontiguousarray(nbrs[keep]), float(eps_list[i]))
+        t = _link_edges(x, offsets, np.ascontiguousarray(nbrs[keep]), float(eps_list[i]), metric_tag(tree.metric))
         # sum, then scale: exactly the triangle count when every row is sampled
         out[i] = float(t.sum()) * (n_points / rows.shape[0]) / 3.0
     return out
@@ -374,7 +394,7 @@ def _sorted_neighbour_distances(tree, x, rows, k, workers) -> np.ndarray:
     """(n, k) distances by the rule from each row to its k nearest other points, sorted."""
     _, idx = tree.query(x[rows], k=k + 1, workers=workers)
     idx = np.asarray(idx, dtype=np.int64).reshape(rows.shape[0], k + 1)
-    d = lengths(pair_squared_distances(x, np.repeat(rows, k + 1), x, idx.ravel())).reshape(idx.shape)
+    d = lengths(pair_keys(x, np.repeat(rows, k + 1), x, idx.ravel(), tree.metric), tree.metric).reshape(idx.shape)
     is_self = idx == rows[:, None]
     # More than k points coincide with a row: cKDTree may list k + 1 of them and not the
     # row itself; they are all at distance 0, so drop the last.
@@ -401,7 +421,7 @@ def _degree_reached(tree, x, rows, dist, target, workers) -> float:
     for r in rows[full]:
         cand = np.asarray(tree.query_ball_point(x[r], query_radius(v)), dtype=np.int64)
         cand = cand[cand != r]
-        d = lengths(pair_squared_distances(x, np.full(cand.shape[0], r), x, cand))
+        d = lengths(pair_keys(x, np.full(cand.shape[0], r), x, cand, tree.metric), tree.metric)
         parts.append(d[d <= v])
     values = np.concatenate(parts)
     return float(np.partition(values, need - 1)[need - 1])
@@ -433,7 +453,7 @@ class _Timer:
     one twice when the budget allows.
     """
 
-    def __init__(self, tree: cKDTree, x: np.ndarray, budget: float, pairs: int, workers: int) -> None:
+    def __init__(self, tree: _MetricTree, x: np.ndarray, budget: float, pairs: int, workers: int) -> None:
         self.tree, self.x, self.workers = tree, x, workers
         self.left = float(budget)
         self.pairs_left = pairs
@@ -461,14 +481,13 @@ class _Timer:
         coords = np.ascontiguousarray(np.concatenate(parts))
         # Rates need no exact rule: cKDTree's own pairs are close enough here. The halo
         # holds every neighbour of an owned row, so their degrees in it are exact.
-        pairs = cKDTree(coords).query_pairs(query_radius(eps), output_type="ndarray")
+        pairs = cKDTree(coords).query_pairs(query_radius(eps), p=self.tree.p, output_type="ndarray")
         deg = np.bincount(pairs.ravel(), minlength=coords.shape[0])[:k]
         return coords, k, deg, pairs.shape[0]
 
-    @staticmethod
-    def _run(coords: np.ndarray, eps: float, cap: int | None, owned: int) -> tuple[float, float]:
+    def _run(self, coords: np.ndarray, eps: float, cap: int | None, owned: int) -> tuple[float, float]:
         """(edge seconds, counting seconds) of the kernel on the patch, one thread."""
-        stats = count_jumps(coords, eps, cap, owned=(0, owned), threads=1).stats
+        stats = count_jumps(coords, eps, cap, owned=(0, owned), threads=1, metric=self.tree.metric).stats
         return stats.seconds_graph, stats.seconds_count
 
     def measure(self, centre: int, centre_degree: int, eps: float, cap: int | None):
@@ -488,7 +507,8 @@ class _Timer:
             # The first calls load the compiled kernel, which is not part of any rate: a
             # small clique near the centre takes every path a patch will.
             offsets = np.random.default_rng(0).uniform(-0.2 * eps, 0.2 * eps, (12, self.x.shape[1]))
-            count_jumps(np.ascontiguousarray(self.x[centre] + offsets), eps, cap, owned=(0, 6), threads=1)
+            count_jumps(np.ascontiguousarray(self.x[centre] + offsets), eps, cap, owned=(0, 6), threads=1,
+                        metric=self.tree.metric)
             self.warm.add(cap)
         spent = 0.0
         for _ in range(3):
@@ -533,6 +553,7 @@ def scan_eps(
     seed: int = 0,
     threads: int = 1,
     timing_seconds: float = DEFAULT_TIMING_SECONDS,
+    metric: str = "euclidean",
 ) -> ScanReport:
     """Estimate, for each eps, what a run would cost: degrees, edges, time and memory.
 
@@ -556,6 +577,8 @@ def scan_eps(
     timing_seconds : float
         Seconds of kernel time to spend on the time estimates, shared by every eps and
         cap (>= 0; 0 times nothing and leaves the times None).
+    metric : {"euclidean", "manhattan", "chebyshev"}
+        The metric of the distances (degrees, nearest neighbours, the timed kernel).
 
     Returns
     -------
@@ -600,8 +623,7 @@ def scan_eps(
     rng = np.random.default_rng(seed)
     n_s = min(sample, n)
     rows = np.arange(n, dtype=np.int64) if n_s == n else np.sort(rng.choice(n, size=n_s, replace=False))
-    # cKDTree only proposes; the sliding-midpoint tree builds in a third of the time.
-    tree = cKDTree(x, leafsize=16, balanced_tree=False, compact_nodes=False)
+    tree = _MetricTree(x, validate_metric(metric))
 
     k = min(n - 1, 2 * max(DEGREE_TARGETS))
     quantiles: dict[str, float] | None = None

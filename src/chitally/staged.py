@@ -61,6 +61,7 @@ def plan_on_cluster(url: str, points: np.ndarray | None, params: Params, stage: 
     so = storage_options
     block_rows = int(stage.block_rows)
     base_params = {"eps": float(params.eps), "max_dim": params.max_dim, "task_cost": params.task_cost,
+                   "metric": params.metric,
                    **stage.as_dict(params.eps), "source": None if source is None else dict(source)}
     fp = dict(fingerprint)
     n_blocks = max(1, -(-int(n_rows) // block_rows))
@@ -274,7 +275,8 @@ def resume_planning(url: str, session: Session, *, storage_options: Mapping[str,
     recorded (input, parameters), then create the run store."""
     count = RunStore.open(stage_url(url, "count"), storage_options=storage_options)
     p, a = count.params, count.attrs
-    params = Params.checked(p["eps"], p["max_dim"], None, p.get("task_cost"))
+    params = Params.checked(p["eps"], p["max_dim"], None, p.get("task_cost"),
+                            metric=p.get("metric", "euclidean"))
     stage = StageParams(p["cell_size"], p["region_rows"], p["block_rows"], p.get("part_jumps"))
     points = count.read_input("points") if "points" in count.input_names else None
     return plan_on_cluster(url, points, params, stage, session, n_rows=int(a["n_rows"]),

@@ -12,6 +12,7 @@ CLOUD = JobKind(
     outputs=(("values", "<f8"), ("jumps", "<i8")),
     read="chitally.jobs.cloud:read_curve",
     unit="points",
+    defaults=(("metric", "euclidean"),),
 )
 
 BATCH = JobKind(
@@ -21,6 +22,7 @@ BATCH = JobKind(
     outputs=(("rows", "<i8"),),
     read="chitally.jobs.batch:read_matrix",
     unit="clouds",
+    defaults=(("metric", "euclidean"),),
 )
 
 BANDS = JobKind(

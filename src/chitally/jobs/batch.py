@@ -38,6 +38,7 @@ from ..graph_kernel import (
 from ..graph_sources import GraphCollection
 from ..graphs import filtered_graph, owned_jumps
 from ..kernel import count_jumps
+from ..metric import validate_metric
 from ..store import JobSpec, ResultDamaged, RunStore
 from ..validate import (
     InputError,
@@ -62,12 +63,14 @@ class BatchParams:
     max_dim: int | None = None
     normalise: bool = False
     task_cost: float | None = None
+    metric: str = "euclidean"
 
     @staticmethod
     def checked(eps: Any, grid: Any, max_dim: Any = None, normalise: bool = False,
-                task_cost: Any = None, *, names: Mapping[str, str] | None = None) -> BatchParams:
+                task_cost: Any = None, *, names: Mapping[str, str] | None = None,
+                metric: Any = "euclidean") -> BatchParams:
         n = {"eps": "eps", "grid": "grid", "max_dim": "max_dim", "task_cost": "task_cost",
-             **(names or {})}
+             "metric": "metric", **(names or {})}
         eps = validate_eps(eps, name=n["eps"])
         g = checked_grid(grid, n["grid"])
         if g[0] < 0 or g[-1] > eps:
@@ -75,11 +78,13 @@ class BatchParams:
             raise InputError(f"{n['grid']} value {float(bad)!r} lies outside [0, eps] = [0, {eps!r}]")
         cost = None if task_cost is None else validate_positive(task_cost, name=n["task_cost"])
         return BatchParams(eps, tuple(float(x) for x in g), validate_max_dim(max_dim, name=n["max_dim"]),
-                           bool(normalise), cost)
+                           bool(normalise), cost, validate_metric(metric, name=n["metric"]))
 
     def as_dict(self) -> dict[str, Any]:
+        # the metric is always written; a store made before there was a choice reads as
+        # Euclidean (the kind's `defaults`)
         return {"eps": self.eps, "grid": list(self.grid), "max_dim": self.max_dim,
-                "normalise": self.normalise, "task_cost": self.task_cost}
+                "normalise": self.normalise, "task_cost": self.task_cost, "metric": self.metric}
 
 
 def checked_grid(grid: Any, name: str = "grid") -> np.ndarray:
@@ -100,14 +105,16 @@ def checked_grid(grid: Any, name: str = "grid") -> np.ndarray:
 
 
 def cloud_rows(clouds: Sequence[np.ndarray], eps: float, max_dim: int | None,
-               grid: np.ndarray) -> np.ndarray:
+               grid: np.ndarray, metric: str = "euclidean") -> np.ndarray:
     """Each cloud's exact curve sampled on `grid`: an int64 array (clouds x grid).
 
-    The one computation behind the batch task and the in-process feature matrix.
+    The one computation behind the batch task and the in-process feature matrix;
+    distances in `metric` (see :mod:`chitally.metric`).
     """
     out = np.empty((len(clouds), grid.size), dtype=np.int64)
     for k, coords in enumerate(clouds):
-        table = count_jumps(np.ascontiguousarray(coords, dtype=np.float64), eps, max_dim, threads=1)
+        table = count_jumps(np.ascontiguousarray(coords, dtype=np.float64), eps, max_dim, threads=1,
+                            metric=metric)
         curve = Curve.from_jumps(table.values, table.jumps, eps=eps, max_dim=max_dim,
                                  n_points=coords.shape[0])
         out[k] = curve.sample(grid)
@@ -481,7 +488,8 @@ def compute_task(store: RunStore, i: int, *, threads: int = 1) -> tuple[dict[str
     rows = store.read_input("points", slice(int(offsets[0]), int(offsets[-1])), task=i)
     base = int(offsets[0])
     clouds = [rows[int(lo) - base:int(hi) - base] for lo, hi in zip(offsets[:-1], offsets[1:])]
-    out = cloud_rows(clouds, float(p["eps"]), p["max_dim"], np.asarray(p["grid"], np.float64))
+    out = cloud_rows(clouds, float(p["eps"]), p["max_dim"], np.asarray(p["grid"], np.float64),
+                     validate_metric(p.get("metric")))
     return {"rows": out}, {"clouds": b - a, "points": int(offsets[-1] - offsets[0])}
 
 

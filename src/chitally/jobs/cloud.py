@@ -17,6 +17,7 @@ import numpy as np
 from ..cover import build_cover
 from ..curve import Curve, merge_jumps
 from ..kernel import count_jumps
+from ..metric import validate_metric
 from ..plan import Cover, Plan
 from ..planner import make_plan
 from ..store import JobSpec, ResultDamaged, RunStore, fingerprint
@@ -34,6 +35,7 @@ class Params:
     max_dim: int | None = None
     cover_radius: float | None = None
     task_cost: float | None = None
+    metric: str = "euclidean"
 
     def as_dict(self) -> dict[str, Any]:
         return {
@@ -43,29 +45,34 @@ class Params:
             # not list a radius the user never set among the differences
             "cover_radius": None if self.cover_radius is None else float(self.cover_radius),
             "task_cost": None if self.task_cost is None else float(self.task_cost),
+            # always written; a store made before there was a choice reads as Euclidean
+            # (the kind's `defaults`)
+            "metric": self.metric,
         }
 
     @staticmethod
     def checked(eps: Any, max_dim: Any = None, cover_radius: Any = None, task_cost: Any = None,
-                *, names: Mapping[str, str] | None = None) -> Params:
+                *, names: Mapping[str, str] | None = None, metric: Any = "euclidean") -> Params:
         """Validated parameters; `names` maps a parameter to how the user spelled it
         (e.g. ``{"task_cost": "--task-cost"}``) for the error messages."""
         n = {"eps": "eps", "max_dim": "max_dim", "cover_radius": "cover_radius",
-             "task_cost": "task_cost", **(names or {})}
+             "task_cost": "task_cost", "metric": "metric", **(names or {})}
         return Params(
             validate_eps(eps, name=n["eps"]),
             validate_max_dim(max_dim, name=n["max_dim"]),
             None if cover_radius is None else validate_positive(cover_radius, name=n["cover_radius"]),
             None if task_cost is None else validate_positive(task_cost, name=n["task_cost"]),
+            validate_metric(metric, name=n["metric"]),
         )
 
 
 def plan_points(points: np.ndarray, params: Params) -> tuple[Cover, Plan, np.ndarray]:
     """Cover and task table for validated points (pure: touches no storage)."""
     radius = params.eps if params.cover_radius is None else params.cover_radius
-    cover = build_cover(points, params.eps, radius)
+    cover = build_cover(points, params.eps, radius, metric=params.metric)
     points_sorted = np.ascontiguousarray(points[cover.order])
-    plan = make_plan(points_sorted, cover, params.eps, params.max_dim, task_cost=params.task_cost)
+    plan = make_plan(points_sorted, cover, params.eps, params.max_dim, task_cost=params.task_cost,
+                     metric=params.metric)
     return cover, plan, points_sorted
 
 
@@ -134,12 +141,18 @@ def _staged_input(store: RunStore, i: int) -> tuple[np.ndarray, int, int]:
     return coords, lo, hi
 
 
+def metric_of(params: Mapping[str, Any]) -> str:
+    """The metric of a store's parameters: Euclidean in a store made before there was a
+    choice (no ``metric`` field)."""
+    return validate_metric(params.get("metric"))
+
+
 def compute_task(store: RunStore, i: int, *, threads: int = 1) -> tuple[dict[str, np.ndarray], dict[str, int]]:
     """The task function: task `i`'s jump table and counters."""
     params = store.params
     coords, lo, hi = task_input(store, i)
     table = count_jumps(coords, float(params["eps"]), params["max_dim"], owned=(lo, hi),
-                        threads=threads)
+                        threads=threads, metric=metric_of(params))
     counters = {"points": hi - lo, "halo": int(coords.shape[0]), "edges": int(table.stats.edges),
                 "splits": int(table.stats.splits)}
     out = {"values": table.values, "jumps": table.jumps}
@@ -240,6 +253,7 @@ def describe(points: np.ndarray, params: Params) -> dict[str, Any]:
     peak = peak_memory()
     summary["planner"] = {"kind": "driver", "seconds": seconds, "driver_peak": peak,
                           "expected_driver_peak": max(peak, expected_driver_peak(summary))}
+    summary["metric"] = params.metric
     summary["warnings"] = plan_warnings(plan)
     summary["layout"] = describe_layout(plan.n_tasks)
     return summary

@@ -63,6 +63,14 @@ class JobKind:
         The outputs the fold reads (each verified against its own digest in the commit
         record); all of them when None. A stage whose tasks commit large data for later
         stages beside a small summary folds the summary only.
+    then : str, optional
+        ``module:function`` giving, for a store of this kind whose tasks are all done,
+        the store of the job that finishes it (``f(store) -> RunStore``, created on first
+        use); the run continues there, and this kind's result reader reads through it.
+    defaults : tuple of (name, value)
+        Parameters added after stores of this kind were first made, with the value a
+        store without them was made for: a missing one reads as that value when a
+        store's parameters are compared (`RunStore.check_matches`).
     """
 
     name: str
@@ -73,6 +81,7 @@ class JobKind:
     unit: str = "tasks"
     fold_reads: tuple[str, ...] | None = None
     then: str | None = None
+    defaults: tuple[tuple[str, Any], ...] = ()
 
     def follow_up(self, store: RunStore) -> RunStore | None:
         return None if self.then is None else _resolve(self.then)(store)

@@ -327,13 +327,19 @@ def _gather(store: RunStore, r: int) -> tuple[np.ndarray, np.ndarray, np.ndarray
             own_start, int(og.size))
 
 
-def _pairs(coords: np.ndarray, eps: float, lengths: bool = False) -> tuple[np.ndarray, ...]:
-    """Every pair of rows within eps (by the kernel's own edge join), and their lengths."""
+def _pairs(coords: np.ndarray, eps: float, metric: str, lengths: bool = False) -> tuple[np.ndarray, ...]:
+    """Every pair of rows within eps in `metric` (by the kernel's own edge join), and
+    their lengths."""
     from ..kernel import _halo_edges
+    from ..metric import lengths as key_lengths
 
-    lo, hi, d2, m = _halo_edges(np.ascontiguousarray(coords), eps)
+    lo, hi, key, m = _halo_edges(np.ascontiguousarray(coords), eps, metric)
     out = (lo[:m].astype(np.int64), hi[:m].astype(np.int64))
-    return (*out, np.sqrt(d2[:m])) if lengths else out
+    return (*out, key_lengths(key[:m], metric)) if lengths else out
+
+
+def _metric(store: RunStore) -> str:
+    return str(store.params.get("metric") or "euclidean")
 
 
 def region_task(store: RunStore, r: int, *, threads: int = 1) -> tuple[dict[str, np.ndarray], dict[str, int]]:
@@ -344,7 +350,7 @@ def region_task(store: RunStore, r: int, *, threads: int = 1) -> tuple[dict[str,
     eps = float(store.params["eps"])
     coords, gids, cells, s0, n_own = _gather(store, r)
     own = slice(s0, s0 + n_own)
-    lo, hi, length = _pairs(coords, eps, lengths=True)
+    lo, hi, length = _pairs(coords, eps, _metric(store), lengths=True)
     degree = (np.bincount(lo, minlength=gids.size) + np.bincount(hi, minlength=gids.size)).astype(np.int64)
     # each edge once, in the region owning its lower-numbered end: where the curve's
     # jumps lie, to cut its reduction into parts of about equal size
@@ -405,7 +411,7 @@ def halo_task(store: RunStore, r: int, *, threads: int = 1) -> tuple[dict[str, n
                             int(store.attrs["max_task_rows"]))
     stops = np.append(starts[1:], n_own).astype(np.int64)
     n_tasks = starts.size
-    lo, hi = _pairs(coords, eps)
+    lo, hi = _pairs(coords, eps, _metric(store))
     task_of = np.full(n, -1, np.int64)
     task_of[own] = np.repeat(np.arange(n_tasks, dtype=np.int64), stops - starts)
     # the halo of a task: its rows and both ends of every edge with an end among them,

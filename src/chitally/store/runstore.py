@@ -362,11 +362,13 @@ class RunStore:
                                   "finish")
         return self
 
-    def rebuild_marker(self, params: Mapping[str, Any], fingerprint: Mapping[str, Any]) -> None:
+    def rebuild_marker(self, params: Mapping[str, Any], fingerprint: Mapping[str, Any],
+                       defaults: Mapping[str, Any] | None = None) -> None:
         """Write the completion marker of a store whose creation finished every write but
         the marker: only after the parameters, the input fingerprint, the task table and
-        every input array verify against the root record."""
-        self.check_matches(self.kind, params, fingerprint)
+        every input array verify against the root record (`defaults` as for
+        `check_matches`)."""
+        self.check_matches(self.kind, params, fingerprint, defaults)
         self.verify_inputs()
         cost = self.io.read_array(f"{TASKS}/cost")
         memory = self.io.read_array(f"{TASKS}/memory")
@@ -379,14 +381,18 @@ class RunStore:
         logger.warning("%s: rebuilt the missing completion marker (inputs verified)", self.url)
 
     def check_matches(self, kind: str, params: Mapping[str, Any],
-                      fingerprint: Mapping[str, Any]) -> None:
+                      fingerprint: Mapping[str, Any], defaults: Mapping[str, Any] | None = None) -> None:
         """Refuse to mix job kinds, inputs or parameters; one line naming every field
-        that differs, with the stored and given values."""
+        that differs, with the stored and given values. `defaults` holds parameters
+        added after stores were first made: absent on either side, one reads as its
+        default (a store made before the parameter existed was made for that value)."""
         if kind != self.kind:
             raise StoreMismatch(f"run store {self.url} holds a {self.kind!r} job, not {kind!r}")
-        stored = {**_flatten(self._meta["params"], "params"),
+        implied = dict(defaults or {})
+        stored = {**_flatten(implied, "params"), **_flatten(self._meta["params"], "params"),
                   **_flatten(self._meta["fingerprint"], "input")}
-        given = {**_flatten(jsonable(dict(params), "params"), "params"),
+        given = {**_flatten(jsonable(implied, "params"), "params"),
+                 **_flatten(jsonable(dict(params), "params"), "params"),
                  **_flatten(jsonable(dict(fingerprint), "fingerprint"), "input")}
         absent = object()
         diffs = []
