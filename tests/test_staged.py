@@ -287,3 +287,22 @@ def test_an_unfinished_merge_resumes(tmp_path, monkeypatch):
     report = runs.run(runs.open_run(store.url), runs.Where(serial=True))
     assert report.complete and report.curve == euler_curve(pts, 0.08)
     assert merged[n_first:] == [1]  # only the failed part is merged again
+
+
+@pytest.mark.parametrize("metric", ["manhattan", "chebyshev"])
+def test_other_metrics_plan_on_the_cluster_too(tmp_path, metric):
+    # a coordinate difference is at most the distance in these metrics too, so the cells
+    # next door hold every eps-neighbour; gudhi on scipy's cdist is the outside reference
+    from references import gudhi_matrix_curve
+    from scipy.spatial.distance import cdist
+
+    pts = np.random.default_rng(31).integers(0, 6, (90, 3)).astype(np.float64)  # many ties
+    eps = 2.0
+    with runs.Session(runs.Where(serial=True)) as session:
+        store = plan_run(str(tmp_path / "run.zarr"), PlanInput.of_points(pts),
+                         Params.checked(eps, None, metric=metric),
+                         StageParams(cell_size=2.0, region_rows=15, block_rows=20), session)
+        curve = session.run(store).result
+    assert curve == euler_curve(pts, eps, metric=metric)
+    D = cdist(pts, pts, {"manhattan": "cityblock", "chebyshev": "chebyshev"}[metric])
+    assert curve == gudhi_matrix_curve(D, eps, None)
