@@ -71,21 +71,30 @@ class LocalKeys:
 
     def _write(self, key: str, data: bytes, exclusive: bool) -> None:
         path = self.path(key)
-        os.makedirs(os.path.dirname(path), exist_ok=True)
         tmp = f"{path}.{uuid.uuid4().hex}.partial"
         try:
-            with open(tmp, "wb") as f:
+            try:
+                f = open(tmp, "wb")
+            except FileNotFoundError:
+                # folders are made only when missing: a mkdir per write is costly
+                os.makedirs(os.path.dirname(path), exist_ok=True)
+                f = open(tmp, "wb")
+            with f:
                 f.write(data)
             if exclusive:
                 try:
                     os.link(tmp, path)
                 except FileExistsError:
                     pass
+                os.unlink(tmp)
             else:
                 os.replace(tmp, path)
-        finally:
-            if os.path.lexists(tmp):
+        except BaseException:
+            try:
                 os.unlink(tmp)
+            except FileNotFoundError:
+                pass
+            raise
 
     def set(self, key: str, data: bytes) -> None:
         """Write `key` whole (atomically replacing what it held)."""
