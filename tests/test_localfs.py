@@ -155,3 +155,55 @@ def test_commit_log_sets_damaged_local_outputs_aside(tmp_path):
     assert log.verified_record(0)["attempt"] == "a-0-0"
     doc = json.loads(open(io.local.path(f"{CommitLog.output_prefix(0)}/rows/zarr.json")).read())
     assert doc["shape"] == [2, 8] and doc["node_type"] == "array"
+
+
+@pytest.mark.parametrize("shape,chunk", [((10, 3), 4), ((7,), 3), ((9,), 9), ((5, 2), 8)])
+def test_row_reads_of_chunked_arrays_match_zarr(io, shape, chunk):
+    data = (np.arange(int(np.prod(shape)), dtype=np.float64) * 1.5 - 4).reshape(shape)
+    arr = io.create_chunked("inp", shape, "<f8", (chunk, *shape[1:]), what="create")
+    arr[...] = data
+    ref = zarr.open_array(io.zarr_store, path="inp", mode="r")
+    for sel in [Ellipsis, slice(0, 1), slice(2, 6), slice(3, None), slice(None, -2), slice(4, 4),
+                slice(0, 100)]:
+        got = io.static_rows("inp", sel)
+        want = np.asarray(ref[sel])
+        assert got.dtype == want.dtype and got.shape == want.shape and np.array_equal(got, want)
+        again = io.static_rows("inp", sel)  # from the cache: the same rows
+        assert np.array_equal(again, want)
+    assert io.static_rows("inp", np.array([1, 2])) is None  # left to zarr
+    assert io.static_rows("inp", slice(0, 4, 2)) is None
+
+
+def test_row_reads_check_every_chunk(io):
+    data = np.arange(12, dtype=np.int64)
+    arr = io.create_chunked("inp", (12,), "<i8", (5,), what="create")
+    arr[...] = data
+    chunk = io.local.path("inp/c/1")
+    raw = bytearray(open(chunk, "rb").read())
+    raw[3] ^= 0x10
+    open(chunk, "wb").write(bytes(raw))
+    assert np.array_equal(io.static_rows("inp", slice(0, 5)), data[:5])  # chunk 0 is sound
+    with pytest.raises(CorruptTask, match="checksum"):
+        io.static_rows("inp", slice(4, 7))
+    os.unlink(chunk)
+    with pytest.raises(CorruptTask, match="missing"):
+        io.static_rows("inp", slice(4, 7), cached=False)
+
+
+def test_damaged_inputs_are_reported_and_verify_reads_afresh(tmp_path):
+    from chitally.clouds import read_collection
+    from chitally.jobs.batch import BatchParams, create_or_open
+    from chitally.store import InputsDamaged
+
+    rng = np.random.default_rng(1)
+    clouds = read_collection([rng.random((4, 2)) for _ in range(3)])
+    store = create_or_open(str(tmp_path / "b.zarr"), clouds, BatchParams.checked(0.5, [0.0, 0.5]))
+    points = store.read_input("points")  # now cached
+    assert points.shape == (12, 2)
+    store.verify_inputs()
+    chunk = store.io.local.path("inputs/points/c/0/0")
+    raw = bytearray(open(chunk, "rb").read())
+    raw[-1] ^= 0x01
+    open(chunk, "wb").write(bytes(raw))
+    with pytest.raises(InputsDamaged, match="points"):
+        store.verify_inputs()

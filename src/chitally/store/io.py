@@ -28,7 +28,7 @@ from zarr.errors import ContainsArrayError
 from zarr.storage import FsspecStore, LocalStore
 
 from .errors import CorruptTask, NotAStore, StoreError
-from .localfs import SMALL_ARRAY_BYTES, LocalKeys
+from .localfs import SMALL_ARRAY_BYTES, LocalKeys, RowReader
 
 logger = logging.getLogger("chitally.store")
 
@@ -152,6 +152,7 @@ class StoreIO:
         self.storage_options = dict(storage_options or {})
         self._store: Store | None = None
         self._local: LocalKeys | None = None
+        self._rows: RowReader | None = None
         self._arrays: dict[str, Any] = {}
 
     def __reduce__(self) -> tuple[Any, ...]:
@@ -169,6 +170,7 @@ class StoreIO:
             self._store = open_zarr_store(self.url, self.storage_options)
             if isinstance(self._store, LocalStore):
                 self._local = LocalKeys(str(self._store.root), label=self.url)
+                self._rows = RowReader(self._local)
         return self._store
 
     @property
@@ -396,6 +398,24 @@ class StoreIO:
             self.zarr_store, name=path, shape=shape, dtype=dtype, chunks=chunks,
             compressors=_compressors(), fill_value=0, config=_ARRAY_CONFIG, overwrite=True))
         return arr.with_config(_ARRAY_CONFIG)
+
+    def static_rows(self, path: str, selection: Any, *, cached: bool = True) -> np.ndarray | None:
+        """Rows of an array written once (``...`` or a slice of its first axis) read
+        from a local folder through a cache of decoded, checksum-verified chunks; None
+        where this does not apply (remote stores, other selections or layouts), for the
+        caller to slice `static_array` instead. `CorruptTask` for a damaged chunk."""
+        if self.local is None or self._rows is None:
+            return None
+        if selection is Ellipsis:
+            start, stop = None, None
+        elif isinstance(selection, slice) and selection.step in (None, 1):
+            start, stop = selection.start, selection.stop
+        else:
+            return None
+        try:
+            return self._rows.rows(path, start, stop, cached=cached)
+        except OSError as exc:
+            raise StoreError(f"reading {path} of {self.url} failed: {one_line(exc)}") from exc
 
     def static_array(self, path: str) -> Any:
         """A cached read handle on an array written once at creation."""

@@ -25,6 +25,7 @@ import json
 import os
 import shutil
 import uuid
+from collections import OrderedDict
 from typing import Any
 
 import google_crc32c
@@ -32,6 +33,9 @@ import numpy as np
 from numcodecs import Zstd
 
 from .errors import CorruptTask
+
+#: Decoded input chunks kept per open store (inputs never change once written).
+CHUNK_CACHE_BYTES = 64 << 20
 
 #: Arrays up to this many bytes are written as one chunk without zarr; larger outputs
 #: keep going through zarr (and may be stored in row chunks there).
@@ -146,6 +150,100 @@ class LocalKeys:
         if chunk is None:
             raise CorruptTask(f"{path}: its data chunk is missing in {self.label}")
         return decode_chunk(chunk, shape, dtype, where=f"{path} of {self.label}")
+
+
+class RowReader:
+    """Row ranges of arrays written once (a run's inputs) in row chunks, read without
+    zarr through a bounded cache of decoded chunks.
+
+    Every chunk's crc32c is checked when it is decoded; a chunk failing it, or missing,
+    raises `CorruptTask`. Arrays of another layout are left to zarr (`rows` returns
+    None).
+    """
+
+    def __init__(self, keys: LocalKeys, limit: int = CHUNK_CACHE_BYTES) -> None:
+        self.keys = keys
+        self.limit = int(limit)
+        self._layouts: dict[str, tuple[tuple[int, ...], np.dtype, int] | None] = {}
+        self._chunks: OrderedDict[tuple[str, int], np.ndarray] = OrderedDict()
+        self._held = 0
+
+    def layout(self, path: str) -> tuple[tuple[int, ...], np.dtype, int] | None:
+        """(shape, dtype, rows per chunk) of a row-chunked array, None for another layout."""
+        if path not in self._layouts:
+            raw = self.keys.get(f"{path}/zarr.json")
+            if raw is None:
+                raise CorruptTask(f"{path} is missing in {self.keys.label}")
+            try:
+                self._layouts[path] = row_layout(json.loads(raw))
+            except (ValueError, TypeError, KeyError) as exc:
+                raise CorruptTask(f"{path}/zarr.json of {self.keys.label} is unreadable: {exc}") from exc
+        return self._layouts[path]
+
+    def rows(self, path: str, start: int | None, stop: int | None, *,
+             cached: bool = True) -> np.ndarray | None:
+        """Rows ``start:stop`` (Python slice rules) of the array at `path`, or None when
+        it is not a row-chunked array of the store's codecs."""
+        layout = self.layout(path)
+        if layout is None:
+            return None
+        shape, dtype, step = layout
+        lo, hi, _ = slice(start, stop).indices(shape[0] if shape else 0)
+        hi = max(lo, hi)
+        if hi == lo:
+            return np.zeros((0, *shape[1:]), dtype=dtype)
+        parts = []
+        for c in range(lo // step, (hi - 1) // step + 1):
+            chunk = self._chunk(path, c, shape, dtype, step, cached)
+            a, b = max(lo - c * step, 0), min(hi - c * step, chunk.shape[0])
+            parts.append(chunk[a:b])
+        return parts[0].copy() if len(parts) == 1 else np.concatenate(parts)
+
+    def _chunk(self, path: str, c: int, shape: tuple[int, ...], dtype: np.dtype, step: int,
+               cached: bool) -> np.ndarray:
+        key = (path, c)
+        got = self._chunks.get(key) if cached else None
+        if got is not None:
+            self._chunks.move_to_end(key)
+            return got
+        name = "/".join(["c", str(c)] + ["0"] * (len(shape) - 1))
+        raw = self.keys.get(f"{path}/{name}")
+        if raw is None:
+            raise CorruptTask(f"{path} of {self.keys.label}: its chunk {name} is missing")
+        # zarr stores edge chunks whole (padded with fill): the shape is the chunk's
+        got = decode_chunk(raw, (step, *shape[1:]), dtype, where=f"{path}/{name} of {self.keys.label}")
+        got = got[:min(step, shape[0] - c * step)]
+        if cached and got.nbytes <= self.limit:
+            self._chunks[key] = got
+            self._held += got.nbytes
+            while self._held > self.limit:
+                _, old = self._chunks.popitem(last=False)
+                self._held -= old.nbytes
+        return got
+
+
+def row_layout(doc: Any) -> tuple[tuple[int, ...], np.dtype, int] | None:
+    """(shape, dtype, rows per chunk) when `doc` describes an array chunked along its
+    first axis only, with the default chunk keys and the store's codecs; None else."""
+    if not isinstance(doc, dict) or doc.get("node_type") != "array" or doc.get("zarr_format") != 3:
+        raise ValueError("not a Zarr v3 array's metadata")
+    shape = tuple(int(s) for s in doc["shape"])
+    try:
+        dtype = np.dtype(doc["data_type"]).newbyteorder("<")
+    except TypeError:
+        return None
+    if dtype.kind not in "biuf" or not shape:
+        return None
+    template = _template(dtype, len(shape))
+    grid = doc.get("chunk_grid", {})
+    chunks = grid.get("configuration", {}).get("chunk_shape")
+    if (grid.get("name") != "regular" or not isinstance(chunks, list) or len(chunks) != len(shape)
+            or [int(x) for x in chunks[1:]] != [max(s, 1) for s in shape[1:]] or int(chunks[0]) < 1
+            or doc.get("codecs") != template["codecs"]
+            or doc.get("chunk_key_encoding") != template["chunk_key_encoding"]
+            or doc.get("storage_transformers", []) != []):
+        return None
+    return shape, dtype, int(chunks[0])
 
 
 def _same_json(a: bytes, b: bytes) -> bool:
