@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import os
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -27,6 +28,13 @@ ARRAYS = {
     "big_endian": np.arange(5, dtype=">f4") / 3,
     "bytes": np.arange(250, dtype=np.uint8),
 }
+
+
+def flip(path: str, at: int | str, mask: int) -> None:
+    """Damage one byte of a file ("middle": its middle byte)."""
+    raw = bytearray(Path(path).read_bytes())
+    raw[len(raw) // 2 if at == "middle" else int(at)] ^= mask
+    Path(path).write_bytes(bytes(raw))
 
 
 @pytest.fixture
@@ -98,9 +106,7 @@ def test_a_new_shape_replaces_the_stale_array_whole(io):
 def test_damaged_or_missing_chunks_are_corrupt(io):
     io.write_array("a", ARRAYS["rows"], what="test write")
     chunk = io.local.path(f"a/{chunk_key(2)}")
-    raw = bytearray(open(chunk, "rb").read())
-    raw[len(raw) // 2] ^= 0xFF
-    open(chunk, "wb").write(bytes(raw))
+    flip(chunk, "middle", 0xFF)
     with pytest.raises(CorruptTask, match="checksum"):
         io.read_array("a")
     with pytest.raises(Exception, match="[Cc]hecksum"):  # zarr's own crc32c check agrees
@@ -115,8 +121,7 @@ def test_damaged_or_missing_chunks_are_corrupt(io):
 
 def test_unreadable_metadata_is_corrupt(io):
     io.write_array("a", ARRAYS["rows"], what="test write")
-    with open(io.local.path("a/zarr.json"), "wb") as f:
-        f.write(b"{not json")
+    Path(io.local.path("a/zarr.json")).write_bytes(b"{not json")
     with pytest.raises(CorruptTask, match="unreadable"):
         io.read_array("a")
 
@@ -144,16 +149,14 @@ def test_commit_log_sets_damaged_local_outputs_aside(tmp_path):
     assert np.array_equal(got["rows"], rows) and got["total"].tolist() == [1.5]
     # damage the data: the record no longer proves it
     chunk = io.local.path(f"{CommitLog.output_prefix(0)}/rows/{chunk_key(2)}")
-    raw = bytearray(open(chunk, "rb").read())
-    raw[0] ^= 0x01
-    open(chunk, "wb").write(bytes(raw))
+    flip(chunk, 0, 0x01)
     assert log.verified_record(0) is None
     with pytest.raises(CorruptTask):
         log.read(0)
     # committing again (same outputs) repairs the data under the existing record
     assert log.commit(0, "a-0-1", {"rows": rows, "total": np.array([1.5])}) == digest
     assert log.verified_record(0)["attempt"] == "a-0-0"
-    doc = json.loads(open(io.local.path(f"{CommitLog.output_prefix(0)}/rows/zarr.json")).read())
+    doc = json.loads(Path(io.local.path(f"{CommitLog.output_prefix(0)}/rows/zarr.json")).read_text())
     assert doc["shape"] == [2, 8] and doc["node_type"] == "array"
 
 
@@ -179,9 +182,7 @@ def test_row_reads_check_every_chunk(io):
     arr = io.create_chunked("inp", (12,), "<i8", (5,), what="create")
     arr[...] = data
     chunk = io.local.path("inp/c/1")
-    raw = bytearray(open(chunk, "rb").read())
-    raw[3] ^= 0x10
-    open(chunk, "wb").write(bytes(raw))
+    flip(chunk, 3, 0x10)
     assert np.array_equal(io.static_rows("inp", slice(0, 5)), data[:5])  # chunk 0 is sound
     with pytest.raises(CorruptTask, match="checksum"):
         io.static_rows("inp", slice(4, 7))
@@ -202,8 +203,6 @@ def test_damaged_inputs_are_reported_and_verify_reads_afresh(tmp_path):
     assert points.shape == (12, 2)
     store.verify_inputs()
     chunk = store.io.local.path("inputs/points/c/0/0")
-    raw = bytearray(open(chunk, "rb").read())
-    raw[-1] ^= 0x01
-    open(chunk, "wb").write(bytes(raw))
+    flip(chunk, -1, 0x01)
     with pytest.raises(InputsDamaged, match="points"):
         store.verify_inputs()

@@ -178,7 +178,7 @@ class StoreIO:
         """Synchronous file operations when the store is a local folder, else None
         (the same files zarr's LocalStore reads and writes, without its event loop)."""
         if self._store is None:
-            self.zarr_store
+            _ = self.zarr_store  # opening it decides whether the store is local
         return self._local
 
     # ------------------------------------------------------------------ the choke point

@@ -78,13 +78,11 @@ class LocalKeys:
         tmp = f"{path}.{uuid.uuid4().hex}.partial"
         try:
             try:
-                f = open(tmp, "wb")
+                _write_file(tmp, data)
             except FileNotFoundError:
                 # folders are made only when missing: a mkdir per write is costly
                 os.makedirs(os.path.dirname(path), exist_ok=True)
-                f = open(tmp, "wb")
-            with f:
-                f.write(data)
+                _write_file(tmp, data)
             if exclusive:
                 try:
                     os.link(tmp, path)
@@ -244,6 +242,11 @@ def row_layout(doc: Any) -> tuple[tuple[int, ...], np.dtype, int] | None:
             or doc.get("storage_transformers", []) != []):
         return None
     return shape, dtype, int(chunks[0])
+
+
+def _write_file(path: str, data: bytes) -> None:
+    with open(path, "wb") as f:
+        f.write(data)
 
 
 def _same_json(a: bytes, b: bytes) -> bool:
