@@ -281,6 +281,7 @@ class DaskExecutor:
                         events.task_done(result)
                     finally:
                         fut.release()
+                results.clear()
                 refill()
         except BaseException as exc:
             self._cancel(list(in_flight))
@@ -291,7 +292,26 @@ class DaskExecutor:
                     and not isinstance(exc, (SchedulerLost, *FATAL))):
                 raise self._lost() from exc
             raise
+        self._settle_releases()
         return outcome
+
+    def _settle_releases(self) -> None:
+        """Let the client forget the futures released above before anyone submits again.
+
+        `Future.release` only queues the release on the client's event loop; a run right
+        after this one submits the same keys, and a key the client still holds would hand
+        back the old result instead of running the task. A no-op run on that loop comes
+        after every queued release."""
+        if getattr(self.client, "status", "") != "running":
+            return
+
+        async def settled() -> None:
+            return None
+
+        try:
+            self.client.sync(settled)
+        except Exception:  # best effort: the cluster may be going away
+            logger.debug("waiting for released futures failed", exc_info=True)
 
     def _gather(self, finished: set[Any]) -> dict[Any, Any]:
         """The results of the futures that finished without error, in one gather: one
