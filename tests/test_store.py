@@ -237,7 +237,12 @@ def test_op_failures_carry_their_context(url, monkeypatch):
     async def broken_set(key, value):
         raise OSError("disk full")
 
+    def broken_local_set(key, value):
+        raise OSError("disk full")
+
     monkeypatch.setattr(io.zarr_store, "set", broken_set)
+    if io.local is not None:  # a local folder is written without zarr's event loop
+        monkeypatch.setattr(io.local, "set", broken_local_set)
     with pytest.raises(StoreError) as err:
         io.set("failures/task-000002.json", b"{}", what="write failure record", task=2)
     msg = str(err.value)

@@ -28,6 +28,7 @@ from zarr.errors import ContainsArrayError
 from zarr.storage import FsspecStore, LocalStore
 
 from .errors import CorruptTask, NotAStore, StoreError
+from .localfs import SMALL_ARRAY_BYTES, LocalKeys, RowReader
 
 logger = logging.getLogger("chitally.store")
 
@@ -163,6 +164,8 @@ class StoreIO:
         self.url = os.fspath(url)
         self.storage_options = dict(storage_options or {})
         self._store: Store | None = None
+        self._local: LocalKeys | None = None
+        self._rows: RowReader | None = None
         self._arrays: dict[str, Any] = {}
 
     def __reduce__(self) -> tuple[Any, ...]:
@@ -178,7 +181,18 @@ class StoreIO:
             if path is not None and os.path.exists(path) and not os.path.isdir(path):
                 raise NotAStore(f"{self.url} is a file, not a run store folder")
             self._store = open_zarr_store(self.url, self.storage_options)
+            if isinstance(self._store, LocalStore):
+                self._local = LocalKeys(str(self._store.root), label=self.url)
+                self._rows = RowReader(self._local)
         return self._store
+
+    @property
+    def local(self) -> LocalKeys | None:
+        """Synchronous file operations when the store is a local folder, else None
+        (the same files zarr's LocalStore reads and writes, without its event loop)."""
+        if self._store is None:
+            _ = self.zarr_store  # opening it decides whether the store is local
+        return self._local
 
     # ------------------------------------------------------------------ the choke point
 
@@ -204,6 +218,9 @@ class StoreIO:
     # ------------------------------------------------------------------ raw keys
 
     def get(self, key: str) -> bytes | None:
+        local = self.local
+        if local is not None:
+            return self.op("read", key, lambda: local.get(key))
         buf = self.op("read", key, lambda: sync(self.zarr_store.get(key, default_buffer_prototype())))
         return None if buf is None else buf.to_bytes()
 
@@ -213,6 +230,10 @@ class StoreIO:
         return None if raw is None else json.loads(raw)
 
     def set(self, key: str, data: bytes, *, what: str, task: int | None = None) -> None:
+        local = self.local
+        if local is not None:
+            self.op(what, key, lambda: local.set(key, data), task=task)
+            return
         buf = default_buffer_prototype().buffer.from_bytes(data)
         self.op(what, key, lambda: sync(self.zarr_store.set(key, buf)), task=task)
 
@@ -227,7 +248,9 @@ class StoreIO:
 
         def run() -> None:
             store = self.zarr_store
-            if isinstance(store, FsspecStore):
+            if self._local is not None:
+                self._local.set_if_not_exists(key, data)
+            elif isinstance(store, FsspecStore):
                 path = f"{store.path.rstrip('/')}/{key}"
                 try:
                     sync(store.fs._pipe_file(path, data, mode="create"))
@@ -274,6 +297,9 @@ class StoreIO:
         return self.op("list", prefix, run)
 
     def exists(self, key: str) -> bool:
+        local = self.local
+        if local is not None:
+            return self.op("exists", key, lambda: local.exists(key))
         return self.op("exists", key, lambda: sync(self.zarr_store.exists(key)))
 
     # ------------------------------------------------------------------ arrays
@@ -300,6 +326,11 @@ class StoreIO:
                     attempt: str | None = None) -> None:
         """Write a whole array at `path` (one chunk unless `chunks` is given)."""
         data = little_endian(data)
+        local = self.local
+        if local is not None and chunks is None and data.nbytes <= SMALL_ARRAY_BYTES \
+                and data.dtype.kind in "biuf":
+            self.op(what, path, lambda: local.write_small(path, data), task=task, attempt=attempt)
+            return
         if chunks is None:
             chunks = _row_chunks(data)
 
@@ -333,6 +364,14 @@ class StoreIO:
     def read_array(self, path: str, *, task: int | None = None) -> np.ndarray:
         """A whole array as written; `CorruptTask` when it is missing or unreadable,
         `StoreError` when the failure may be the network rather than the data."""
+        local = self.local
+        if local is not None:
+            try:
+                small = local.read_small(path)
+            except OSError as exc:
+                raise StoreError(f"reading {path} of {self.url} failed: {one_line(exc)}") from exc
+            if small is not None:
+                return small
         try:
             arr = zarr.open_array(self.zarr_store, path=path, mode="r")
             return np.asarray(arr[...])
@@ -394,6 +433,24 @@ class StoreIO:
             self.zarr_store, name=path, shape=shape, dtype=dtype, chunks=chunks,
             compressors=_compressors(), fill_value=0, config=_ARRAY_CONFIG, overwrite=True))
         return arr.with_config(_ARRAY_CONFIG)
+
+    def static_rows(self, path: str, selection: Any, *, cached: bool = True) -> np.ndarray | None:
+        """Rows of an array written once (``...`` or a slice of its first axis) read
+        from a local folder through a cache of decoded, checksum-verified chunks; None
+        where this does not apply (remote stores, other selections or layouts), for the
+        caller to slice `static_array` instead. `CorruptTask` for a damaged chunk."""
+        if self.local is None or self._rows is None:
+            return None
+        if selection is Ellipsis:
+            start, stop = None, None
+        elif isinstance(selection, slice) and selection.step in (None, 1):
+            start, stop = selection.start, selection.stop
+        else:
+            return None
+        try:
+            return self._rows.rows(path, start, stop, cached=cached)
+        except OSError as exc:
+            raise StoreError(f"reading {path} of {self.url} failed: {one_line(exc)}") from exc
 
     def static_array(self, path: str) -> Any:
         """A cached read handle on an array written once at creation."""
