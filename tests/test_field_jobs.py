@@ -326,3 +326,18 @@ def test_mask_on_the_command_line(tmp_path):
             assert r.exit_code == 2, r.output
             assert r.output.count("\n") == 1 and "--mask" in r.output and message in r.output, r.output
     assert not (tmp_path / "bad.zarr").exists()
+
+
+def test_hdf5_by_fsspec_url(tmp_path):
+    fsspec = pytest.importorskip("fsspec")
+    a = _array(20, (7, 10))
+    local = _h5(tmp_path / "u.h5", {"f": a})
+    url = "memory://fields/u.h5"
+    with fsspec.open(url, "wb") as out:
+        out.write(open(local, "rb").read())
+    try:
+        r = field_run(url, str(tmp_path / "f.zarr"), block=(3, 10))
+        assert r.n_tasks == 3 and r.curve == field_curve(a)
+        assert open_run(str(tmp_path / "f.zarr")).attrs["location"] == {"format": "hdf5", "url": url, "key": None}
+    finally:
+        fsspec.filesystem("memory").rm("/fields", recursive=True)
