@@ -15,6 +15,11 @@ result must equal `chitally.euler_curve` and two outside references: networkx
 ``enumerate_all_cliques`` on the eps-graph (brute force) and gudhi's ``RipsComplex`` /
 ``SimplexTree`` (``tests/references.py``).
 
+The `field` kind's inputs are arrays of 2 to 4 dimensions with many ties, in memory, in a
+Zarr array, an HDF5 dataset (one of two, named by key) or a ``.npy`` file, both
+constructions, sublevel and superlevel, with and without a mask; each result must equal
+`chitally.field_curve` and gudhi's ``CubicalComplex`` (``tests/cubical_references.py``).
+
 Faults come from the test side: `FailingTask` wraps the engine's task function, fails
 chosen tasks on chosen attempts and counts every attempt in files, so retry tests are
 exact, not timing-dependent. Stores are local paths (``memory://`` does not cross
@@ -367,6 +372,83 @@ def bands_reference(inp: SimpleInput) -> dict[str, Any]:
             bands(bands_cloud(inp), 0.2, 12, 40, grid="0:0.2:11", seed=inp.seed, threads=1)}
 
 
+# ------------------------------------------------------------------------------- field
+
+
+@dataclass(frozen=True)
+class FieldInput:
+    """A field run store's input: an array (seeded), where it lives (``memory``: written
+    into the store; ``zarr``, ``hdf5``, ``npy``: a file the workers read block by block),
+    a construction, superlevel or not, a mask (in memory, or a ``.npy`` file beside a
+    located array) and the owned block."""
+
+    shape: tuple[int, ...]
+    seed: int
+    where: str
+    construction: str
+    superlevel: bool
+    masked: bool
+    block: tuple[int, ...]
+
+    @property
+    def id(self) -> str:
+        return (f"{'x'.join(map(str, self.shape))}-{self.where}-{self.construction}"
+                f"{'-super' if self.superlevel else ''}{'-masked' if self.masked else ''}")
+
+
+@functools.cache
+def field_arrays(inp: FieldInput) -> tuple[np.ndarray, np.ndarray | None]:
+    rng = np.random.default_rng(inp.seed)
+    # few levels: many exact ties between cells of every dimension
+    a = (rng.integers(0, 5, size=inp.shape) * 0.5 - 1.0).astype(np.float32)
+    mask = rng.random(inp.shape) < 0.75 if inp.masked else None
+    return a, mask
+
+
+def field_store(tmp_path: Path, inp: FieldInput, name: str = "run") -> RunStore:
+    from chitally.jobs import field
+
+    a, mask = field_arrays(inp)
+    source: Any = a
+    key = None
+    if inp.where == "zarr":
+        import zarr
+
+        source = str(tmp_path / f"{name}-in.zarr")
+        zarr.create_array(source, shape=a.shape, chunks=inp.block, dtype=a.dtype)[...] = a
+    elif inp.where == "hdf5":
+        import h5py
+
+        source, key = str(tmp_path / f"{name}-in.h5"), "data/field"
+        with h5py.File(source, "w") as f:
+            f.create_dataset(key, data=a, chunks=inp.block)
+            f.create_dataset("other", data=a[:1])
+    elif inp.where == "npy":
+        source = str(tmp_path / f"{name}-in.npy")
+        np.save(source, a)
+    if mask is not None and inp.where != "memory":
+        np.save(tmp_path / f"{name}-mask.npy", mask)
+        mask = str(tmp_path / f"{name}-mask.npy")
+    params = field.FieldParams.checked(inp.construction, inp.superlevel, block=inp.block)
+    store = field.create_or_open(str(tmp_path / f"{name}.zarr"), source, params, key=key, mask=mask)
+    assert store.input_names == ([] if inp.where != "memory" else ["field"] + (["mask"] if inp.masked else []))
+    return store
+
+
+@functools.cache
+def field_reference(inp: FieldInput) -> dict[str, Any]:
+    from cubical_references import gudhi_field_curve
+
+    from chitally import field_curve
+
+    a, mask = field_arrays(inp)
+    return {
+        "chitally.field_curve (in process, no store)": field_curve(a, inp.construction, inp.superlevel, mask),
+        "gudhi CubicalComplex persistence (missing entries at +inf)":
+            gudhi_field_curve(a, inp.construction, inp.superlevel, mask),
+    }
+
+
 # ==================================================================== the kind registry
 
 
@@ -434,6 +516,17 @@ JOB_KINDS: dict[str, JobKindCase] = {
         make_store=graph_store,
         reference=graph_reference,
     ),
+    "field": JobKindCase(
+        name="field",
+        inputs=(FieldInput((9, 11), 31, "memory", "vertices", False, False, (4, 4)),
+                FieldInput((6, 5, 7), 32, "memory", "cells", True, True, (3, 5, 3)),
+                FieldInput((10, 8), 33, "zarr", "cells", False, True, (3, 4)),
+                FieldInput((5, 6, 4), 34, "hdf5", "vertices", True, False, (2, 3, 4)),
+                FieldInput((3, 4, 3, 4), 35, "npy", "vertices", False, True, (2, 2, 3, 4))),
+        small=FieldInput((8, 9), 36, "hdf5", "cells", True, True, (3, 4)),
+        make_store=field_store,
+        reference=field_reference,
+    ),
     "bands": JobKindCase(
         name="bands",
         inputs=(SimpleInput("uniform", 300, 5),),
@@ -466,6 +559,9 @@ def test_the_references_agree():
     for inp in JOB_KINDS["cloud-metric"].inputs:
         curves = list(metric_reference(inp).values())
         assert curves[0] == curves[1] == curves[2], inp.id
+    for inp in (*JOB_KINDS["field"].inputs, JOB_KINDS["field"].small):
+        curves = list(field_reference(inp).values())
+        assert curves[0] == curves[1], inp.id
 
 
 # ============================================================= the faulty task function

@@ -752,11 +752,17 @@ threshold_opt = click.option("--threshold", type=float, default=None,
 
 @main.command("field")
 @input_arg
-@click.option("--key", default=None, help="Array inside INPUT (an .npz name, a Zarr group's array).")
+@click.option("--key", default=None,
+              help="Array inside INPUT (an .npz name, a Zarr group's array, an HDF5 dataset).")
 @click.option("--construction", type=click.Choice(["vertices", "cells"]), default="vertices", show_default=True,
               help="vertices: entries are vertices, cubes take the max of their corners (4/6-connected); "
                    "cells: entries are top cubes, faces take the min around them (8/26-connected).")
 @click.option("--superlevel", is_flag=True, help="Superlevel sets {f >= s}: the curve of -f (its scale is -s).")
+@click.option("--mask", "mask_path", default=None,
+              help="A boolean array of INPUT's shape (.npy, .npz, .zarr, .h5): True where an entry "
+                   "is part of the complex, the others are missing. With --run, .npy/Zarr/HDF5 masks "
+                   "are read block by block where they are.")
+@click.option("--mask-key", default=None, help="Array inside the --mask file (as --key).")
 @click.option("--mask-nan", is_flag=True, help="NaN entries are missing (default: refused).")
 @click.option("--grid", default=None, help="START:STOP:COUNT scales to sample, within the values' range.")
 @click.option("--block", default=None, help="Entries each task owns along each axis, e.g. 64,64,64 (with --run).")
@@ -769,8 +775,8 @@ threshold_opt = click.option("--threshold", type=float, default=None,
 @_executor_options
 @storage_opts
 @guarded
-def field_cmd(input: str, key: str | None, construction: str, superlevel: bool, mask_nan: bool,
-              grid: str | None, block: str | None, out: str | None, fmt: str | None,
+def field_cmd(input: str, key: str | None, construction: str, superlevel: bool, mask_path: str | None,
+              mask_key: str | None, mask_nan: bool, grid: str | None, block: str | None, out: str | None, fmt: str | None,
               run_url: str | None, discard: bool, progress: bool,
               store_options: dict[str, Any] | None, **how: Any) -> None:
     """The exact curve of an array's cubical filtration (image, volume, any n-D array)."""
@@ -790,10 +796,12 @@ def field_cmd(input: str, key: str | None, construction: str, superlevel: bool, 
         if out is not None and block is not None:
             say("warning: --block applies to --run only")
         fmt = check_output(out, fmt)
-        from .cubical import field_curve
+        from .cubical import check_mask, field_curve
 
         arr = read_field(input, key)
-        curve = field_curve(arr, construction, superlevel=superlevel, mask_nan=mask_nan)
+        mask = None if mask_path is None else \
+            check_mask(read_field(mask_path, mask_key), tuple(arr.shape), what=f"--mask {mask_path}")
+        curve = field_curve(arr, construction, superlevel=superlevel, mask=mask, mask_nan=mask_nan)
         say(f"{arr.ndim}-D array of shape {tuple(arr.shape)} ({arr.dtype}), {construction}: "
             f"{curve.n_jumps} jumps on [{curve.start:g}, {curve.eps:g}], chi(end) = {curve.final}")
         _emit_curve(curve, grid_values, out, fmt)
@@ -806,8 +814,13 @@ def field_cmd(input: str, key: str | None, construction: str, superlevel: bool, 
     source: Any = input if stays_in_place(input) else read_field(input, key)
     if isinstance(source, str) and "://" not in source:
         source = os.path.abspath(source)
-    store = create_or_open(_store_url(run_url), source, params, key=key, storage_options=store_options,
-                           discard=discard)
+    mask: Any = None
+    if mask_path is not None:
+        mask = mask_path if stays_in_place(mask_path) else read_field(mask_path, mask_key)
+        if isinstance(mask, str) and "://" not in mask:
+            mask = os.path.abspath(mask)
+    store = create_or_open(_store_url(run_url), source, params, key=key, mask=mask, mask_key=mask_key,
+                           storage_options=store_options, discard=discard, names={"mask": "--mask"})
     _report(_run_store(store, where, progress), grid_values)
 
 

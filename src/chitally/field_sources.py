@@ -1,7 +1,8 @@
 """Readers for arrays whose cubical filtrations chitally counts (`chitally field`).
 
 ``.npy`` (memory-mapped), ``.npz`` (an array named by key, or its only one), Zarr arrays
-and groups (local path or fsspec URL; key names a group's array), PNG/JPEG images through
+and groups (local path or fsspec URL; key names a group's array), HDF5 datasets
+(``.h5``/``.hdf5`` through h5py; key names one when the file holds several), PNG/JPEG images through
 Pillow and TIFF stacks through tifffile, each only when that library is installed (the
 ``images`` extra). Colour images are converted to grey with Pillow's ``"L"`` conversion.
 """
@@ -17,12 +18,13 @@ from .validate import InputError
 
 IMAGE_ENDINGS = (".png", ".jpg", ".jpeg")
 TIFF_ENDINGS = (".tif", ".tiff")
+HDF5_ENDINGS = (".h5", ".hdf5")
 
 
 def stays_in_place(path: str) -> bool:
-    """Whether a run can read this input where it is (Zarr or .npy), block by block."""
+    """Whether a run can read this input where it is (Zarr, HDF5 or .npy), block by block."""
     lower = path.lower().rstrip("/")
-    return lower.endswith(".npy") or lower.endswith(".zarr") or "://" in path
+    return lower.endswith((".npy", ".zarr", *HDF5_ENDINGS)) or "://" in path
 
 
 def read_field(path: str, key: str | None = None) -> np.ndarray:
@@ -41,6 +43,10 @@ def read_field(path: str, key: str | None = None) -> np.ndarray:
             if name not in names:
                 raise InputError(f"{path} has no array {name!r} ({names})")
             return z[name]
+    if lower.endswith(HDF5_ENDINGS):
+        from .jobs.field import open_field
+
+        return open_field({"format": "hdf5", "url": path, "key": key})[...]
     if lower.endswith(IMAGE_ENDINGS):
         if importlib.util.find_spec("PIL") is None:
             raise InputError(f"{path}: reading PNG/JPEG needs Pillow (pip install 'chitally[images]')")
@@ -60,7 +66,7 @@ def read_field(path: str, key: str | None = None) -> np.ndarray:
         from .jobs.field import open_field
 
         return np.asarray(open_field({"format": "zarr", "url": path, "key": key})[...])
-    raise InputError(f"{path}: unknown array format (.npy, .npz, .zarr, .png, .jpg, .tif)")
+    raise InputError(f"{path}: unknown array format (.npy, .npz, .zarr, .h5, .hdf5, .png, .jpg, .tif)")
 
 
 def list_images(folder: str) -> list[str]:

@@ -7,30 +7,38 @@ the fold sums jump tables exactly and takes the curve's domain from the ranges.
 
 Where the input lives:
 
-- a Zarr array reachable by URL (local path or fsspec URL) or a ``.npy`` file stays
-  where it is: the store records its location and a fingerprint (shape, dtype and the
-  sha256 of a fixed sample of blocks: up to `SAMPLE_BLOCKS` blocks spread evenly over
-  the block grid, always the first and the last), and workers read their blocks from
-  it (a ``.npy`` file through a memory map). The driver never holds more than one
-  block, so its memory does not grow with the array.
+- a Zarr array reachable by URL (local path or fsspec URL), an HDF5 dataset (``.h5``,
+  ``.hdf5``) or a ``.npy`` file stays where it is: the store records its location and
+  a fingerprint (shape, dtype and the sha256 of a fixed sample of blocks: up to
+  `SAMPLE_BLOCKS` blocks spread evenly over the block grid, always the first and the
+  last), and workers read their blocks from it (a ``.npy`` file through a memory map,
+  an HDF5 dataset through h5py, the file opened for each read). The driver never holds
+  more than one block, so its memory does not grow with the array.
 - a numpy array in memory is written into the store as the input ``field`` (its
   fingerprint hashes every entry).
+
+An optional boolean mask of the same shape (True where an entry is part of the complex)
+follows the same rules: one in a file stays there and is read block by block with the
+same halo, one in memory becomes the input ``mask``; its fingerprint sits under
+``mask`` in the input fingerprint, so another mask is another run.
 
 Workers open a URL input with the run store's storage options.
 """
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
+import importlib.util
 import math
 import os
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
-from ..cubical import CONSTRUCTIONS, block_jumps, check_construction, check_field, halo_ranges
+from ..cubical import CONSTRUCTIONS, block_jumps, check_construction, check_field, check_mask, halo_ranges
 from ..curve import Curve
 from ..store import JobSpec, ResultDamaged, RunStore, fingerprint
 from ..validate import InputError
@@ -73,8 +81,86 @@ class FieldParams:
 
 # ---------------------------------------------------------------------------- the input
 
-def _is_npy(path: str) -> bool:
-    return path.lower().endswith(".npy")
+HDF5_ENDINGS = (".h5", ".hdf5")
+
+
+def _format_of(path: str) -> str:
+    lower = path.lower().rstrip("/")
+    if lower.endswith(".npy"):
+        return "npy"
+    if lower.endswith(HDF5_ENDINGS):
+        return "hdf5"
+    return "zarr"
+
+
+class Hdf5Field:
+    """An HDF5 dataset as a sliceable array: shape, dtype and chunks read once, and the
+    file opened for each read, so no handle is held between reads (h5py handles do not
+    pickle, and a worker reads only its own blocks).
+
+    Parameters
+    ----------
+    url : str
+        A local path or an fsspec URL (read through a file object).
+    key : str, optional
+        The dataset's path in the file; needed only when the file holds more than one.
+    storage_options : mapping, optional
+        fsspec options for a URL.
+    """
+
+    def __init__(self, url: str, key: str | None = None,
+                 storage_options: Mapping[str, Any] | None = None) -> None:
+        if importlib.util.find_spec("h5py") is None:
+            raise InputError(f"{url}: reading HDF5 needs h5py (pip install h5py)")
+        self.url = url
+        self.storage_options = dict(storage_options or {})
+        self.key = key
+        with self._dataset() as d:
+            self.key = d.name
+            self.shape = tuple(int(x) for x in d.shape)
+            self.dtype = d.dtype
+            self.chunks = None if d.chunks is None else tuple(int(c) for c in d.chunks)
+            self.ndim = len(self.shape)
+
+    @contextlib.contextmanager
+    def _dataset(self) -> Iterator[Any]:
+        import h5py
+
+        try:
+            with contextlib.ExitStack() as stack:
+                if "://" in self.url:
+                    import fsspec
+
+                    target: Any = stack.enter_context(fsspec.open(self.url, "rb", **self.storage_options))
+                else:
+                    target = self.url
+                h5 = stack.enter_context(h5py.File(target, "r"))
+                yield self._pick(h5)
+        except InputError:
+            raise
+        except (OSError, ValueError, KeyError, TypeError) as exc:
+            first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+            raise InputError(f"cannot read {self.url} as HDF5: {first}") from exc
+
+    def _pick(self, h5: Any) -> Any:
+        import h5py
+
+        datasets: list[str] = []
+        h5.visititems(lambda name, obj: datasets.append(name) if isinstance(obj, h5py.Dataset) else None)
+        if self.key is None:
+            if len(datasets) != 1:
+                raise InputError(f"{self.url} holds {len(datasets)} HDF5 datasets: name one with key "
+                                 f"({sorted(datasets)})")
+            return h5[datasets[0]]
+        node = h5.get(self.key)
+        if not isinstance(node, h5py.Dataset):
+            what = "no dataset" if node is None else "a group, not a dataset, at"
+            raise InputError(f"{self.url} has {what} {self.key!r} (datasets: {sorted(datasets)})")
+        return node
+
+    def __getitem__(self, selection: Any) -> np.ndarray:
+        with self._dataset() as d:
+            return np.asarray(d[selection])
 
 
 def open_field(location: Mapping[str, Any], storage_options: Mapping[str, Any] | None = None) -> Any:
@@ -82,6 +168,8 @@ def open_field(location: Mapping[str, Any], storage_options: Mapping[str, Any] |
     url, key = location["url"], location.get("key")
     if location["format"] == "npy":
         return np.load(url, mmap_mode="r", allow_pickle=False)
+    if location["format"] == "hdf5":
+        return Hdf5Field(url, key, storage_options if "://" in url else None)
     import zarr
 
     so = dict(storage_options or {}) if "://" in url else None
@@ -101,14 +189,15 @@ def open_field(location: Mapping[str, Any], storage_options: Mapping[str, Any] |
 
 
 def locate(source: Any, key: str | None = None) -> dict[str, Any] | None:
-    """Where a field input stays (a Zarr or .npy location), or None for in-memory data."""
+    """Where a field input stays (a Zarr, HDF5 or .npy location), or None for in-memory
+    data."""
     if isinstance(source, (str, os.PathLike)):
         url = os.fspath(source)
         if "://" not in url:
             if not os.path.exists(url):
                 raise InputError(f"no such file or directory: {url}")
             url = os.path.abspath(url)
-        return {"format": "npy" if _is_npy(url) else "zarr", "url": url, "key": key}
+        return {"format": _format_of(url), "url": url, "key": key}
     return None
 
 
@@ -171,14 +260,18 @@ def sample_fingerprint(arr: Any, block: tuple[int, ...], location: Mapping[str, 
 
 # ---------------------------------------------------------------------------- planning
 
+#: A prepared input: (array handle, location), the location None for data in memory.
+Prepared = tuple[Any, dict[str, Any] | None]
+
+
 def job_spec(arr: Any, params: FieldParams, location: Mapping[str, Any] | None,
-             fp: Mapping[str, Any] | None = None) -> JobSpec:
+             fp: Mapping[str, Any] | None = None, mask: Prepared | None = None) -> JobSpec:
     """The run store contents for a field (pure apart from reading the fingerprint
     sample of a located input)."""
     shape = tuple(int(s) for s in arr.shape)
     block = block_shape(shape, _chunks(arr) if location else None, params.block)
     n_tasks = math.prod(grid_of(shape, block))
-    itemsize = np.dtype(arr.dtype).itemsize
+    itemsize = np.dtype(arr.dtype).itemsize + (1 if mask is not None else 0)
     halo_entries = math.prod(min(b + 2, s) for b, s in zip(block, shape))
     cost = np.array([math.prod(sl.stop - sl.start for sl in owned_slices(i, shape, block))
                      for i in range(n_tasks)], dtype=np.float64) if n_tasks <= 1 << 16 else \
@@ -190,49 +283,104 @@ def job_spec(arr: Any, params: FieldParams, location: Mapping[str, Any] | None,
     inputs: dict[str, Any] = {}
     if location is None:
         inputs["field"] = np.asarray(arr)
+    if mask is not None:
+        m, m_location = mask
+        attrs["mask"] = {"location": None if m_location is None else dict(m_location)}
+        if m_location is None:
+            inputs["mask"] = np.asarray(m)
     return JobSpec(kind=FIELD.name, params=params.as_dict(),
-                   fingerprint=fp if fp is not None else fingerprint_of(arr, params, location),
+                   fingerprint=fp if fp is not None else fingerprint_of(arr, params, location, mask),
                    outputs=FIELD.outputs, cost=cost, memory=memory, inputs=inputs, attrs=attrs)
 
 
-def fingerprint_of(arr: Any, params: FieldParams, location: Mapping[str, Any] | None) -> dict[str, Any]:
+def _content_fingerprint(arr: Any, params: FieldParams, location: Mapping[str, Any] | None,
+                         block_of: Any) -> dict[str, Any]:
     if location is None:
         fp = fingerprint(np.asarray(arr).reshape(-1))
         fp["shape"] = [int(s) for s in arr.shape]
         return fp
     shape = tuple(int(s) for s in arr.shape)
-    return sample_fingerprint(arr, block_shape(shape, _chunks(arr), params.block), location)
+    return sample_fingerprint(arr, block_shape(shape, _chunks(block_of), params.block), location)
+
+
+def fingerprint_of(arr: Any, params: FieldParams, location: Mapping[str, Any] | None,
+                   mask: Prepared | None = None) -> dict[str, Any]:
+    """The input's fingerprint; a mask's own sits under ``mask`` (absent without one, so
+    stores made before masks existed still match)."""
+    fp = _content_fingerprint(arr, params, location, arr)
+    if mask is not None:
+        # a located mask is sampled on the field's block grid
+        fp["mask"] = _content_fingerprint(mask[0], params, mask[1], arr if location else None)
+    return fp
+
+
+def _probe(arr: Any) -> np.ndarray:
+    """One entry of `arr`'s dtype per axis (or its empty shape): checks dtype,
+    dimensions and emptiness without reading data."""
+    shape = tuple(int(s) for s in arr.shape)
+    return np.empty((1,) * len(shape) if all(shape) else shape, dtype=arr.dtype)
 
 
 def prepare(source: Any, key: str | None = None,
-            storage_options: Mapping[str, Any] | None = None) -> tuple[Any, dict[str, Any] | None]:
-    """(array handle, location) for a numpy array, a Zarr URL or a ``.npy`` path."""
+            storage_options: Mapping[str, Any] | None = None) -> Prepared:
+    """(array handle, location) for a numpy array, a Zarr URL, an HDF5 file or a
+    ``.npy`` path."""
     location = locate(source, key)
     if location is None:
         return check_field(source), None
     arr = open_field(location, storage_options)
-    # checks dtype, dimensions and emptiness on one entry, not the data
-    probe = np.empty(tuple(arr.shape) and (1,) * len(arr.shape), dtype=arr.dtype) if all(arr.shape) else \
-        np.empty(tuple(int(s) for s in arr.shape), dtype=arr.dtype)
-    check_field(probe, what=location["url"])
+    check_field(_probe(arr), what=location["url"])
     return arr, location
 
 
+def prepare_mask(source: Any, shape: tuple[int, ...], key: str | None = None,
+                 storage_options: Mapping[str, Any] | None = None, *, name: str = "mask") -> Prepared | None:
+    """(mask handle, location) for a boolean array of `shape` in memory or in a file
+    that stays where it is (``.npy``, Zarr, HDF5); None for no mask. Dtype and shape
+    are checked from the metadata, not the data."""
+    if source is None:
+        return None
+    location = locate(source, key)
+    if location is None:
+        return check_mask(source, shape, what=name), None
+    handle = open_field(location, storage_options)
+    if np.dtype(handle.dtype) != np.bool_:
+        raise InputError(f"{name} {location['url']} must be boolean (True where an entry is part of the "
+                         f"complex), got dtype {np.dtype(handle.dtype)}")
+    if tuple(int(s) for s in handle.shape) != tuple(shape):
+        raise InputError(f"{name} {location['url']} has shape {tuple(int(s) for s in handle.shape)}, "
+                         f"the array {tuple(shape)}")
+    return handle, location
+
+
 def create_or_open(url: str, source: Any, params: FieldParams, *, key: str | None = None,
+                   mask: Any = None, mask_key: str | None = None,
                    storage_options: Mapping[str, Any] | None = None,
-                   discard: bool = False) -> RunStore:
-    """The field run store at `url` for this input and these parameters: opened if it
-    exists (and must match), else planned and created."""
+                   discard: bool = False, names: Mapping[str, str] | None = None) -> RunStore:
+    """The field run store at `url` for this input (and `mask`) and these parameters:
+    opened if it exists (and must match), else planned and created. `names` spells the
+    mask's parameter as the caller does in messages (``{"mask": "--mask"}``)."""
     from ..runs import open_or_create
 
     arr, location = prepare(source, key, storage_options)
-    fp = fingerprint_of(arr, params, location)
+    prepared_mask = prepare_mask(mask, tuple(int(s) for s in arr.shape), mask_key, storage_options,
+                                 name=(names or {}).get("mask", "mask"))
+    fp = fingerprint_of(arr, params, location, prepared_mask)
     return open_or_create(url, FIELD.name, params.as_dict(), fp,
-                          lambda: job_spec(arr, params, location, fp),
+                          lambda: job_spec(arr, params, location, fp, prepared_mask),
                           storage_options=storage_options, discard=discard)
 
 
 # ---------------------------------------------------------------------------- the task
+
+def _read_block(store: RunStore, name: str, location: Mapping[str, Any] | None,
+                sel: tuple[slice, ...], task: int) -> np.ndarray:
+    """Entries `sel` of the input `name`, from the store or from where it stays."""
+    if location is None:
+        return store.read_input(name, sel, task=task)
+    handle = open_field(location, store.io.storage_options)
+    return store.io.op(f"read {name} block", location["url"], lambda: np.asarray(handle[sel]), task=task)
+
 
 def compute_task(store: RunStore, i: int, *, threads: int = 1) -> tuple[dict[str, np.ndarray], dict[str, int]]:
     """The task function: the jump table of the cells block `i` owns."""
@@ -241,16 +389,18 @@ def compute_task(store: RunStore, i: int, *, threads: int = 1) -> tuple[dict[str
     owned = owned_slices(i, shape, block)
     ext = halo_ranges([(s.start, s.stop) for s in owned], shape)
     sel = tuple(slice(lo, hi) for lo, hi in ext)
-    if a["location"] is None:
-        halo = store.read_input("field", sel, task=i)
-    else:
-        handle = open_field(a["location"], store.io.storage_options)
-        halo = store.io.op("read field block", a["location"]["url"], lambda: np.asarray(handle[sel]), task=i)
+    halo = _read_block(store, "field", a["location"], sel, i)
+    mask_spec = a.get("mask")
+    halo_mask = None if mask_spec is None else \
+        _read_block(store, "mask", mask_spec["location"], sel, i).astype(bool, copy=False)
     values, jumps = block_jumps(None, p["construction"], owned, superlevel=p["superlevel"],
                                 mask_nan=p["mask_nan"], halo=halo, halo_offset=[lo for lo, _ in ext],
-                                shape=shape)
-    own = halo[tuple(slice(s.start - lo, s.stop - lo) for s, (lo, _) in zip(owned, ext))]
-    present = ~np.isnan(own) if own.dtype.kind == "f" and p["mask_nan"] else None
+                                halo_mask=halo_mask, shape=shape)
+    own_sel = tuple(slice(s.start - lo, s.stop - lo) for s, (lo, _) in zip(owned, ext))
+    own = halo[own_sel]
+    present = None if halo_mask is None else halo_mask[own_sel]
+    if own.dtype.kind == "f" and p["mask_nan"]:
+        present = ~np.isnan(own) if present is None else present & ~np.isnan(own)
     vals = own if present is None else own[present]
     n_present = int(vals.size)
     if n_present:
@@ -318,7 +468,8 @@ def read_curve(store: RunStore) -> Curve | None:
 
 
 def field_run(array_or_url: Any, store: str, where: Any = None, *, key: str | None = None,
-              construction: str = "vertices", superlevel: bool = False, mask_nan: bool = False,
+              construction: str = "vertices", superlevel: bool = False, mask: Any = None,
+              mask_key: str | None = None, mask_nan: bool = False,
               block: Any = None, storage_options: Mapping[str, Any] | None = None,
               discard: bool = False, events: Any = None) -> Any:
     """Compute a field's exact curve as a resumable run on the run store `store`.
@@ -327,7 +478,8 @@ def field_run(array_or_url: Any, store: str, where: Any = None, *, key: str | No
     ----------
     array_or_url : ndarray, str or path
         A numpy array (written into the store), a Zarr array's URL (a group's array
-        named by `key`) or a ``.npy`` path; the last two stay where they are.
+        named by `key`), an HDF5 file (``.h5``, ``.hdf5``; its dataset named by `key`
+        unless it holds one) or a ``.npy`` path; the last three stay where they are.
     store : str
         The run store's URL; an existing store for the same input and parameters is
         resumed.
@@ -335,6 +487,10 @@ def field_run(array_or_url: Any, store: str, where: Any = None, *, key: str | No
         Where tasks run; default: serially in this process.
     construction, superlevel, mask_nan
         As in `chitally.cubical.field_curve`.
+    mask : ndarray of bool, str or path, optional
+        True where an entry is part of the complex: a boolean array of the input's shape,
+        in memory (written into the store) or in a ``.npy``, Zarr or HDF5 file (read
+        block by block where it is; `mask_key` names its array or dataset).
     block : sequence of int, optional
         The entries each task owns along each axis (default: whole chunks of the input,
         about 4 million entries).
@@ -347,10 +503,10 @@ def field_run(array_or_url: Any, store: str, where: Any = None, *, key: str | No
     from ..runs import Where, run
 
     params = FieldParams.checked(construction, superlevel, mask_nan, block)
-    rs = create_or_open(store, array_or_url, params, key=key, storage_options=storage_options,
-                        discard=discard)
+    rs = create_or_open(store, array_or_url, params, key=key, mask=mask, mask_key=mask_key,
+                        storage_options=storage_options, discard=discard)
     return run(rs, where if where is not None else Where(serial=True), events=events)
 
 
-__all__ = ["CONSTRUCTIONS", "FieldParams", "FieldSum", "compute_task", "create_or_open", "field_run",
-           "job_spec", "open_field", "owned_slices", "read_curve"]
+__all__ = ["CONSTRUCTIONS", "FieldParams", "FieldSum", "Hdf5Field", "compute_task", "create_or_open",
+           "field_run", "job_spec", "open_field", "owned_slices", "prepare_mask", "read_curve"]
