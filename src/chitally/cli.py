@@ -456,7 +456,12 @@ def _run_store(store: Any, where: Any, progress: bool) -> Any:
     from .jobs import kind_of
     from .runs import run
 
-    bar = ProgressBar(progress, kind_of(store.kind).unit)
+    unit = kind_of(store.kind).unit
+    if store.kind == "batch":  # a batch counts its own items (clouds, graphs or fields)
+        from .jobs.batch import items_of
+
+        unit = items_of(store.params)
+    bar = ProgressBar(progress, unit)
     try:
         return run(store, where, events=bar, on_pending=bar.on_pending, on_connect=bar.on_connect)
     finally:
