@@ -321,6 +321,44 @@ def batch_reference(inp: SimpleInput) -> dict[str, Any]:
     return {"chitally.feature_matrix in process (rows checked against gudhi RipsComplex)": fm}
 
 
+FIELD_GRID = tuple(np.arange(-1.0, 6.0, 0.5).tolist())
+
+
+@functools.cache
+def batch_fields(inp: SimpleInput) -> tuple[np.ndarray, ...]:
+    """2-D and 3-D arrays of several shapes with tied integer values."""
+    rng = np.random.default_rng(inp.seed)
+    shapes = [tuple(int(x) for x in rng.integers(2, 9, int(rng.integers(2, 4)))) for _ in range(inp.size)]
+    return tuple(rng.integers(0, 5, shape).astype(np.int16) for shape in shapes)
+
+
+def _field_construction(inp: SimpleInput) -> str:
+    return "cells" if inp.seed % 2 else "vertices"
+
+
+def field_batch_store(tmp_path: Path, inp: SimpleInput, name: str = "run") -> RunStore:
+    from chitally.field_sources import read_fields
+    from chitally.jobs import batch
+
+    fields = batch_fields(inp)
+    total = float(batch.field_cost(np.array([a.size for a in fields]), np.array([a.ndim for a in fields])).sum())
+    params = batch.FieldBatchParams.checked(FIELD_GRID, _field_construction(inp), task_cost=total / 5)
+    return batch.create_or_open_fields(str(tmp_path / f"{name}.zarr"), read_fields(list(fields)), params)
+
+
+def field_batch_reference(inp: SimpleInput) -> dict[str, Any]:
+    from cubical_references import gudhi_chi
+
+    from chitally import feature_matrix
+
+    fields = list(batch_fields(inp))
+    grid = np.asarray(FIELD_GRID)
+    construction = _field_construction(inp)
+    fm = feature_matrix(fields, grid=grid, construction=construction, threads=1)
+    assert all(np.array_equal(row, gudhi_chi(a, construction, grid)) for row, a in zip(fm.values, fields))
+    return {"chitally.feature_matrix of fields in process (rows checked against gudhi CubicalComplex)": fm}
+
+
 @functools.cache
 def random_graph(inp: SimpleInput) -> Any:
     import networkx as nx
@@ -508,6 +546,13 @@ JOB_KINDS: dict[str, JobKindCase] = {
         small=SimpleInput("clouds", 30, 1),
         make_store=batch_store,
         reference=batch_reference,
+    ),
+    "batch-fields": JobKindCase(
+        name="batch",
+        inputs=(SimpleInput("fields", 24, 1), SimpleInput("fields", 9, 2)),
+        small=SimpleInput("fields", 24, 1),
+        make_store=field_batch_store,
+        reference=field_batch_reference,
     ),
     "graph": JobKindCase(
         name="graph",

@@ -39,7 +39,7 @@ def _env() -> dict[str, str]:
 
 
 @pytest.mark.parametrize("name", ["single_cloud.py", "feature_matrix.py", "classifier.py", "compare_catalogues.py",
-                                  "graphs_and_fields.py",
+                                  "graphs_and_fields.py", "image_features.py",
                                   "distributed_run.py"])
 def test_python_examples_run_as_scripts(name, tmp_path):
     res = subprocess.run([sys.executable, str(EXAMPLES / name)], cwd=tmp_path, env=_env(),
@@ -56,11 +56,18 @@ def test_cli_example_runs(tmp_path):
         np.save(tmp_path / "clouds" / f"c{i}.npy", rng.random((60, 3)))
     (tmp_path / "edges.csv").write_text("u,v\n0,1\n1,2\n2,0\n2,3\n")
     np.save(tmp_path / "image.npy", rng.normal(size=(64, 64)))
+    from PIL import Image
+
+    for label in ("plain", "speckled"):  # a folder of images, one subfolder per class
+        (tmp_path / "textures" / label).mkdir(parents=True)
+        for i in range(4):
+            Image.fromarray(rng.integers(0, 256, (24, 24), dtype=np.uint8)).save(
+                tmp_path / "textures" / label / f"{i}.png")
     bindir = Path(sys.executable).parent
     env = _env()
     env["PATH"] = os.pathsep.join([str(bindir), env.get("PATH", "")])
     res = subprocess.run(["bash", "-e", str(EXAMPLES / "cli.sh")], cwd=tmp_path, env=env,
                          capture_output=True, text=True, timeout=900)
     assert res.returncode == 0, res.stderr[-3000:]
-    for name in ("curve.json", "features.csv", "graph-curve.csv", "field-curve.csv"):
+    for name in ("curve.json", "features.csv", "graph-curve.csv", "field-curve.csv", "texture-features.csv"):
         assert (tmp_path / name).exists(), name

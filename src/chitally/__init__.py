@@ -2,10 +2,11 @@
 
 The public API is small: `euler_curve` computes a point cloud's curve in process, `Curve`
 is the exact step function, `read_points` loads any supported input, `feature_matrix` and
-`CurveFeatures` turn many clouds or graphs into an exact feature matrix, `graph_curve`
-and `graph_run` give the curve of a graph filtration (in process, or over tasks on the
-engine), and `chitally.runs` drives resumable runs on a run store. Attributes are imported on first use, so that
-``import chitally`` (and the command line) starts fast.
+`CurveFeatures` turn many clouds, graphs or fields (images, volumes) into an exact
+feature matrix, `graph_curve` and `graph_run` give the curve of a graph filtration (in
+process, or over tasks on the engine), `field_curve` the curve of an array's cubical
+filtration, and `chitally.runs` drives resumable runs on a run store. Attributes are
+imported on first use, so that ``import chitally`` (and the command line) starts fast.
 """
 
 from __future__ import annotations

@@ -456,7 +456,12 @@ def _run_store(store: Any, where: Any, progress: bool) -> Any:
     from .jobs import kind_of
     from .runs import run
 
-    bar = ProgressBar(progress, kind_of(store.kind).unit)
+    unit = kind_of(store.kind).unit
+    if store.kind == "batch":  # a batch counts its own items (clouds, graphs or fields)
+        from .jobs.batch import items_of
+
+        unit = items_of(store.params)
+    bar = ProgressBar(progress, unit)
     try:
         return run(store, where, events=bar, on_pending=bar.on_pending, on_connect=bar.on_connect)
     finally:
@@ -829,16 +834,28 @@ def field_cmd(input: str, key: str | None, construction: str, superlevel: bool, 
 @click.option("--eps", type=float, default=None,
               help="Point clouds: largest scale (> 0): edges join points at distance <= eps.")
 @click.option("--grid", required=True,
-              help="Sample every curve on START:STOP:COUNT scales (in [0, eps] for clouds).")
+              help="Sample every curve on START:STOP:COUNT scales (in [0, eps] for clouds; any scales for "
+                   "graphs and fields, negated with --superlevel).")
 @dim_opt
-@click.option("--normalise", is_flag=True, help="Divide each row by its cloud's points (graph's vertices).")
+@click.option("--normalise", is_flag=True,
+              help="Divide each row by its cloud's points (graph's vertices, field's present entries).")
 @click.option("--labels", default=None, type=click.Path(exists=True, dir_okay=False),
               help="CSV of name,label lines; labels travel with the rows (a graph collection's own "
-                   "labels otherwise).")
+                   "labels, or a field folder's class subfolders, otherwise).")
 @key_opt
 @click.option("--graphs", is_flag=True,
               help="INPUT is a folder of edge lists (detected for the benchmark layout and for "
                    ".edges/.edgelist files).")
+@click.option("--fields", is_flag=True,
+              help="INPUT holds arrays (images, volumes): a folder of images or .npy arrays, or of one "
+                   "subfolder per class (the subfolder names are the labels), or one .npy/.zarr stack "
+                   "whose first axis indexes the items (detected for folders of PNG/JPEG/TIFF images, "
+                   "implied by --construction and --mask-nan).")
+@click.option("--construction", type=click.Choice(["vertices", "cells"]), default=None,
+              help="Fields: vertices (entries are vertices, cubes take the max of their corners; "
+                   "4/6-connected; the default) or cells (entries are top cubes, faces take the min "
+                   "around them; 8/26-connected).")
+@click.option("--mask-nan", is_flag=True, help="Fields: NaN entries are missing (default: refused).")
 @values_opt
 @weights_opt
 @superlevel_opt
@@ -854,16 +871,28 @@ def field_cmd(input: str, key: str | None, construction: str, superlevel: bool, 
 @guarded
 def batch_cmd(input: str, eps: float | None, grid: str, max_dim: int | None, normalise: bool,
               labels: str | None, key: str | None, columns: str | None, index_col: str | None,
-              graphs: bool, values: str | None, weights: str | None, superlevel: bool,
+              graphs: bool, fields: bool, construction: str | None, mask_nan: bool,
+              values: str | None, weights: str | None, superlevel: bool,
               threshold: float | None, task_cost: float | None, metric: str | None, out: str, discard: bool,
               progress: bool, store_options: dict[str, Any] | None, **how: Any) -> None:
     """A feature matrix: every cloud of INPUT (a folder of point files, an .npz of
-    arrays, a 3-D .npy or a Zarr group), or every graph of INPUT (a folder in the graph
-    benchmark layout, or of edge lists), as its exact curve sampled on the grid. A
-    graph's row is 0 at scales below its smallest vertex value."""
+    arrays, a 3-D .npy or a Zarr group), every graph of INPUT (a folder in the graph
+    benchmark layout, or of edge lists), or every field of INPUT (--fields: a folder of
+    images or .npy arrays, or of one subfolder per class; a .npy or Zarr stack whose
+    first axis indexes the items; an .npz of arrays), as its exact curve sampled on the
+    grid. A graph's or field's row is 0 at scales below its smallest value and the whole
+    complex's value above its largest."""
+    from .field_sources import is_field_collection
     from .graph_sources import is_graph_collection
 
     grid_values = _grid(grid)
+    if fields or construction is not None or mask_nan or (not graphs and is_field_collection(input)):
+        if graphs:
+            fail("--graphs and --fields (or --construction, --mask-nan): INPUT is one or the other", EXIT_USAGE)
+        _field_batch(input, eps, grid_values, max_dim, normalise, labels, key, columns, index_col, construction,
+                     mask_nan, values, weights, superlevel, threshold, task_cost, metric, out, discard, progress,
+                     how, store_options)
+        return
     if graphs or is_graph_collection(input):
         if metric is not None:
             fail("--metric applies to point clouds; graphs have no coordinates", EXIT_USAGE)
@@ -923,6 +952,36 @@ def _graph_batch(input: str, eps: float | None, grid_values: Any, max_dim: int |
                                   discard=discard)
     say(f"{len(col)} graphs, {sum(g.n for g in col.graphs)} vertices, "
         f"{sum(g.n_edges for g in col.graphs)} edges, {store.n_tasks} tasks"
+        f"{'' if col.labels is None else ', with labels'}")
+    _report(_run_store(store, where, progress))
+
+
+def _field_batch(input: str, eps: float | None, grid_values: Any, max_dim: int | None, normalise: bool,
+                 labels: str | None, key: str | None, columns: str | None, index_col: str | None,
+                 construction: str | None, mask_nan: bool, values: str | None, weights: str | None,
+                 superlevel: bool, threshold: float | None, task_cost: float | None, metric: str | None,
+                 out: str, discard: bool, progress: bool, how: dict[str, Any],
+                 store_options: dict[str, Any] | None = None) -> None:
+    from .clouds import read_labels
+    from .field_sources import read_fields
+    from .jobs.batch import FieldBatchParams, create_or_open_fields
+
+    for option, value in (("--eps", eps), ("--max-dim", max_dim), ("--values", values), ("--weights", weights),
+                          ("--threshold", threshold), ("--metric", metric), ("--columns", columns),
+                          ("--index-col", index_col)):
+        if value is not None:
+            fail(f"{option} does not apply to fields (arrays); see `chitally batch --help`", EXIT_USAGE)
+    params = FieldBatchParams.checked(grid_values, construction or "vertices", superlevel, mask_nan, normalise,
+                                      task_cost, names={"construction": "--construction", "grid": "--grid",
+                                                        "task_cost": "--task-cost"})
+    where = _where(**how)
+    col = read_fields(input, key=key)
+    if labels is not None:
+        col = col.with_labels(read_labels(labels, col.names, item="field"))
+    store = create_or_open_fields(_store_url(out), col, params, storage_options=store_options, discard=discard)
+    shapes = {tuple(a.shape) for a in col.fields}
+    shape = f"shape {shapes.pop()}" if len(shapes) == 1 else f"{len(shapes)} shapes"
+    say(f"{len(col)} fields ({shape}), {sum(a.size for a in col.fields)} entries, {store.n_tasks} tasks"
         f"{'' if col.labels is None else ', with labels'}")
     _report(_run_store(store, where, progress))
 

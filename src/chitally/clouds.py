@@ -127,9 +127,10 @@ def _read_path(path: str, key: str | None) -> Collection:
                      ".npy or a Zarr group")
 
 
-def read_labels(source: Any, names: Sequence[str]) -> tuple[Any, ...]:
+def read_labels(source: Any, names: Sequence[str], *, item: str = "cloud") -> tuple[Any, ...]:
     """Labels in `names`' order, from a sequence or a CSV file of ``name,label`` lines
-    (a header line ``name,label`` is allowed). Every cloud needs a label."""
+    (a header line ``name,label`` is allowed). Every item needs a label; `item` is
+    what the messages call one (cloud, field)."""
     if isinstance(source, (str, os.PathLike)):
         found: dict[str, str] = {}
         with open(source, newline="") as f:
@@ -143,9 +144,9 @@ def read_labels(source: Any, names: Sequence[str]) -> tuple[Any, ...]:
                 found[row[0].strip()] = row[1].strip()
         missing = [n for n in names if n not in found]
         if missing:
-            raise InputError(f"{source}: no label for cloud {missing[0]!r} ({len(missing)} missing)")
+            raise InputError(f"{source}: no label for {item} {missing[0]!r} ({len(missing)} missing)")
         return tuple(found[n] for n in names)
     labels = tuple(source)
     if len(labels) != len(names):
-        raise InputError(f"{len(labels)} labels for {len(names)} clouds")
+        raise InputError(f"{len(labels)} labels for {len(names)} {item}s")
     return labels

@@ -1,19 +1,24 @@
-"""Feature matrices: exact curves of many clouds or graphs sampled on a grid, for
-machine learning.
+"""Feature matrices: exact curves of many clouds, graphs or fields sampled on a grid,
+for machine learning.
 
-`feature_matrix` computes one row per cloud or graph, in this process (threads over
-groups of items) or through a run store on the engine (resumable, on any cluster).
+`feature_matrix` computes one row per cloud, graph or field, in this process (threads
+over groups of items) or through a run store on the engine (resumable, on any cluster).
 `CurveFeatures` is the same as a scikit-learn transformer. Both share the batch kind's
 computation, so a cloud's row is always ``euler_curve(cloud).sample(grid)`` exactly
-(divided by the cloud's size when normalised), and a graph's row is
-``graph_curve(graph, ...).sample(grid)`` wherever the grid lies in that graph's domain,
+(divided by the cloud's size when normalised), a graph's row is
+``graph_curve(graph, ...).sample(grid)`` and a field's row
+``field_curve(field, ...).sample(grid)`` wherever the grid lies in that item's domain,
 0 below it (the empty complex) and the whole complex's value above it.
 
-Graphs or clouds? Graphs when ``graphs=True``; when the items are graph objects
-(networkx graphs, scipy sparse matrices, `GraphData`, a `GraphCollection`) or a folder
-of graphs (the benchmark layout with its ``<NAME>_A.txt``, or only ``.edges`` /
-``.edgelist`` files); or when no eps is given (clouds need one). Edge arrays given with
-an eps are read as clouds: pass ``graphs=True``.
+Fields (arrays: images, volumes) when ``fields=True``, when a ``construction`` or
+``mask_nan=True`` is given (only fields take them), or when the items are a
+`FieldCollection` or a folder of PNG/JPEG/TIFF images (directly or one subfolder per
+class). Graphs when ``graphs=True``; when the items are graph objects (networkx graphs,
+scipy sparse matrices, `GraphData`, a `GraphCollection`) or a folder of graphs (the
+benchmark layout with its ``<NAME>_A.txt``, or only ``.edges`` / ``.edgelist`` files);
+or when no eps is given (clouds need one). Clouds otherwise. A list of 2-D arrays could
+be clouds, edge arrays or images: say which with ``fields=True`` or ``graphs=True``
+(or an eps for clouds).
 """
 
 from __future__ import annotations
@@ -30,10 +35,14 @@ import numpy as np
 from .clouds import Collection, read_collection, read_labels
 from .jobs.batch import (
     BatchParams,
+    FieldBatchParams,
     GraphBatchParams,
     checked_grid,
     cloud_cost,
     cloud_rows,
+    field_cost,
+    field_rows,
+    field_sizes,
     graph_cost,
     graph_rows,
     group,
@@ -55,7 +64,7 @@ def grid_names(grid: Sequence[float]) -> list[str]:
 
 @dataclass(frozen=True, eq=False)
 class FeatureMatrix:
-    """A feature matrix: one row per cloud or graph (its curve on the grid), with names.
+    """A feature matrix: one row per cloud, graph or field (its curve on the grid), with names.
 
     Attributes
     ----------
@@ -65,9 +74,9 @@ class FeatureMatrix:
     grid : ndarray of float64
     labels : tuple or None
     sizes : ndarray of int64
-        Points per cloud, or vertices per graph.
+        Points per cloud, vertices per graph, or present entries per field.
     eps : float or None
-        The clouds' largest scale (None for graphs).
+        The clouds' largest scale (None for graphs and fields).
     """
 
     values: np.ndarray
@@ -171,6 +180,70 @@ def _graphs_in_process(col: Any, params: GraphBatchParams, threads: int | None) 
                                                     params.threshold, grid), grid.size, threads)
 
 
+def _fields_in_process(col: Any, params: FieldBatchParams, threads: int | None) -> np.ndarray:
+    grid = np.asarray(params.grid, np.float64)
+    costs = field_cost(np.array([a.size for a in col.fields]), np.array([a.ndim for a in col.fields]))
+    return _in_groups(costs, lambda ids: field_rows([col.fields[i] for i in ids], params.construction,
+                                                    params.superlevel, params.mask_nan, grid), grid.size, threads)
+
+
+def _are_fields(items: Any, fields: bool | None, construction: Any, mask_nan: Any, graphs: bool | None) -> bool:
+    """Whether the items are fields (see the module's description); options only
+    fields take, given to other items, are refused."""
+    if fields is not None:
+        if fields and graphs:
+            raise InputError("fields and graphs: the items are one or the other")
+        if not fields and (construction is not None or mask_nan is not False):
+            raise InputError(f"{'construction' if construction is not None else 'mask_nan'} applies to "
+                             "fields (arrays), not to clouds or graphs")
+        return bool(fields)
+    if construction is not None or mask_nan is not False:
+        if graphs:
+            raise InputError(f"{'construction' if construction is not None else 'mask_nan'} applies to "
+                             "fields (arrays), not to graphs")
+        return True
+    if graphs:
+        return False
+    from .field_sources import is_field_collection
+
+    return is_field_collection(items)
+
+
+def _field_params(grid: Any, eps: Any, max_dim: Any, normalise: Any, construction: Any, superlevel: Any,
+                  mask_nan: Any, options: Mapping[str, Any], metric: Any) -> FieldBatchParams:
+    """Validated field parameters; eps, a cap, a metric and the graph options are refused."""
+    if eps is not None:
+        raise InputError("eps is the largest scale of point clouds; a field's curve spans its values")
+    if max_dim is not None:
+        raise InputError("max_dim applies to clouds and graphs; a field's cubes go up to its number of dimensions")
+    if validate_metric(metric) != "euclidean":
+        raise InputError("metric applies to point clouds, not to fields")
+    given = [k for k in _graph_options_given(options) if k != "superlevel"]
+    if given:
+        raise InputError(f"{given[0]} applies to graphs, not to fields")
+    return FieldBatchParams.checked(grid, "vertices" if construction is None else construction, superlevel,
+                                    mask_nan, normalise)
+
+
+def _field_matrix(items: Any, params: FieldBatchParams, names: Sequence[str] | None, labels: Any,
+                  store: str | None, where: Any, threads: int | None,
+                  storage_options: Mapping[str, Any] | None) -> FeatureMatrix:
+    from .field_sources import read_fields
+
+    col = read_fields(items, names=names)
+    if labels is not None:
+        col = col.with_labels(read_labels(labels, col.names, item="field"))
+    if store is None:
+        sizes = field_sizes(col, params)
+        counts = _fields_in_process(col, params, threads)
+        return FeatureMatrix.of_counts(counts, sizes, names=col.names, labels=col.labels, grid=params.grid,
+                                       eps=None, max_dim=None, normalise=params.normalise)
+    from .jobs.batch import create_or_open_fields
+
+    rs = create_or_open_fields(store, col, params, storage_options=storage_options)
+    return _run_matrix(rs, where)
+
+
 def _are_graphs(items: Any, eps: Any, graphs: bool | None) -> bool:
     if graphs is not None:
         return bool(graphs)
@@ -231,37 +304,51 @@ def _run_matrix(rs: Any, where: Any) -> FeatureMatrix:
 def feature_matrix(clouds: Any, eps: float | None = None, grid: Any = None, max_dim: int | None = None,
                    normalise: bool = False, *, values: Any = "auto", weights: Any = None,
                    superlevel: bool = False, threshold: float | None = None, graphs: bool | None = None,
+                   fields: bool | None = None, construction: str | None = None, mask_nan: bool = False,
                    names: Sequence[str] | None = None,
                    labels: Any = None, store: str | None = None, where: Any = None,
                    threads: int | None = None, storage_options: Mapping[str, Any] | None = None,
                    metric: str = "euclidean") -> FeatureMatrix:
-    """The exact feature matrix of a collection of clouds or graphs.
+    """The exact feature matrix of a collection of clouds, graphs or fields.
 
     Parameters
     ----------
-    clouds : sequence of arrays, 3-D array, path, or graphs
+    clouds : sequence of arrays, 3-D array, path, graphs, or fields
         The clouds (sizes may differ; one dimension), see `chitally.clouds.read_collection`;
         or the graphs: a sequence of networkx graphs, edge arrays, scipy sparse matrices
         or `GraphData`, a `GraphCollection`, or a folder (the benchmark layout, or edge
-        lists), see `chitally.graph_sources.graph_collection`. Which of the two: see
-        the module's description.
+        lists), see `chitally.graph_sources.graph_collection`; or the fields: a sequence
+        of arrays (shapes and dimensions may differ), a stack whose first axis indexes
+        them, a folder of images or ``.npy`` arrays (or of one subfolder per class,
+        which labels them), see `chitally.field_sources.read_fields`. Which of the
+        three: see the module's description.
     eps : float
-        Clouds: largest scale of every cloud's Rips filtration. Not for graphs.
+        Clouds: largest scale of every cloud's Rips filtration. Not for graphs or fields.
     grid : sequence of float or "START:STOP:COUNT"
         Strictly increasing scales where each curve is sampled: in [0, eps] for clouds;
-        any for graphs (in the curve's scale, so negated with ``superlevel``), where a
-        row holds 0 at scales below the graph's smallest vertex value (the empty
-        complex) and the whole clique complex's value above its largest value.
+        any for graphs and fields (in the curve's scale, so negated with
+        ``superlevel``), where a row holds 0 at scales below the item's smallest value
+        (the empty complex) and the whole complex's value above its largest value.
     max_dim : int, optional
-        Simplex dimension cap.
+        Simplex dimension cap (clouds and graphs).
     normalise : bool
         Divide each row by its cloud's number of points (its graph's number of
-        vertices) (float64); counts otherwise (int64).
+        vertices, its field's number of present entries) (float64); counts otherwise
+        (int64).
     values, weights, superlevel, threshold
         Graphs only: the filtration of every graph, as for `chitally.graphs.graph_curve`
         (``values`` a name or None, ``weights`` an edge attribute name or None).
+        ``superlevel`` also applies to fields.
     graphs : bool, optional
-        Say the items are graphs (True) or clouds (False) instead of detecting it.
+        Say the items are graphs (True) or not (False) instead of detecting it.
+    fields : bool, optional
+        Say the items are fields (True) or not (False) instead of detecting it.
+    construction : {"vertices", "cells"}, optional
+        Fields: the cubical complex, as for `chitally.cubical.field_curve` (default
+        "vertices"); giving it says the items are fields.
+    mask_nan : bool
+        Fields: NaN entries are missing (by default a NaN is refused, naming the field
+        and its position); True says the items are fields.
     names, labels : optional
         Names for in-memory items; labels as a sequence or a CSV of ``name,label``
         (a graph collection's own labels are used when none are given).
@@ -287,6 +374,9 @@ def feature_matrix(clouds: Any, eps: float | None = None, grid: Any = None, max_
     >>> path, triangle = np.array([[0, 1], [1, 2]]), np.array([[0, 1], [1, 2], [0, 2]])
     >>> feature_matrix([path, triangle], grid=[0, 1, 2]).values.tolist()   # degree values
     [[0, 2, 1], [0, 0, 1]]
+    >>> images = [np.array([[0, 1], [1, 0]]), np.array([[0, 0, 1]])]
+    >>> feature_matrix(images, grid=[0, 1], fields=True).values.tolist()   # sublevel sets of each array
+    [[2, 1], [1, 1]]
     """
     if isinstance(grid, str):
         from .curve import parse_grid
@@ -295,6 +385,9 @@ def feature_matrix(clouds: Any, eps: float | None = None, grid: Any = None, max_
     if grid is None:
         raise InputError("grid is required: the scales every curve is sampled at")
     options = {"values": values, "weights": weights, "superlevel": superlevel, "threshold": threshold}
+    if _are_fields(clouds, fields, construction, mask_nan, graphs):
+        params = _field_params(grid, eps, max_dim, normalise, construction, superlevel, mask_nan, options, metric)
+        return _field_matrix(clouds, params, names, labels, store, where, threads, storage_options)
     if _are_graphs(clouds, eps, graphs):
         if eps is not None:
             raise InputError("eps is the largest scale of point clouds; graphs take threshold")
@@ -320,23 +413,32 @@ def feature_matrix(clouds: Any, eps: float | None = None, grid: Any = None, max_
 
 
 class CurveFeatures(TransformerMixin, BaseEstimator):
-    """scikit-learn transformer: each cloud's or graph's exact curve sampled on a grid.
+    """scikit-learn transformer: each cloud's, graph's or field's exact curve sampled on a grid.
 
     `fit` learns nothing (it validates the parameters); `transform` takes a list of
-    clouds of any sizes (one dimension), or of graphs (see `feature_matrix` for which),
-    and returns a float64 matrix (items x grid).
+    clouds of any sizes (one dimension), of graphs, or of fields (arrays: images,
+    volumes; shapes may differ), see `feature_matrix` for which, and returns a float64
+    matrix (items x grid).
 
     Parameters
     ----------
     eps : float, optional
-        Clouds: the largest scale (required for clouds; leave it None for graphs).
+        Clouds: the largest scale (required for clouds; leave it None for graphs and fields).
     grid : sequence of float or "START:STOP:COUNT"
     max_dim : int, optional
     normalise : bool
     values, weights, superlevel, threshold
-        Graphs: the filtration, as for `chitally.graphs.graph_curve`.
+        Graphs: the filtration, as for `chitally.graphs.graph_curve`; ``superlevel``
+        also for fields.
     graphs : bool, optional
-        Say the items are graphs (True) or clouds (False) instead of detecting it.
+        Say the items are graphs (True) or not (False) instead of detecting it.
+    fields : bool, optional
+        Say the items are fields (True) or not (False) instead of detecting it.
+    construction : {"vertices", "cells"}, optional
+        Fields: the cubical complex (default "vertices"); giving it says the items are
+        fields.
+    mask_nan : bool
+        Fields: NaN entries are missing; True says the items are fields.
     metric : {"euclidean", "manhattan", "chebyshev"}
         Clouds: the distance between two points (see `chitally.euler_curve`).
     n_jobs : int, optional
@@ -351,12 +453,14 @@ class CurveFeatures(TransformerMixin, BaseEstimator):
     >>> from sklearn.svm import SVC                             # doctest: +SKIP
     >>> model = make_pipeline(CurveFeatures(eps=0.5, grid="0:0.5:32"), SVC())  # doctest: +SKIP
     >>> graphs = make_pipeline(CurveFeatures(grid="0:20:21", values="degree"), SVC())  # doctest: +SKIP
+    >>> images = make_pipeline(CurveFeatures(grid="0:255:64", construction="cells"), SVC())  # doctest: +SKIP
     """
 
     def __init__(self, eps: float | None = None, grid: Any = "0:1:16", max_dim: int | None = None,
                  normalise: bool = False, values: Any = "auto", weights: str | None = None,
                  superlevel: bool = False, threshold: float | None = None, graphs: bool | None = None,
-                 n_jobs: int | None = None, scheduler: str | None = None, metric: str = "euclidean") -> None:
+                 n_jobs: int | None = None, scheduler: str | None = None, metric: str = "euclidean",
+                 fields: bool | None = None, construction: str | None = None, mask_nan: bool = False) -> None:
         self.eps = eps
         self.grid = grid
         self.max_dim = max_dim
@@ -369,6 +473,9 @@ class CurveFeatures(TransformerMixin, BaseEstimator):
         self.n_jobs = n_jobs
         self.scheduler = scheduler
         self.metric = metric
+        self.fields = fields
+        self.construction = construction
+        self.mask_nan = mask_nan
 
     def _grid(self) -> Any:
         grid = self.grid
@@ -382,7 +489,10 @@ class CurveFeatures(TransformerMixin, BaseEstimator):
         return {"values": self.values, "weights": self.weights, "superlevel": self.superlevel,
                 "threshold": self.threshold}
 
-    def _params(self, X: Any = None) -> BatchParams | GraphBatchParams:
+    def _params(self, X: Any = None) -> BatchParams | GraphBatchParams | FieldBatchParams:
+        if _are_fields(X, self.fields, self.construction, self.mask_nan, self.graphs):
+            return _field_params(self._grid(), self.eps, self.max_dim, self.normalise, self.construction,
+                                 self.superlevel, self.mask_nan, self._options(), self.metric)
         if _are_graphs(X, self.eps, self.graphs):
             if self.eps is not None:
                 raise InputError("eps is the largest scale of point clouds; graphs take threshold")
@@ -408,7 +518,13 @@ class CurveFeatures(TransformerMixin, BaseEstimator):
         check_is_fitted(self, "grid_")
         params = self._params(X)
         if self.scheduler is None:
-            if isinstance(params, GraphBatchParams):
+            if isinstance(params, FieldBatchParams):
+                from .field_sources import read_fields
+
+                col = read_fields(X)
+                sizes = field_sizes(col, params).astype(np.float64)
+                counts = _fields_in_process(col, params, self.n_jobs)
+            elif isinstance(params, GraphBatchParams):
                 from .graph_sources import graph_collection
 
                 col = graph_collection(X)
@@ -424,11 +540,16 @@ class CurveFeatures(TransformerMixin, BaseEstimator):
         from .runs import Where
 
         where = Where() if self.scheduler == "local" else Where(scheduler=self.scheduler)
-        graphs = isinstance(params, GraphBatchParams)
+        if isinstance(params, FieldBatchParams):
+            kind: dict[str, Any] = {"fields": True, "construction": params.construction,
+                                    "superlevel": params.superlevel, "mask_nan": params.mask_nan}
+        elif isinstance(params, GraphBatchParams):
+            kind = {"graphs": True, **self._options()}
+        else:
+            kind = {"graphs": False, "metric": params.metric}
         with tempfile.TemporaryDirectory(prefix="chitally-features-") as tmp:
-            fm = feature_matrix(X, None if graphs else params.eps, list(params.grid), params.max_dim,
-                                params.normalise, graphs=graphs, store=os.path.join(tmp, "run.zarr"),
-                                where=where, **(self._options() if graphs else {"metric": params.metric}))
+            fm = feature_matrix(X, getattr(params, "eps", None), list(params.grid), getattr(params, "max_dim", None),
+                                params.normalise, store=os.path.join(tmp, "run.zarr"), where=where, **kind)
         return fm.values.astype(np.float64)
 
     def get_feature_names_out(self, input_features: Any = None) -> np.ndarray:
@@ -436,6 +557,6 @@ class CurveFeatures(TransformerMixin, BaseEstimator):
 
     def __sklearn_tags__(self) -> Any:
         tags = super().__sklearn_tags__()
-        tags.input_tags.two_d_array = False  # a list of clouds or graphs, not one 2-D array
+        tags.input_tags.two_d_array = False  # a list of clouds, graphs or fields, not one 2-D array
         tags.requires_fit = True
         return tags

@@ -1,19 +1,22 @@
-"""The `batch` job kind: many clouds or graphs in, one exact feature matrix out.
+"""The `batch` job kind: many clouds, graphs or fields in, one exact feature matrix out.
 
-The items are point clouds (Rips curves) or graphs (curves of a vertex-value or
-edge-weight filtration of each clique complex): the parameter ``items`` says which
-(absent in stores made for clouds). Planning (pure) groups the items into tasks of about
+The items are point clouds (Rips curves), graphs (curves of a vertex-value or
+edge-weight filtration of each clique complex) or fields (cubical sublevel curves of
+arrays: images, volumes): the parameter ``items`` says which (absent in stores made for
+clouds). Planning (pure) groups the items into tasks of about
 equal estimated cost, heaviest first, and lays each task's items out contiguously, so a
 task reads one slice of rows and thousands of small items are a few dozen tasks, not
 thousands. A task computes each of its items' exact curves and samples them on the grid
-(integer rows) with the items' rows function (`cloud_rows`, `graph_rows`); the fold
-places rows into the matrix; the result is the matrix, normalised by each item's size
-(points, vertices) on request.
+(integer rows) with the items' rows function (`cloud_rows`, `graph_rows`,
+`field_rows`); the fold places rows into the matrix; the result is the matrix,
+normalised by each item's size (points, vertices, present entries) on request.
 
 A graph's row at a scale t is the Euler characteristic of the subcomplex of simplices of
 value <= t: 0 below the graph's smallest vertex value (the empty complex), the whole
 clique complex's above its largest value. The grid is the user's and the same for every
-graph, whatever each graph's own domain; with a threshold it may not pass it.
+graph, whatever each graph's own domain; with a threshold it may not pass it. A field's
+row follows the same rule: 0 below its smallest value, the whole complex's Euler
+characteristic above its largest, whatever each field's shape.
 """
 
 from __future__ import annotations
@@ -27,7 +30,9 @@ from typing import Any
 import numpy as np
 
 from ..clouds import Collection
+from ..cubical import MAX_NDIM, block_jumps, check_construction, present_entries
 from ..curve import Curve
+from ..field_sources import FieldCollection
 from ..graph_data import GraphData, vertex_values
 from ..graph_kernel import (
     UNCAPPED,
@@ -465,17 +470,166 @@ def _graph_task(store: RunStore, i: int) -> tuple[dict[str, np.ndarray], dict[st
     return {"rows": out}, {"graphs": b - a, "vertices": int(voff[-1] - voff[0]), "edges": e1 - e0}
 
 
+# ------------------------------------------------------------------------ fields
+
+
+@dataclass(frozen=True)
+class FieldBatchParams:
+    """What a feature-matrix store of fields is made for (options as `field_curve`'s)."""
+
+    grid: tuple[float, ...]
+    construction: str = "vertices"
+    superlevel: bool = False
+    mask_nan: bool = False
+    normalise: bool = False
+    task_cost: float | None = None
+
+    @staticmethod
+    def checked(grid: Any, construction: Any = "vertices", superlevel: Any = False, mask_nan: Any = False,
+                normalise: Any = False, task_cost: Any = None, *,
+                names: Mapping[str, str] | None = None) -> FieldBatchParams:
+        """Validated parameters; `names` maps a parameter to how the user spelled it.
+
+        The grid is any strictly increasing sequence of scales, in the curve's scale
+        (``-f`` with ``superlevel``), the same for every field: a field's row is 0 below
+        its smallest value and its whole complex's value above its largest.
+        """
+        n = {"grid": "grid", "construction": "construction", "superlevel": "superlevel",
+             "mask_nan": "mask_nan", "normalise": "normalise", "task_cost": "task_cost", **(names or {})}
+        construction = check_construction(construction, name=n["construction"])
+        g = checked_grid(grid, n["grid"])
+        cost = None if task_cost is None else validate_positive(task_cost, name=n["task_cost"])
+        return FieldBatchParams(tuple(float(x) for x in g), construction,
+                                validate_flag(superlevel, name=n["superlevel"]),
+                                validate_flag(mask_nan, name=n["mask_nan"]),
+                                validate_flag(normalise, name=n["normalise"]), cost)
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"items": "fields", "grid": list(self.grid), "construction": self.construction,
+                "superlevel": self.superlevel, "mask_nan": self.mask_nan, "normalise": self.normalise,
+                "task_cost": self.task_cost}
+
+
+def field_rows(fields: Sequence[np.ndarray], construction: str, superlevel: bool, mask_nan: bool,
+               grid: np.ndarray) -> np.ndarray:
+    """Each field's exact curve sampled on `grid` (as `chi_on_grid`): int64 (fields x grid).
+
+    The one computation behind the batch task and the in-process feature matrix; at
+    every grid point inside a field's domain it is ``field_curve(field, ...).at(t)``:
+    the same cell counts (`chitally.cubical.block_jumps` over the whole array) read
+    off at the grid.
+    """
+    grid = np.asarray(grid, dtype=np.float64)
+    out = np.empty((len(fields), grid.size), dtype=np.int64)
+    for k, arr in enumerate(fields):
+        values, jumps = block_jumps(arr, construction, superlevel=superlevel, mask_nan=mask_nan)
+        out[k] = chi_on_grid(values, jumps, grid)
+    return out
+
+
+def field_cost(entries: np.ndarray, ndims: np.ndarray) -> np.ndarray:
+    """Relative cost of fields: their cells (entries times the 2^ndim cell types each
+    entry heads), plus the per-item work that does not grow with the size."""
+    return np.asarray(entries, np.float64) * np.exp2(np.asarray(ndims, np.float64)) + 64.0
+
+
+def field_sizes(col: FieldCollection, params: FieldBatchParams) -> np.ndarray:
+    """The present entries of every field (its size for `normalise`), checking the
+    values: a NaN (without ``mask_nan``) or an infinite value is refused naming the
+    field and its position, before any store is made or any curve counted."""
+    sizes = np.empty(len(col), dtype=np.int64)
+    for k, (name, arr) in enumerate(zip(col.names, col.fields)):
+        present = present_entries(arr, None, params.mask_nan, what=f"field {name!r}")
+        sizes[k] = arr.size if present is None else int(np.count_nonzero(present))
+        if params.normalise and sizes[k] == 0:
+            raise InputError(f"field {name!r} has no present entry: its row cannot be divided by its size")
+    return sizes
+
+
+def _stored_dtype(col: FieldCollection) -> np.dtype:
+    """One dtype for every field's entries: numpy's common type (uint8 images stay
+    bytes), little-endian."""
+    return np.dtype(np.result_type(*[a.dtype for a in col.fields])).newbyteorder("<")
+
+
+def field_fingerprint(col: FieldCollection) -> dict[str, Any]:
+    """The identity of a collection of fields: names, dtypes, shapes and every entry."""
+    h = hashlib.sha256()
+    for name, arr in zip(col.names, col.fields):
+        h.update(str(name).encode() + b"\0")
+        h.update(arr.dtype.newbyteorder("<").str.encode() + b"\0")
+        h.update(np.asarray([arr.ndim, *arr.shape], "<i8").tobytes())
+        h.update(np.ascontiguousarray(arr, arr.dtype.newbyteorder("<")).tobytes())
+    return {"fields": len(col), "entries": int(sum(a.size for a in col.fields)), "sha256": h.hexdigest()}
+
+
+def field_job_spec(col: FieldCollection, params: FieldBatchParams, sizes: np.ndarray | None = None) -> JobSpec:
+    """The run store contents for a collection of fields (`read_fields`; pure). Every
+    field's entries are flattened into one input in task order, with its shape."""
+    sizes = field_sizes(col, params) if sizes is None else sizes
+    entries = np.array([a.size for a in col.fields], dtype=np.int64)
+    ndims = np.array([a.ndim for a in col.fields], dtype=np.int64)
+    costs = field_cost(entries, ndims)
+    target = params.task_cost or max(float(costs.sum()) / DEFAULT_TASKS, float(costs.max()))
+    groups = group(costs, target)
+    field_ids = np.concatenate(groups)
+    task_offsets = np.concatenate(([0], np.cumsum([g.size for g in groups]))).astype(np.int64)
+    entry_offsets = np.concatenate(([0], np.cumsum(entries[field_ids]))).astype(np.int64)
+    dtype = _stored_dtype(col)
+    flat = np.concatenate([np.asarray(col.fields[i]).astype(dtype, copy=False).reshape(-1) for i in field_ids])
+    shapes = np.zeros((field_ids.size, MAX_NDIM), dtype=np.int64)
+    for k, i in enumerate(field_ids):
+        shapes[k, :ndims[i]] = col.fields[i].shape
+    # per field: its values, ranks and two reduced views at a time, the count bins
+    memory = np.array([int(entries[g].max()) * (dtype.itemsize + 4 * 8 + 1) + 1_000_000 for g in groups],
+                      dtype=np.int64)
+    labels = None if col.labels is None else [x.item() if hasattr(x, "item") else x for x in col.labels]
+    return JobSpec(kind=BATCH.name, params=params.as_dict(), fingerprint=field_fingerprint(col),
+                   outputs=BATCH.outputs, cost=np.array([costs[g].sum() for g in groups]), memory=memory,
+                   inputs={"field_ids": field_ids, "task_offsets": task_offsets, "entry_offsets": entry_offsets,
+                           "entries": flat, "shapes": shapes, "ndims": ndims[field_ids], "sizes": sizes},
+                   attrs={"names": list(col.names), "labels": labels})
+
+
+def create_or_open_fields(url: str, col: FieldCollection, params: FieldBatchParams, *,
+                          storage_options: Mapping[str, Any] | None = None,
+                          discard: bool = False) -> RunStore:
+    """The feature-matrix run store at `url` for this collection of fields (named and
+    labelled: `chitally.field_sources.read_fields`) and these parameters. The values
+    are checked before anything is written."""
+    from ..runs import open_or_create
+
+    sizes = field_sizes(col, params)
+    return open_or_create(url, BATCH.name, params.as_dict(), field_fingerprint(col),
+                          lambda: field_job_spec(col, params, sizes), storage_options=storage_options,
+                          discard=discard)
+
+
+def _field_task(store: RunStore, i: int) -> tuple[dict[str, np.ndarray], dict[str, int]]:
+    p = store.params
+    a, b = (int(x) for x in store.read_input("task_offsets", slice(i, i + 2), task=i))
+    offsets = store.read_input("entry_offsets", slice(a, b + 1), task=i)
+    base = int(offsets[0])
+    flat = store.read_input("entries", slice(base, int(offsets[-1])), task=i)
+    shapes = store.read_input("shapes", slice(a, b), task=i)
+    ndims = store.read_input("ndims", slice(a, b), task=i)
+    fields = [flat[int(lo) - base:int(hi) - base].reshape(tuple(int(s) for s in shapes[k, :int(ndims[k])]))
+              for k, (lo, hi) in enumerate(zip(offsets[:-1], offsets[1:]))]
+    out = field_rows(fields, p["construction"], p["superlevel"], p["mask_nan"], np.asarray(p["grid"], np.float64))
+    return {"rows": out}, {"fields": b - a, "entries": int(offsets[-1]) - base}
+
+
 # ------------------------------------------------------------------------ the task
 
 
 def items_of(params: Mapping[str, Any]) -> str:
-    """What a batch store's items are: "clouds" (stores made before graphs name none)
-    or "graphs"."""
+    """What a batch store's items are: "clouds" (stores made before graphs name none),
+    "graphs" or "fields"."""
     return str(params.get("items", "clouds"))
 
 
 #: The input naming each position's item in the order the caller gave them.
-_IDS = {"clouds": "cloud_ids", "graphs": "graph_ids"}
+_IDS = {"clouds": "cloud_ids", "graphs": "graph_ids", "fields": "field_ids"}
 
 
 def compute_task(store: RunStore, i: int, *, threads: int = 1) -> tuple[dict[str, np.ndarray], dict[str, int]]:
@@ -483,6 +637,8 @@ def compute_task(store: RunStore, i: int, *, threads: int = 1) -> tuple[dict[str
     p = store.params
     if items_of(p) == "graphs":
         return _graph_task(store, i)
+    if items_of(p) == "fields":
+        return _field_task(store, i)
     a, b = (int(x) for x in store.read_input("task_offsets", slice(i, i + 2), task=i))
     offsets = store.read_input("row_offsets", slice(a, b + 1), task=i)
     rows = store.read_input("points", slice(int(offsets[0]), int(offsets[-1])), task=i)
@@ -533,5 +689,5 @@ def read_matrix(store: RunStore) -> Any:
     if matrix.shape != (len(a["names"]), len(p["grid"])):
         raise ResultDamaged(f"the matrix in {store.url} has shape {matrix.shape}")
     return FeatureMatrix.of_counts(matrix, arrays["sizes"], names=a["names"], labels=a["labels"],
-                                   grid=p["grid"], eps=p.get("eps"), max_dim=p["max_dim"],
+                                   grid=p["grid"], eps=p.get("eps"), max_dim=p.get("max_dim"),
                                    normalise=p["normalise"])
