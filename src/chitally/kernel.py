@@ -1341,15 +1341,15 @@ class _Frame:
 # (B) are split off one at a time by chi~(G) = chi~(G - b) - chi~(G[N(b)]); what is left,
 # G - B, is a cone with apex a, so chi~(G) = -sum_k chi~(G_k), G_k the link of b_k in
 # G - {b_1, ..., b_(k-1)}, each solved the same way, its apex guessed by the sum of keys
-# to p, q and the split vertices above it. A subproblem that misses more than _BAD_MAX
-# vertices, or any after an edge has split _SPLIT_BUDGET times, gets the frame's exact
-# collapses on its bitset adjacency, built from distances (`_exact_chi`). On 50k points
+# to p, q and the split vertices above it. A subproblem that misses more than bad_max
+# vertices, or any after an edge has split `budget` times (_NEAR_LIMITS), gets the frame's
+# exact collapses on its bitset adjacency, built from distances (`_exact_chi`). On 50k points
 # of S^4 at eps 0.50 (mean degree 560) the first guess was the apex of about two edges in
 # three, and a missed edge split off about two vertices on average; the frame (the
 # adjacency among the whole neighbourhood, built from the neighbours' rows) measured about
 # nine tenths of the frame kernel's time there.
-_BAD_MAX = 8
-_SPLIT_BUDGET = 64
+# (bad_max, budget); read at each call, so that tests can force either route
+_NEAR_LIMITS = (8, 64)
 
 
 @nb.njit(inline="always", nogil=True, cache=True)
@@ -1423,8 +1423,8 @@ def _exact_chi(P, tag, mt, wid, p, thr, idx, a0, n, cadj, stack1, signs, adj, Lw
 
 
 @nb.njit(nogil=True, cache=True)
-def _near_chi(P, tag, mt, wid, p, thr, n, idx, score, segs, cadj, stack1, signs, adj, Lw, stack, degs, verts,
-              stats):
+def _near_chi(P, tag, mt, wid, p, thr, n, idx, score, segs, bad_max, budget, cadj, stack1, signs, adj, Lw,
+              stack, degs, verts, stats):
     """chi~ of the clique complex of G_e on L(e) = idx[:n] (positions in the row of p),
     score[:n] the apex guesses' sums of keys; see the comment above. A subproblem is a
     segment of idx and score (start, length, sign) on the stack segs; a split writes the
@@ -1435,7 +1435,6 @@ def _near_chi(P, tag, mt, wid, p, thr, n, idx, score, segs, cadj, stack1, signs,
     segs[0, 1] = n
     segs[0, 2] = 1
     top = 1
-    budget = _SPLIT_BUDGET
     while top > 0:
         top -= 1
         a0 = segs[top, 0]
@@ -1466,7 +1465,7 @@ def _near_chi(P, tag, mt, wid, p, thr, n, idx, score, segs, cadj, stack1, signs,
             stats[1] += 1
             continue
         budget -= 1
-        if nb_ > _BAD_MAX or budget < 0 or top + nb_ > segs.shape[0] or b0 + nb_ * (nn + 1) > room:
+        if nb_ > bad_max or budget < 0 or top + nb_ > segs.shape[0] or b0 + nb_ * (nn + 1) > room:
             total += sg * _exact_chi(P, tag, mt, wid, p, thr, idx, a0, nn, cadj, stack1, signs, adj, Lw, stack,
                                      degs, verts, stats)
             continue
@@ -1495,8 +1494,8 @@ def _near_chi(P, tag, mt, wid, p, thr, n, idx, score, segs, cadj, stack1, signs,
 
 
 @nb.njit(nogil=True, cache=True)
-def _near_rows(coords, tag, mt, offsets, nbrs, erank, own_lo, own_hi, out_jump, stats, X, P, wid, T, D, idx,
-               score, segs, cadj, stack1, signs, adj, Lw, stack, degs, verts):
+def _near_rows(coords, tag, mt, offsets, nbrs, erank, own_lo, own_hi, bad_max, budget, out_jump, stats, X, P,
+               wid, T, D, idx, score, segs, cadj, stack1, signs, adj, Lw, stack, degs, verts):
     """Uncapped per-edge jumps of every edge whose lower endpoint p is in [own_lo,
     own_hi), by distances (see the comment above), in a workspace (`_Near`) that fits
     these rows; len(tag) coordinates unrolled (any number with an empty tag).
@@ -1540,8 +1539,8 @@ def _near_rows(coords, tag, mt, offsets, nbrs, erank, own_lo, own_hi, out_jump, 
             if n == 0:
                 out_jump[erank[s + c]] = -1
             else:
-                out_jump[erank[s + c]] = _near_chi(P, tag, mt, wid, p, thr, n, idx, score, segs, cadj, stack1,
-                                                   signs, adj, Lw, stack, degs, verts, stats)
+                out_jump[erank[s + c]] = _near_chi(P, tag, mt, wid, p, thr, n, idx, score, segs, bad_max, budget,
+                                                   cadj, stack1, signs, adj, Lw, stack, degs, verts, stats)
 
 
 class _Near:
@@ -1885,11 +1884,12 @@ def _count(coords, offsets, nbrs, erank, lo: int, hi: int, cap: int, out_jump: n
             return np.zeros(h, dtype=np.int64)
     elif cap == UNCAPPED and near:
         tag = width_tag(coords.shape[1])
+        bad_max, budget = _NEAR_LIMITS
 
         def call(a: int, b: int, work: _Near) -> None:
             maxdeg = int(np.diff(offsets[a : b + 1]).max(initial=0))
             if maxdeg:
-                _near_rows(coords, tag, mt, offsets, nbrs, erank, a, b, out_jump, work.stats,
+                _near_rows(coords, tag, mt, offsets, nbrs, erank, a, b, bad_max, budget, out_jump, work.stats,
                            *work.fit(maxdeg))
 
         def state() -> _Near:
@@ -2055,7 +2055,7 @@ def compiled_calls(max_dim: int | None, dims: int, metric: str = "euclidean") ->
         calls.append((_count_cap2, (I8, I4, I4, i8, i8, I8, I8)))
     elif cap == UNCAPPED:
         workspace = (F8_2, F8_2, I8, F8, F8, I8, F8, I8_2, U8, U8, I8, U8_2, U8, U8_2, I8, I8)
-        calls.append((_near_rows, (F8_2, tag, mt, I8, I4, I4, i8, i8, I8, I8) + workspace))
+        calls.append((_near_rows, (F8_2, tag, mt, I8, I4, I4, i8, i8, i8, i8, I8, I8) + workspace))
     else:
         max_dim_t, collapse_t = (types.none, i8) if cap == UNCAPPED else (i8, types.none)
         workspace = (I4, I8, U8_2, I8, I4, I4, I4, I4, I4, I8, I4, U8, U8, U8, U8_2, I8, I8, U8, I8,
