@@ -1337,19 +1337,23 @@ class _Frame:
 # key thr, L(e) is the set of neighbours w of p before q in the row of p with (w, q) < e:
 # one vectorised pass of distances over the row. Almost every G_e of a dense cloud is a
 # cone or close to one, with its apex near the middle of e: the vertex a of L(e) with the
-# least key(p, a) + key(q, a) is tested against L(e) by distances. The vertices it misses
-# (B) are split off one at a time by chi~(G) = chi~(G - b) - chi~(G[N(b)]); what is left,
+# least key(p, a) + key(q, a) is tested against L(e) by distances, and if it misses some,
+# the best-placed vertex it hits. The vertices the better of the two misses (B) are split
+# off one at a time by chi~(G) = chi~(G - b) - chi~(G[N(b)]); what is left,
 # G - B, is a cone with apex a, so chi~(G) = -sum_k chi~(G_k), G_k the link of b_k in
 # G - {b_1, ..., b_(k-1)}, each solved the same way, its apex guessed by the sum of keys
 # to p, q and the split vertices above it. A subproblem that misses more than bad_max
 # vertices, or any after an edge has split `budget` times (_NEAR_LIMITS), gets the frame's
 # exact collapses on its bitset adjacency, built from distances (`_exact_chi`). On 50k points
-# of S^4 at eps 0.50 (mean degree 560) the first guess was the apex of about two edges in
-# three, and a missed edge split off about two vertices on average; the frame (the
-# adjacency among the whole neighbourhood, built from the neighbours' rows) measured about
-# nine tenths of the frame kernel's time there.
+# of S^4 at eps 0.50 (mean degree 560), L(e) held 78 vertices on average, the first guess
+# was the apex of about two edges in three (the vertex nearest the centroid of L(e), or
+# the one of least max(key(p, w), key(q, w)), did worse), and 17% of the G_e were no cones
+# at all; there the frame (the adjacency among the whole neighbourhood, from the
+# neighbours' rows) cost as much as the whole uncapped counting on it, which the distances
+# replace.
+
 # (bad_max, budget); read at each call, so that tests can force either route
-_NEAR_LIMITS = (8, 64)
+_NEAR_LIMITS = (16, 64)
 
 
 @nb.njit(inline="always", nogil=True, cache=True)
@@ -1447,20 +1451,42 @@ def _near_chi(P, tag, mt, wid, p, thr, n, idx, score, segs, bad_max, budget, cad
         for y in range(a0 + 1, a0 + nn):
             if score[y] < score[best]:
                 best = y
-        ai = idx[best]
-        wa = wid[ai]
         b0 = a0 + nn
-        if b0 + nn > room:
+        if b0 + 2 * nn > room:
             total += sg * _exact_chi(P, tag, mt, wid, p, thr, idx, a0, nn, cadj, stack1, signs, adj, Lw, stack,
                                      degs, verts, stats)
             continue
+        # the positions the guess misses go after the segment; the best guess among the
+        # vertices it hits is the second chance (a missed vertex cannot be an apex)
+        ai = idx[best]
+        wa = wid[ai]
         nb_ = 0
+        second = -1
+        s2 = math.inf
         for y in range(a0, a0 + nn):
             xi = idx[y]
             key = _point_key(P, tag, mt, ai, xi)
             hit = (key < thr) | ((key == thr) & (min(wa, wid[xi]) < p)) | (y == best)
             idx[b0 + nb_] = y
             nb_ += 1 - np.int64(hit)
+            if hit and y != best and score[y] < s2:
+                s2 = score[y]
+                second = y
+        if nb_ > 0 and second >= 0:
+            ai = idx[second]
+            wa = wid[ai]
+            c0 = b0 + nb_
+            nb2 = 0
+            for y in range(a0, a0 + nn):
+                xi = idx[y]
+                key = _point_key(P, tag, mt, ai, xi)
+                hit = (key < thr) | ((key == thr) & (min(wa, wid[xi]) < p)) | (y == second)
+                idx[c0 + nb2] = y
+                nb2 += 1 - np.int64(hit)
+            if nb2 < nb_:  # split off the fewer
+                for k in range(nb2):
+                    idx[b0 + k] = idx[c0 + k]
+                nb_ = nb2
         if nb_ == 0:
             stats[1] += 1
             continue
