@@ -3,14 +3,16 @@
 `export(rev)` writes the package as it was at git revision `rev` to a temporary
 directory (kept between runs, so that its numba cache survives) and returns that
 directory; a subprocess with it on PYTHONPATH imports the old `chitally`. `load(rev)`
-imports it into this process under the name ``chitally_base`` (its imports are relative,
-so the old modules use each other, never the new ones).
+imports it into this process under the name ``chitally_base``: its absolute references to
+``chitally`` (some imports, the lazy attribute table of ``__init__``) are rewritten to that
+name on export, so the old modules use each other, never the new ones.
 """
 
 from __future__ import annotations
 
 import importlib
 import io
+import re
 import subprocess
 import sys
 import tarfile
@@ -32,7 +34,7 @@ def _full(rev: str) -> str:
 def export(rev: str = DEFAULT_REV, name: str = "chitally") -> Path:
     """A directory holding package `name`: src/chitally at `rev`."""
     full = _full(rev)
-    home = Path(tempfile.gettempdir()) / f"chitally-baseline-{full[:12]}-{name}"
+    home = Path(tempfile.gettempdir()) / f"chitally-baseline-{full[:12]}-{name}-v2"
     if not (home / name / "__init__.py").exists():
         archive = subprocess.run(["git", "archive", full, "src/chitally"], cwd=ROOT, check=True,
                                  capture_output=True).stdout
@@ -43,8 +45,22 @@ def export(rev: str = DEFAULT_REV, name: str = "chitally") -> Path:
                 rel = Path(member.name).relative_to("src/chitally")
                 target = home / name / rel
                 target.parent.mkdir(parents=True, exist_ok=True)
-                target.write_bytes(tar.extractfile(member).read())
+                data = tar.extractfile(member).read()
+                if name != "chitally" and member.name.endswith(".py"):
+                    data = _renamed(data, name)
+                target.write_bytes(data)
     return home
+
+
+def _renamed(source: bytes, name: str) -> bytes:
+    """A module's source with its absolute references to the package (imports, and the
+    lazy attribute table of __init__) turned to `name`, so that the old package never
+    reaches the working tree's modules."""
+    text = source.decode()
+    text = re.sub(r"\bfrom chitally([. ])", rf"from {name}\1", text)
+    text = re.sub(r"\bimport chitally\b", f"import {name}", text)
+    text = re.sub(r"([\"'])chitally\.", rf"\g<1>{name}.", text)
+    return text.encode()
 
 
 def load(rev: str = DEFAULT_REV) -> ModuleType:

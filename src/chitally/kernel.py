@@ -1329,6 +1329,301 @@ class _Frame:
         return self.arrays
 
 
+# ---------------------------------------------------------------------------------------
+# uncapped counting by distances
+# ---------------------------------------------------------------------------------------
+
+# Without a cap and with the coordinates at hand, G_e needs no frame. For e = (p, q) of
+# key thr, L(e) is the set of neighbours w of p before q in the row of p with (w, q) < e:
+# one vectorised pass of distances over the row. Almost every G_e of a dense cloud is a
+# cone or close to one, with its apex near the middle of e: the vertex a of L(e) with the
+# least key(p, a) + key(q, a) is tested against L(e) by distances, and if it misses some,
+# the best-placed vertex it hits. The vertices the better of the two misses (B) are split
+# off one at a time by chi~(G) = chi~(G - b) - chi~(G[N(b)]); what is left,
+# G - B, is a cone with apex a, so chi~(G) = -sum_k chi~(G_k), G_k the link of b_k in
+# G - {b_1, ..., b_(k-1)}, each solved the same way, its apex guessed by the sum of keys
+# to p, q and the split vertices above it. A subproblem that misses more than bad_max
+# vertices, or any after an edge has split `budget` times (_NEAR_LIMITS), gets the frame's
+# exact collapses on its bitset adjacency, built from distances (`_exact_chi`). On 50k points
+# of S^4 at eps 0.50 (mean degree 560), L(e) held 78 vertices on average, the first guess
+# was the apex of about two edges in three (the vertex nearest the centroid of L(e), or
+# the one of least max(key(p, w), key(q, w)), did worse), and 17% of the G_e were no cones
+# at all; there the frame (the adjacency among the whole neighbourhood, from the
+# neighbours' rows) cost as much as the whole uncapped counting on it, which the distances
+# replace.
+
+# (bad_max, budget); read at each call, so that tests can force either route
+_NEAR_LIMITS = (16, 64)
+
+
+@nb.njit(inline="always", nogil=True, cache=True)
+def _point_key(P, tag, mt, i, j):
+    """The key between rows i and j of P (points in rows), by the one rule."""
+    width = len(tag)
+    s = 0.0
+    if width > 0:
+        for k in range(width):
+            s = accumulate(s, P[i, k] - P[j, k], mt)
+    else:
+        for k in range(P.shape[1]):
+            s = accumulate(s, P[i, k] - P[j, k], mt)
+    return s
+
+
+@nb.njit(inline="always", nogil=True, cache=True)
+def _keys_to(X, tag, mt, c, D):
+    """D[j] = key(j, c) for j < c, X holding coordinate k of point j in X[k, j]."""
+    width = len(tag)
+    if width > 0:
+        for j in range(c):
+            s = 0.0
+            for k in range(width):
+                s = accumulate(s, X[k, j] - X[k, c], mt)
+            D[j] = s
+    else:
+        for j in range(c):
+            D[j] = 0.0
+        for k in range(X.shape[0]):
+            xc = X[k, c]
+            for j in range(c):
+                D[j] = accumulate(D[j], X[k, j] - xc, mt)
+
+
+@nb.njit(nogil=True, cache=True)
+def _exact_chi(P, tag, mt, wid, p, thr, idx, a0, n, cadj, stack1, signs, adj, Lw, stack, degs, verts, stats):
+    """chi~ of the clique complex of G_e on the n neighbours idx[a0:a0 + n] of p, by the
+    frame's collapses on its adjacency, built from distances (pairs before e of key thr:
+    an equal key comes first when its lower endpoint is below p)."""
+    if n <= 64:
+        for i in range(n):
+            cadj[i] = 0
+        for i in range(n):
+            xi = idx[a0 + i]
+            wi = wid[xi]
+            for j in range(i + 1, n):
+                xj = idx[a0 + j]
+                key = _point_key(P, tag, mt, xi, xj)
+                if key < thr or (key == thr and min(wi, wid[xj]) < p):
+                    cadj[i] |= ONE << np.uint64(j)
+                    cadj[j] |= ONE << np.uint64(i)
+        return _reduced_euler1(cadj, n, stack1, signs, stats)
+    W = (n + 63) >> 6
+    for i in range(n):
+        for w in range(W):
+            adj[i, w] = 0
+    for i in range(n):
+        xi = idx[a0 + i]
+        wi = wid[xi]
+        for j in range(i + 1, n):
+            xj = idx[a0 + j]
+            key = _point_key(P, tag, mt, xi, xj)
+            if key < thr or (key == thr and min(wi, wid[xj]) < p):
+                _set_edge(adj, i, j)
+    for w in range(W):
+        Lw[w] = ALL_ONES
+    if n & 63:
+        Lw[W - 1] = (ONE << np.uint64(n & 63)) - ONE
+    return _reduced_euler(adj, Lw, W, stack, signs, degs, verts, stats)
+
+
+@nb.njit(nogil=True, cache=True)
+def _near_chi(P, tag, mt, wid, p, thr, n, idx, score, segs, bad_max, budget, cadj, stack1, signs, adj, Lw,
+              stack, degs, verts, stats):
+    """chi~ of the clique complex of G_e on L(e) = idx[:n] (positions in the row of p),
+    score[:n] the apex guesses' sums of keys; see the comment above. A subproblem is a
+    segment of idx and score (start, length, sign) on the stack segs; a split writes the
+    positions it missed and then the links after its segment."""
+    room = idx.shape[0]
+    total = 0
+    segs[0, 0] = 0
+    segs[0, 1] = n
+    segs[0, 2] = 1
+    top = 1
+    while top > 0:
+        top -= 1
+        a0 = segs[top, 0]
+        nn = segs[top, 1]
+        sg = segs[top, 2]
+        if nn == 0:
+            total -= sg
+            continue
+        best = a0
+        for y in range(a0 + 1, a0 + nn):
+            if score[y] < score[best]:
+                best = y
+        b0 = a0 + nn
+        if b0 + 2 * nn > room:
+            total += sg * _exact_chi(P, tag, mt, wid, p, thr, idx, a0, nn, cadj, stack1, signs, adj, Lw, stack,
+                                     degs, verts, stats)
+            continue
+        # the positions the guess misses go after the segment; the best guess among the
+        # vertices it hits is the second chance (a missed vertex cannot be an apex)
+        ai = idx[best]
+        wa = wid[ai]
+        nb_ = 0
+        second = -1
+        s2 = math.inf
+        for y in range(a0, a0 + nn):
+            xi = idx[y]
+            key = _point_key(P, tag, mt, ai, xi)
+            hit = (key < thr) | ((key == thr) & (min(wa, wid[xi]) < p)) | (y == best)
+            idx[b0 + nb_] = y
+            nb_ += 1 - np.int64(hit)
+            if hit and y != best and score[y] < s2:
+                s2 = score[y]
+                second = y
+        if nb_ > 0 and second >= 0:
+            ai = idx[second]
+            wa = wid[ai]
+            c0 = b0 + nb_
+            nb2 = 0
+            for y in range(a0, a0 + nn):
+                xi = idx[y]
+                key = _point_key(P, tag, mt, ai, xi)
+                hit = (key < thr) | ((key == thr) & (min(wa, wid[xi]) < p)) | (y == second)
+                idx[c0 + nb2] = y
+                nb2 += 1 - np.int64(hit)
+            if nb2 < nb_:  # split off the fewer
+                for k in range(nb2):
+                    idx[b0 + k] = idx[c0 + k]
+                nb_ = nb2
+        if nb_ == 0:
+            stats[1] += 1
+            continue
+        budget -= 1
+        if nb_ > bad_max or budget < 0 or top + nb_ > segs.shape[0] or b0 + nb_ * (nn + 1) > room:
+            total += sg * _exact_chi(P, tag, mt, wid, p, thr, idx, a0, nn, cadj, stack1, signs, adj, Lw, stack,
+                                     degs, verts, stats)
+            continue
+        stats[3] += nb_
+        l0 = b0 + nb_
+        for kb in range(nb_):
+            yb = idx[b0 + kb]
+            bi = idx[yb]
+            wb = wid[bi]
+            ln = 0
+            for y in range(a0, a0 + nn):
+                xi = idx[y]
+                if xi < 0 or y == yb:
+                    continue  # split off before, or b itself
+                key = _point_key(P, tag, mt, bi, xi)
+                idx[l0 + ln] = xi
+                score[l0 + ln] = score[y] + key
+                ln += np.int64((key < thr) | ((key == thr) & (min(wb, wid[xi]) < p)))
+            idx[yb] = -1 - bi  # b_k leaves G for the links after it
+            segs[top, 0] = l0
+            segs[top, 1] = ln
+            segs[top, 2] = -sg
+            top += 1
+            l0 += ln
+    return total
+
+
+@nb.njit(nogil=True, cache=True)
+def _near_rows(coords, tag, mt, offsets, nbrs, erank, own_lo, own_hi, bad_max, budget, out_jump, stats, X, P,
+               wid, T, D, idx, score, segs, cadj, stack1, signs, adj, Lw, stack, degs, verts):
+    """Uncapped per-edge jumps of every edge whose lower endpoint p is in [own_lo,
+    own_hi), by distances (see the comment above), in a workspace (`_Near`) that fits
+    these rows; len(tag) coordinates unrolled (any number with an empty tag).
+
+    out_jump is indexed by edge rank; each edge is written by its lower endpoint only,
+    so several calls on disjoint vertex ranges may run in parallel threads.
+    """
+    m = coords.shape[1]
+    for p in range(own_lo, own_hi):
+        s = offsets[p]
+        last = offsets[p + 1] - 1
+        while last >= s and nbrs[last] < p:
+            last -= 1
+        n_act = last - s + 1  # ranks beyond the last owned edge never matter
+        # the row of p: coordinates by column for the vectorised pass, by row for the
+        # gathers of the apex tests, and the keys from p
+        for a in range(n_act):
+            w = nbrs[s + a]
+            wid[a] = w
+            v = 0.0
+            for k in range(m):
+                xk = coords[w, k]
+                X[k, a] = xk
+                P[a, k] = xk
+                v = accumulate(v, coords[p, k] - xk, mt)
+            T[a] = v
+        for c in range(n_act):
+            if wid[c] < p:
+                continue
+            stats[0] += 1
+            thr = T[c]
+            _keys_to(X, tag, mt, c, D)
+            # L(e): (p, w_j) comes before e for every j < c; (w_j, q) must too, an equal
+            # key first when its lower endpoint w_j is below p (q > p)
+            n = 0
+            for j in range(c):
+                dj = D[j]
+                idx[n] = j
+                score[n] = T[j] + dj
+                n += np.int64((dj < thr) | ((dj == thr) & (wid[j] < p)))
+            if n == 0:
+                out_jump[erank[s + c]] = -1
+            else:
+                out_jump[erank[s + c]] = _near_chi(P, tag, mt, wid, p, thr, n, idx, score, segs, bad_max, budget,
+                                                   cadj, stack1, signs, adj, Lw, stack, degs, verts, stats)
+
+
+class _Near:
+    """One thread's workspace for _near_rows, grown to the largest degree it met: the
+    row of a vertex (coordinates twice, ids, keys), the subproblem stack, and the exact
+    collapses' bitsets."""
+
+    KEEP_BYTES = _Frame.KEEP_BYTES
+    _kept = threading.local()
+
+    def __init__(self, m: int) -> None:
+        self.m = m
+        self.maxdeg = -1
+        self.arrays: tuple = ()
+        self.stats = np.zeros(len(STAT_NAMES), dtype=np.int64)
+
+    @classmethod
+    def take(cls, m: int) -> _Near:
+        near = getattr(cls._kept, "near", None)
+        cls._kept.near = None
+        if near is None or near.m != m:
+            return cls(m)
+        near.stats[:] = 0
+        return near
+
+    def keep(self) -> None:
+        if sum(a.nbytes for a in self.arrays) <= self.KEEP_BYTES:
+            type(self)._kept.near = self
+
+    def fit(self, maxdeg: int) -> tuple:
+        if maxdeg > self.maxdeg:
+            self.maxdeg = maxdeg
+            wmax = (maxdeg + 63) // 64
+            # room for L(e) and a few levels of splits; a split that finds no room is
+            # solved exactly instead
+            room = 16 * maxdeg + 4096
+            self.arrays = (
+                np.zeros((max(self.m, 1), maxdeg + 8)),  # X
+                np.zeros((maxdeg + 8, self.m)),  # P
+                np.empty(maxdeg + 8, dtype=np.int64),  # wid
+                np.empty(maxdeg + 8),  # T
+                np.empty(maxdeg + 8),  # D
+                np.empty(room, dtype=np.int64),  # idx
+                np.empty(room),  # score
+                np.empty((1024, 3), dtype=np.int64),  # segs
+                np.empty(64, dtype=np.uint64),  # cadj
+                np.empty(2 * 64 + 2, dtype=np.uint64),  # stack1
+                np.empty(2 * maxdeg + 130, dtype=np.int64),  # signs
+                np.zeros((maxdeg, wmax), dtype=np.uint64),  # adj
+                np.empty(wmax, dtype=np.uint64),  # Lw
+                np.empty((2 * maxdeg + 2, wmax), dtype=np.uint64),  # stack
+                np.empty(maxdeg, dtype=np.int64),  # degs
+                np.empty(maxdeg, dtype=np.int64),  # verts
+            )
+        return self.arrays
+
+
 @nb.njit(nogil=True, cache=True)
 def _group_lengths(ed2, elo, g0, g1, own_lo, own_hi, out_jump, n, mt):
     """Group the nonzero jumps of the owned edges in [g0, g1) by length (edges are in
@@ -1593,9 +1888,10 @@ _FIRST_WORK = 1 << 16
 
 
 def _count(coords, offsets, nbrs, erank, lo: int, hi: int, cap: int, out_jump: np.ndarray,
-           threads: int | None, mt: tuple = ()) -> np.ndarray:
+           threads: int | None, mt: tuple = (), near: bool = True) -> np.ndarray:
     """Fill out_jump for the owned edges (cap >= 2) in blocks of rows over threads;
-    returns the summed counters."""
+    returns the summed counters. Without a cap the counting runs by distances
+    (`_near_rows`) when `near`, which needs finite coordinates, else by frames."""
     h = offsets.shape[0] - 1
     stats = np.zeros(len(STAT_NAMES), dtype=np.int64)
     if cap == 2 and 1 <= coords.shape[1] <= _UNROLLED_DIMS:
@@ -1612,6 +1908,18 @@ def _count(coords, offsets, nbrs, erank, lo: int, hi: int, cap: int, out_jump: n
 
         def state() -> np.ndarray:
             return np.zeros(h, dtype=np.int64)
+    elif cap == UNCAPPED and near:
+        tag = width_tag(coords.shape[1])
+        bad_max, budget = _NEAR_LIMITS
+
+        def call(a: int, b: int, work: _Near) -> None:
+            maxdeg = int(np.diff(offsets[a : b + 1]).max(initial=0))
+            if maxdeg:
+                _near_rows(coords, tag, mt, offsets, nbrs, erank, a, b, bad_max, budget, out_jump, work.stats,
+                           *work.fit(maxdeg))
+
+        def state() -> _Near:
+            return _Near.take(coords.shape[1])
     else:
         # one of the two is None: see _vertex
         max_dim, collapse = (None, 0) if cap == UNCAPPED else (cap, None)
@@ -1640,7 +1948,7 @@ def _count(coords, offsets, nbrs, erank, lo: int, hi: int, cap: int, out_jump: n
         states = run_blocks(lo, hi, call, Pacer(_FIRST_WORK), weights=weights, threads=threads,
                             state=state)
     for s in states:
-        if isinstance(s, _Frame):
+        if isinstance(s, (_Frame, _Near)):
             stats += s.stats
             s.keep()
     return stats
@@ -1716,7 +2024,8 @@ def count_jumps(
             t1 = time.perf_counter()
             out_jump = np.empty(ed2.shape[0], dtype=np.int64)
             stats.edges = _owned_count(elo, lo, hi, h)
-            counted = _count(coords, offsets, nbrs, erank, lo, hi, cap, out_jump, threads, metric_tag(metric))
+            counted = _count(coords, offsets, nbrs, erank, lo, hi, cap, out_jump, threads, metric_tag(metric),
+                             near=bool(np.isfinite(coords).all()))
             values, jumps = _collect(ed2, elo, lo, hi, out_jump, hi - lo, metric)
     t2 = time.perf_counter()
     for name, value in zip(STAT_NAMES[1:], counted[1:]):
@@ -1747,6 +2056,7 @@ def compiled_calls(max_dim: int | None, dims: int, metric: str = "euclidean") ->
     i8, f8 = types.int64, types.float64
     I4, I8, F8, U8 = (types.Array(t, 1, "C") for t in (types.int32, types.int64, types.float64, types.uint64))
     F8_2, U8_2 = types.Array(types.float64, 2, "C"), types.Array(types.uint64, 2, "C")
+    I8_2 = types.Array(types.int64, 2, "C")
     tag = nb.typeof(width_tag(int(dims)))
     mt = nb.typeof(metric_tag(metric))
     calls: list[tuple[object, tuple]] = [
@@ -1769,6 +2079,9 @@ def compiled_calls(max_dim: int | None, dims: int, metric: str = "euclidean") ->
         calls.append((_cap2_near, (F8_2, tag, I8, I4, I4, i8, i8, I8, mt)))
     elif cap == 2:
         calls.append((_count_cap2, (I8, I4, I4, i8, i8, I8, I8)))
+    elif cap == UNCAPPED:
+        workspace = (F8_2, F8_2, I8, F8, F8, I8, F8, I8_2, U8, U8, I8, U8_2, U8, U8_2, I8, I8)
+        calls.append((_near_rows, (F8_2, tag, mt, I8, I4, I4, i8, i8, i8, i8, I8, I8) + workspace))
     else:
         max_dim_t, collapse_t = (types.none, i8) if cap == UNCAPPED else (i8, types.none)
         workspace = (I4, I8, U8_2, I8, I4, I4, I4, I4, I4, I8, I4, U8, U8, U8, U8_2, I8, I8, U8, I8,

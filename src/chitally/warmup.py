@@ -36,7 +36,7 @@ ALL_MAX_DIMS: tuple[int | None, ...] = (None, 1, 2, 3)
 ALL_DIMS: tuple[int, ...] = tuple(range(1, kernel._UNROLLED_DIMS + 2))
 
 # rough cold compile seconds, only to share the work fairly between processes
-_COST = {"_count_rows": 6.0, "_join_leaves": 2.0, "_fine_sort": 1.6, "_split_nodes": 1.5,
+_COST = {"_count_rows": 6.0, "_near_rows": 4.0, "_join_leaves": 2.0, "_fine_sort": 1.6, "_split_nodes": 1.5,
          "_cap2_near": 1.0, "_new_tree": 0.7}
 
 
