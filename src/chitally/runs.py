@@ -349,6 +349,7 @@ class Session:
                     check_workers(self.conn.client, remote)
                     preflight_memory(self.conn.client, int(store.task_memory().max(initial=0)))
                     executor = DaskExecutor(self.conn.client, window_factor=setting("window-factor"),
+                                            bundle_seconds=seconds("bundle-seconds"),
                                             retries=retries,
                                             lost_after=seconds("lost-after", where.lost_after))
                     if remote is not store:
