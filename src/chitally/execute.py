@@ -340,11 +340,11 @@ class DaskExecutor:
                     try:
                         try:
                             value = results[fut] if fut in results else fut.result()
-                        except CancelledError:
+                        except (CancelledError, *FATAL):
                             raise
-                        except FATAL:
-                            raise
-                        except Exception as exc:  # the whole Dask task failed: each of its tasks
+                        except Exception as exc:
+                            # the Dask task failed (a bundle as a whole: its worker died
+                            # too often, say): one failed attempt for each of its tasks
                             for task in bundle:
                                 settle(task, exc)
                             continue
