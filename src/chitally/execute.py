@@ -251,7 +251,10 @@ class DaskExecutor:
         elif now - since_workers[0] > self.lost_after:
             raise SchedulerLost(f"no Dask worker for {self.lost_after:g} s")
 
-    def run(self, store: RunStore, tasks: Sequence[int], events: Events) -> Outcome:
+    def run(self, store: RunStore, tasks: Sequence[int], events: Events, *,
+            cost: Any = None) -> Outcome:
+        """Run `tasks` of `store`; `cost` is each task's estimated cost (the store's own,
+        read here, when None)."""
         import hashlib
 
         from distributed import wait
@@ -262,8 +265,9 @@ class DaskExecutor:
         prefix = (f"chitally-{store.kind}-{store.plan_digest[:16]}-"
                   f"{hashlib.sha256(store.url.encode()).hexdigest()[:6]}")
         queue = deque(int(t) for t in tasks)
-        bundler = Bundler(store.task_cost() if queue else [], self.bundle_seconds,
-                          size=self.bundle_tasks)
+        if cost is None:
+            cost = store.task_cost() if queue else []
+        bundler = Bundler(cost, self.bundle_seconds, size=self.bundle_tasks)
         attempts: dict[int, int] = {}
         in_flight: dict[Any, list[int]] = {}
         submitted = 0

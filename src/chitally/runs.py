@@ -259,11 +259,12 @@ class Where:
 class _OnWorkers:
     """An executor that hands its workers the run store opened with other storage options."""
 
-    def __init__(self, inner: Executor, store: RunStore) -> None:
+    def __init__(self, inner: DaskExecutor, store: RunStore) -> None:
         self.inner, self.store = inner, store
 
     def run(self, store: RunStore, tasks: Any, events: Events) -> Outcome:
-        return self.inner.run(self.store, tasks, events)
+        # the task costs (bundle sizes) as this process reads them, not as the workers do
+        return self.inner.run(self.store, tasks, events, cost=store.task_cost())
 
 
 def _for_workers(store: RunStore, storage_options: Mapping[str, Any] | None) -> RunStore:
