@@ -59,15 +59,32 @@ def test_a_task_heavier_than_the_target_stays_alone():
 
 
 def test_tasks_of_zero_cost_are_estimated_from_the_mean_time():
-    b = Bundler(np.zeros(6), 0.0041)
+    b = Bundler(np.zeros(6), 0.0041, decay=1.0)
     b.observe(0, 0.001, 0.002)
     b.observe(1, 0.003, 0.004)  # on average 2 ms in the task function, 1 ms beside it
     assert b.estimate(2) == pytest.approx(0.003)
     assert taken(b, [2, 3, 4, 5]) == [[2], [3], [4], [5]]
-    b2 = Bundler(np.zeros(6), 0.0061)
+    b2 = Bundler(np.zeros(6), 0.0061, decay=1.0)
     b2.observe(0, 0.001, 0.002)
     b2.observe(1, 0.003, 0.004)
     assert taken(b2, [2, 3, 4, 5]) == [[2, 3], [4, 5]]
+
+
+def test_the_estimates_follow_the_latest_tasks():
+    # a first call 100 times slower than the rest (a worker loading its kernels)
+    b = Bundler(np.ones(200), 1.0, decay=0.5)
+    b.observe(0, 0.1, 0.1)
+    for t in range(1, 11):
+        b.observe(t, 0.001, 0.001)
+    # weights 1, 1/2, ..., 1/1024 for the last eleven tasks: the slow one counts 1/1024
+    weights = 0.5 ** np.arange(11)
+    mean = (0.001 * weights[:10].sum() + 0.1 * weights[10]) / weights.sum()
+    assert b.estimate(11) == pytest.approx(mean) and b.estimate(11) < 0.00106
+    flat = Bundler(np.ones(200), 1.0, decay=1.0)
+    flat.observe(0, 0.1, 0.1)
+    for t in range(1, 11):
+        flat.observe(t, 0.001, 0.001)
+    assert flat.estimate(11) == pytest.approx(0.11 / 11)
 
 
 def test_what_is_left_is_spread_over_several_bundles():

@@ -28,6 +28,10 @@ import numpy as np
 #: estimates say a task costs nothing at all.
 MAX_TASKS = 256
 
+#: Weight left to what was measured before each new task: the estimates follow the last
+#: few dozen tasks, so a slow first call (a worker loading its compiled kernels) fades.
+DECAY = 0.9
+
 
 class Bundler:
     """Cuts a queue of task ids into bundles.
@@ -42,10 +46,12 @@ class Bundler:
         A fixed number of tasks per bundle instead (the last one may hold fewer).
     max_tasks : int
         At most this many tasks per bundle.
+    decay : float
+        Weight of the earlier measurements at each new one (1: all count alike).
     """
 
     def __init__(self, cost: Sequence[float] | np.ndarray, target: float, *, size: int | None = None,
-                 max_tasks: int = MAX_TASKS) -> None:
+                 max_tasks: int = MAX_TASKS, decay: float = DECAY) -> None:
         if target < 0 or math.isnan(target):
             raise ValueError(f"bundle target {target!r}: seconds must be 0 or more")
         if size is not None and size < 1:
@@ -54,18 +60,20 @@ class Bundler:
         self.target = float(target)
         self.size = size
         self.max_tasks = max(1, int(max_tasks))
+        self.decay = float(decay)
         self._cost_seen = 0.0
         self._compute = 0.0
         self._engine = 0.0
-        self._seen = 0
+        self._seen = 0.0  # tasks measured, weighted as the sums are
 
     def observe(self, task: int, seconds: float, wall: float) -> None:
         """A task finished: `seconds` in its task function, `wall` in the engine in all
         (reads and commit included). Tasks found committed already tell nothing."""
-        self._cost_seen += float(self.cost[task])
-        self._compute += max(float(seconds), 0.0)
-        self._engine += max(float(wall) - float(seconds), 0.0)
-        self._seen += 1
+        d = self.decay
+        self._cost_seen = d * self._cost_seen + float(self.cost[task])
+        self._compute = d * self._compute + max(float(seconds), 0.0)
+        self._engine = d * self._engine + max(float(wall) - float(seconds), 0.0)
+        self._seen = d * self._seen + 1.0
 
     def estimate(self, task: int) -> float | None:
         """Estimated seconds of `task` on a worker, None before any task finished."""
