@@ -85,7 +85,8 @@ def measure(n: int, repeat: int, dask: bool) -> dict[str, float]:
 
 def before(commit: str, n: int, repeat: int, dask: bool) -> dict[str, float]:
     """The same measurement for `commit`, in a subprocess on a temporary worktree."""
-    wt = Path(tempfile.gettempdir()) / "wt-before-tasks"
+    # one folder per commit: a folder left by a run against another commit is not reused
+    wt = Path(tempfile.gettempdir()) / f"wt-before-tasks-{commit}"
     if not wt.exists():
         subprocess.run(["git", "-C", str(HERE), "worktree", "add", "--detach", str(wt), commit],
                        check=True, capture_output=True)
