@@ -180,6 +180,30 @@ def test_workers_may_open_the_store_with_their_own_storage_options(tmp_path, poi
     assert store.io.storage_options == {}
 
 
+def test_bundle_sizes_come_from_the_store_as_the_driver_reads_it(tmp_path, points):
+    # the workers' storage options may not work from the driver (an in-cluster endpoint)
+    from chitally.jobs.cloud import Params, create_or_open
+    from chitally.runs import _for_workers, _OnWorkers
+
+    store = create_or_open(str(tmp_path / "run"), points, Params.checked(EPS, None, None, COST))
+    view = _for_workers(store, {"endpoint_url": "http://in-cluster:9000"})
+
+    def unreachable() -> None:
+        raise AssertionError("the driver read the task costs through the workers' options")
+
+    view.task_cost = unreachable
+
+    class Inner:
+        def run(self, store, tasks, events, *, cost=None):
+            self.seen = (store, list(tasks), cost)
+            return "outcome"
+
+    inner = Inner()
+    assert _OnWorkers(inner, view).run(store, [0, 1], None) == "outcome"
+    assert inner.seen[0] is view and inner.seen[1] == [0, 1]
+    assert np.array_equal(inner.seen[2], store.task_cost())
+
+
 def test_storage_options_from_pairs_and_a_file(tmp_path):
     from chitally.cli import parse_storage_options
 

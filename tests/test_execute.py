@@ -1,7 +1,8 @@
 """Executors: one conformance suite run on every executor and every job kind.
 
 `TestExecutorConformance` is parametrised over the executors (serial; Dask on a
-LocalCluster of 2 worker processes x 1 thread on 127.0.0.1, started once per module) and,
+LocalCluster of 2 worker processes x 1 thread on 127.0.0.1, started once per module, with
+its own bundles and with every two tasks in one bundle) and,
 through `JOB_KINDS`, over job kinds. A kind enters the suite with one `JobKindCase`: how
 to make a run store of it from a store input, the inputs to run, and a reference giving
 the expected result of an input from outside the engine, by source. Adding a kind is
@@ -727,6 +728,8 @@ def make_executor(executor, request):
     if executor == "serial":
         return lambda **kw: SerialExecutor(**kw)
     client = request.getfixturevalue("client")
+    if executor == "dask-bundled":
+        return lambda **kw: DaskExecutor(client, bundle_tasks=2, **kw)
     return lambda **kw: DaskExecutor(client, **kw)
 
 
@@ -737,7 +740,7 @@ def committed_records(store: RunStore) -> dict[int, bytes]:
 # ============================================================== the conformance suite
 
 
-@pytest.mark.parametrize("executor", ["serial", "dask"])
+@pytest.mark.parametrize("executor", ["serial", "dask", "dask-bundled"])
 class TestExecutorConformance:
     """What every executor must do for every job kind."""
 
@@ -939,11 +942,12 @@ def tiny_store(tmp_path: Path, name: str = "run", cap: int | None = 1) -> RunSto
     return cloud_store(tmp_path, CloudInput("uniform-R2", 1.0, "tiny", cap), name)
 
 
-@pytest.mark.parametrize("window", [1, 2])
-def test_a_window_smaller_than_the_task_count_runs_every_task(client, tmp_path, window):
+@pytest.mark.parametrize("window, bundle", [(1, None), (2, None), (2, 3)])
+def test_a_window_smaller_than_the_task_count_runs_every_task(client, tmp_path, window, bundle):
     store = tiny_store(tmp_path)
     tasks = list(range(10))
-    ex = DaskExecutor(client, window=window)
+    # the window counts Dask tasks: single tasks, or bundles of `bundle`
+    ex = DaskExecutor(client, window=window, bundle_seconds=0, bundle_tasks=bundle)
     assert ex.window() == window
     rec = Window()
 
@@ -951,7 +955,7 @@ def test_a_window_smaller_than_the_task_count_runs_every_task(client, tmp_path, 
 
     assert sorted(outcome.done) == tasks and outcome.failed == {}
     assert sorted(e[1] for e in rec.of("done")) == tasks
-    assert 1 <= rec.peak <= window
+    assert 1 <= rec.peak <= window * (bundle or 1)
     assert store.commits.committed().tolist() == [True] * 10 + [False] * (store.n_tasks - 10)
 
 
@@ -1070,6 +1074,62 @@ def test_dask_keys_name_the_run_the_task_and_the_retry(client, tmp_path, monkeyp
     assert sorted(seen) == sorted([f"{prefix}-{t}" for t in tasks] + [f"{prefix}-0-r1"])
 
 
+def test_bundle_keys_name_their_first_task_and_their_size(client, tmp_path, monkeypatch):
+    store = tiny_store(tmp_path, cap=2)
+    fn = FailingTask(tmp_path / "attempts", fail={0: [1]})
+    seen: list[str] = []
+    submit = client.submit
+
+    def spy(*args, **kwargs):
+        seen.append(kwargs["key"])
+        return submit(*args, **kwargs)
+
+    monkeypatch.setattr(client, "submit", spy)
+    rec = Recorder()
+    outcome = DaskExecutor(client, task_function=fn, bundle_tasks=2).run(store, [0, 1, 2, 3, 4], rec)
+    assert sorted(outcome.done) == [0, 1, 2, 3, 4] and outcome.failed == {}
+    prefix = (f"chitally-cloud-{store.plan_digest[:16]}-"
+              f"{hashlib.sha256(store.url.encode()).hexdigest()[:6]}")
+    # two bundles of two, the last task alone, and the retry of task 0 alone
+    assert sorted(seen) == sorted([f"{prefix}-0-n2", f"{prefix}-2-n2", f"{prefix}-4", f"{prefix}-0-r1"])
+    assert rec.kinds(0) == ["started", "retry", "started", "done"]
+    assert [rec.kinds(t) for t in (1, 2, 3, 4)] == [["started", "done"]] * 4
+    assert [len(fn.attempts(t)) for t in range(5)] == [2, 1, 1, 1, 1]
+
+
+def test_cheap_tasks_are_bundled_once_one_has_finished(client, tmp_path, monkeypatch):
+    from chitally import feature_matrix
+    from chitally.clouds import read_collection
+    from chitally.jobs import batch
+
+    rng = np.random.default_rng(31)
+    clouds = [rng.random((4, 2)) for _ in range(60)]
+    params = batch.BatchParams.checked(0.5, BATCH_GRID, task_cost=1.0)  # a cloud a task
+    store = batch.create_or_open(str(tmp_path / "fm.zarr"), read_collection(clouds), params)
+    assert store.n_tasks == 60
+    sizes: list[int] = []
+    submit = client.submit
+
+    def spy(*args, **kwargs):
+        last = kwargs["key"].rsplit("-", 1)[1]  # n<tasks> for a bundle
+        sizes.append(int(last[1:]) if last.startswith("n") else 1)
+        return submit(*args, **kwargs)
+
+    monkeypatch.setattr(client, "submit", spy)
+    rec = Recorder()
+    # ten seconds a bundle: far more than 60 tiny tasks take, so only the spread over
+    # the two workers and the first tasks (nothing measured yet) limit the bundles
+    report = runs.execute(store, DaskExecutor(client, bundle_seconds=10.0), events=rec)
+
+    assert report.complete and report.computed == 60 and sum(sizes) == 60
+    assert sizes[0] == 1 and max(sizes) > 1 and len(sizes) < 60
+    assert sorted(e[1] for e in rec.of("done")) == list(range(60))
+    assert [e[1] for e in rec.of("retry")] == []
+    # the in-process matrix of the same clouds: bundling changes nothing
+    expected = feature_matrix(clouds, 0.5, np.asarray(BATCH_GRID), threads=1)
+    assert np.array_equal(report.result.values, expected.values)
+
+
 def test_two_stores_of_one_plan_running_at_once_do_not_share_tasks(client, tmp_path):
     inp = CloudInput("uniform-R2", 1.0, "huge", 2)
     first = cloud_store(tmp_path, inp, "first")
@@ -1090,6 +1150,40 @@ def test_two_stores_of_one_plan_running_at_once_do_not_share_tasks(client, tmp_p
     assert outcome.done == [0] and outcomes[0].done == [0]
     assert second.commits.verified_record(0) is not None, "reported done but never committed"
     assert first.commits.verified_record(0) is not None
+
+
+def test_a_bundle_whose_worker_died_recomputes_only_its_uncommitted_tasks(client, tmp_path):
+    # Near the end of the module: it ends a worker process (the nanny starts a fresh one).
+    inp = CloudInput("uniform-R2", 1.0, "tiny", 2)
+    store = cloud_store(tmp_path, inp)
+    assert store.n_tasks > 10
+    victim = 2
+    fn = FailingTask(tmp_path / "attempts", exit_after_commit=(victim,))
+    rec = Recorder()
+    try:
+        # the first bundle, tasks 0 to 4, runs first: its worker dies after the commit
+        # of task 2, before tasks 3 and 4 are called
+        report = runs.execute(store, DaskExecutor(client, task_function=fn, bundle_tasks=5),
+                              events=rec)
+    finally:
+        client.wait_for_workers(2, timeout=60)
+    assert report.failed == {} and report.computed == report.done == store.n_tasks
+    results = {e[1]: e[2] for e in rec.of("done")}
+    assert sorted(results) == list(range(store.n_tasks))
+    # Dask ran the bundle again on the other worker: what was committed came back
+    # cached, what was not was computed there, once
+    for task in (0, 1, 2):
+        assert results[task].cached and len(fn.attempts(task)) == 2, task
+    first, second = fn.attempts(0)[0][1], fn.attempts(0)[1][1]
+    assert first != second and fn.attempts(2)[0][1] == first
+    for task in (3, 4):
+        assert not results[task].cached and [pid for _, pid in fn.attempts(task)] == [second], task
+    # any other bundle lost with that worker: cached exactly where it ran twice
+    for task, result in results.items():
+        assert result.cached == (len(fn.attempts(task)) == 2), task
+    assert rec.of("retry") == []  # Dask reran it: not one of our retries
+    for source, expected in cloud_reference(inp).items():
+        assert report.curve == expected, f"differs from {source}"
 
 
 def test_a_task_whose_worker_died_after_its_commit_returns_cached(client, tmp_path):

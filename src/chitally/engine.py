@@ -20,13 +20,16 @@ from .store import RunStore, StoreMismatch
 
 @dataclass(frozen=True)
 class TaskResult:
-    """What a task sends back to the driver: small, picklable, no arrays."""
+    """What a task sends back to the driver: small, picklable, no arrays. `seconds` is
+    the kind's task function's time (recorded in the commit); `wall` the engine's whole
+    time for the task on its worker, store reads and the commit included."""
 
     task: int
     digest: str
     seconds: float
     counters: dict[str, int | float] = field(default_factory=dict)
     cached: bool = False
+    wall: float = 0.0
 
 
 _OPEN: dict[str, RunStore] = {}
@@ -79,10 +82,12 @@ def run_task(store: RunStore, task: int, attempt: str, *, threads: int = 1) -> T
     Outputs are deterministic, so a duplicate attempt writes the same bytes and agrees
     with the commit record whichever attempt wrote it first.
     """
+    start = time.perf_counter()
     store = worker_store(store)
     done = store.commits.verified_record(task)
     if done is not None:
-        return TaskResult(task, str(done["digest"]), 0.0, dict(done.get("counters", {})), cached=True)
+        return TaskResult(task, str(done["digest"]), 0.0, dict(done.get("counters", {})), cached=True,
+                          wall=time.perf_counter() - start)
     compute = kind_of(store.kind).task_function()
     t0 = time.perf_counter()
     outputs, counters = compute(store, task, threads=threads)
@@ -93,4 +98,4 @@ def run_task(store: RunStore, task: int, attempt: str, *, threads: int = 1) -> T
         "counters": dict(counters),
     }
     digest = store.commits.commit(task, attempt, outputs, info=info)
-    return TaskResult(task, digest, seconds, dict(counters))
+    return TaskResult(task, digest, seconds, dict(counters), wall=time.perf_counter() - start)

@@ -3,25 +3,29 @@
 An executor has one method, ``run(store, tasks, events) -> Outcome``, and knows nothing
 of what a task computes: it calls a task function (`chitally.engine.run_task` unless
 another is given, e.g. a test's fault-injecting wrapper). The serial for-loop is the
-reference; the Dask executor submits in a window that follows the live cluster (workers
-that join later raise it), notices a lost scheduler, and keeps our own bounded retries so
-every attempt has a name and errors that another attempt cannot cure are not retried.
-Executors never print; progress, logging and checkpointing hang off `Events`.
+reference; the Dask executor sends small tasks in bundles (`chitally.bundles`), submits
+in a window that follows the live cluster (workers that join later raise it), notices a
+lost scheduler, and keeps our own bounded retries so every attempt has a name and errors
+that another attempt cannot cure are not retried. Executors never print; progress,
+logging and checkpointing hang off `Events`.
 """
 
 from __future__ import annotations
 
 import logging
 import math
+import pickle
 import socket
 import time
 import traceback
+from collections import deque
 from collections.abc import Callable, Sequence
 from concurrent.futures import CancelledError
 from dataclasses import dataclass, field
 from typing import Any, Protocol
 
 from . import engine
+from .bundles import Bundler
 from .engine import TaskResult
 from .store import CommitConflict, InputsDamaged, LeaseLost, RunStore, StoreMismatch
 from .validate import InputError
@@ -96,6 +100,39 @@ def _task_function(given: TaskFunction | None) -> TaskFunction:
     return given if given is not None else engine.run_task
 
 
+#: What a bundle reports per task: its id, and its result or the error it raised.
+BundleOutcome = tuple[int, "TaskResult | BaseException"]
+
+
+def _sendable(exc: Exception) -> Exception:
+    """`exc` if it survives pickling (the driver needs its type to judge a retry), else
+    a RuntimeError with its message."""
+    try:
+        pickle.loads(pickle.dumps(exc))
+        return exc
+    except Exception:
+        return RuntimeError(message_of(exc))
+
+
+def run_bundle(fn: TaskFunction, store: RunStore, tasks: Sequence[int], attempts: Sequence[str], *,
+               threads: int = 1) -> list[BundleOutcome]:
+    """Run `tasks` one after the other on this worker, each through `fn` (committed on
+    its own), and report each one's outcome: an error of one task does not stop the
+    others, except a fatal one (no other task can succeed either), after which the rest
+    are not run and not reported."""
+    out: list[BundleOutcome] = []
+    for task, attempt in zip(tasks, attempts):
+        try:
+            result: TaskResult | BaseException = fn(store, task, attempt, threads=threads)
+        except Exception as exc:
+            logger.debug("task %d attempt %s failed:\n%s", task, attempt, traceback.format_exc())
+            result = _sendable(exc)
+        out.append((int(task), result))
+        if isinstance(result, FATAL):
+            break
+    return out
+
+
 class SerialExecutor:
     """Runs tasks one after the other in this process: the reference executor."""
 
@@ -138,17 +175,23 @@ class SerialExecutor:
 class DaskExecutor:
     """Runs tasks on a Dask cluster through `client`.
 
-    At most `window` tasks are in flight; by default `window_factor` per worker thread of
-    the live cluster, recounted (at most once a second) as workers come and go. Keys are
-    ``chitally-<kind>-<plan digest>-<store hash>-<task>[-r<retry>]`` so the dashboard
-    groups them by run; tasks arrive heaviest first and keep that priority. When the
-    client closes, or no worker is connected for `lost_after` seconds, `SchedulerLost`
-    is raised with the in-flight tasks cancelled.
+    Small tasks travel in bundles (see `chitally.bundles`): a Dask task that runs several
+    engine tasks one after the other, each committed on its own, so that a bundle holds
+    about `bundle_seconds` of estimated work (0: every task alone; `bundle_tasks`: that
+    many tasks a bundle instead). A retry always runs alone. At most `window` Dask tasks
+    are in flight; by default `window_factor` per worker thread of the live cluster,
+    recounted (at most once a second) as workers come and go. Keys are
+    ``chitally-<kind>-<plan digest>-<store hash>-<task>[-r<retry>]``, and
+    ``...-<first task>-n<tasks>`` for a bundle, so the dashboard groups them by run;
+    tasks arrive heaviest first and keep that priority. When the client closes, or no
+    worker is connected for `lost_after` seconds, `SchedulerLost` is raised with the
+    in-flight tasks cancelled.
     """
 
     def __init__(self, client: Any, retries: int = 2, window: int | None = None, threads: int = 1,
                  task_function: TaskFunction | None = None, lost_after: float = 60.0,
-                 window_factor: float = 4.0) -> None:
+                 window_factor: float = 4.0, bundle_seconds: float = 0.1,
+                 bundle_tasks: int | None = None) -> None:
         self.client = client
         self.retries = retries
         self.threads = threads
@@ -156,8 +199,11 @@ class DaskExecutor:
         self.window_factor = float(window_factor)
         self.task_function = task_function
         self.lost_after = float(lost_after)
+        self.bundle_seconds = float(bundle_seconds)
+        self.bundle_tasks = bundle_tasks
         self._window_at = -1.0
         self._window = max(1, math.ceil(self.window_factor))
+        self._slots = 1
 
     def window(self) -> int:
         if self.fixed_window is not None:
@@ -171,6 +217,7 @@ class DaskExecutor:
             except Exception:
                 workers = []
             slots = sum(w.get("nthreads", 1) for w in workers)
+            self._slots = max(1, slots)
             factor = self.window_factor
             self._window = max(1, math.ceil(factor), math.ceil(factor * slots))
             self._window_at = now
@@ -204,7 +251,10 @@ class DaskExecutor:
         elif now - since_workers[0] > self.lost_after:
             raise SchedulerLost(f"no Dask worker for {self.lost_after:g} s")
 
-    def run(self, store: RunStore, tasks: Sequence[int], events: Events) -> Outcome:
+    def run(self, store: RunStore, tasks: Sequence[int], events: Events, *,
+            cost: Any = None) -> Outcome:
+        """Run `tasks` of `store`; `cost` is each task's estimated cost (the store's own,
+        read here, when None)."""
         import hashlib
 
         from distributed import wait
@@ -214,29 +264,64 @@ class DaskExecutor:
         # two stores of one plan may run at once on one cluster: keys must differ
         prefix = (f"chitally-{store.kind}-{store.plan_digest[:16]}-"
                   f"{hashlib.sha256(store.url.encode()).hexdigest()[:6]}")
-        queue = iter(list(tasks))
+        queue = deque(int(t) for t in tasks)
+        if cost is None:
+            cost = store.task_cost() if queue else []
+        bundler = Bundler(cost, self.bundle_seconds, size=self.bundle_tasks)
         attempts: dict[int, int] = {}
-        in_flight: dict[Any, int] = {}
+        in_flight: dict[Any, list[int]] = {}
         submitted = 0
         since_workers = [time.monotonic()]
 
-        def submit(task: int) -> None:
+        def submit(bundle: list[int]) -> None:
             nonlocal submitted
-            number = attempts.get(task, 0)
-            attempt = attempt_name(task, number)
-            key = f"{prefix}-{task}" + (f"-r{number}" if number else "")
-            fut = self.client.submit(fn, store, task, attempt, threads=self.threads, key=key,
-                                     pure=False, priority=-submitted)
+            names = [attempt_name(t, attempts.get(t, 0)) for t in bundle]
+            first, number = bundle[0], attempts.get(bundle[0], 0)
+            if len(bundle) == 1:
+                # alone, the task function is the Dask task: its error is the future's
+                key = f"{prefix}-{first}" + (f"-r{number}" if number else "")
+                fut = self.client.submit(fn, store, first, names[0], threads=self.threads, key=key,
+                                         pure=False, priority=-submitted)
+            else:
+                fut = self.client.submit(run_bundle, fn, store, bundle, names, threads=self.threads,
+                                         key=f"{prefix}-{first}-n{len(bundle)}", pure=False,
+                                         priority=-submitted)
             submitted += 1
-            in_flight[fut] = task
-            events.task_started(task, attempt)
+            in_flight[fut] = bundle
+            for task, name in zip(bundle, names):
+                events.task_started(task, name)
 
         def refill() -> None:
-            while len(in_flight) < self.window():
-                task = next(queue, None)
-                if task is None:
-                    return
-                submit(task)
+            while queue and len(in_flight) < self.window():
+                # at least two bundles per worker thread for what is left: the last
+                # bundles keep every worker busy
+                submit(bundler.take(queue, spread=2 * self._slots if self.fixed_window is None
+                                    else self.window()))
+
+        def settle(task: int, result: Any) -> None:
+            """One task's outcome: its result, or the error its attempt ended with."""
+            if not isinstance(result, BaseException):
+                outcome.done.append(task)
+                events.task_done(result)
+                return
+            if isinstance(result, CancelledError):
+                raise self._lost() from result
+            if isinstance(result, FATAL):
+                raise result
+            if isinstance(result, NOT_RETRIED):
+                outcome.failed[task] = message_of(result)
+                events.task_failed(task, outcome.failed[task], attempts.get(task, 0) + 1)
+                return
+            if self._client_gone():
+                raise self._lost() from result
+            number = attempts.get(task, 0)
+            if number >= self.retries:
+                outcome.failed[task] = message_of(result)
+                events.task_failed(task, outcome.failed[task], number + 1)
+            else:
+                events.task_retry(task, attempt_name(task, number), message_of(result))
+                attempts[task] = number + 1
+                submit([task])
 
         try:
             refill()
@@ -255,30 +340,24 @@ class DaskExecutor:
                     continue
                 results = self._gather(finished)
                 for fut in finished:
-                    task = in_flight.pop(fut)
+                    bundle = in_flight.pop(fut)
                     try:
-                        result = results[fut] if fut in results else fut.result()
+                        try:
+                            value = results[fut] if fut in results else fut.result()
+                        except (CancelledError, *FATAL):
+                            raise
+                        except Exception as exc:
+                            # the Dask task failed (a bundle as a whole: its worker died
+                            # too often, say): one failed attempt for each of its tasks
+                            for task in bundle:
+                                settle(task, exc)
+                            continue
+                        for task, result in ([(bundle[0], value)] if len(bundle) == 1 else value):
+                            if isinstance(result, TaskResult) and not result.cached and result.wall:
+                                bundler.observe(task, result.seconds, result.wall)
+                            settle(task, result)
                     except CancelledError as exc:
                         raise self._lost() from exc
-                    except FATAL:
-                        raise
-                    except NOT_RETRIED as exc:
-                        outcome.failed[task] = message_of(exc)
-                        events.task_failed(task, outcome.failed[task], attempts.get(task, 0) + 1)
-                    except Exception as exc:
-                        if self._client_gone():
-                            raise self._lost() from exc
-                        number = attempts.get(task, 0)
-                        if number >= self.retries:
-                            outcome.failed[task] = message_of(exc)
-                            events.task_failed(task, outcome.failed[task], number + 1)
-                        else:
-                            events.task_retry(task, attempt_name(task, number), message_of(exc))
-                            attempts[task] = number + 1
-                            submit(task)
-                    else:
-                        outcome.done.append(task)
-                        events.task_done(result)
                     finally:
                         fut.release()
                 results.clear()

@@ -259,11 +259,12 @@ class Where:
 class _OnWorkers:
     """An executor that hands its workers the run store opened with other storage options."""
 
-    def __init__(self, inner: Executor, store: RunStore) -> None:
+    def __init__(self, inner: DaskExecutor, store: RunStore) -> None:
         self.inner, self.store = inner, store
 
     def run(self, store: RunStore, tasks: Any, events: Events) -> Outcome:
-        return self.inner.run(self.store, tasks, events)
+        # the task costs (bundle sizes) as this process reads them, not as the workers do
+        return self.inner.run(self.store, tasks, events, cost=store.task_cost())
 
 
 def _for_workers(store: RunStore, storage_options: Mapping[str, Any] | None) -> RunStore:
@@ -349,6 +350,7 @@ class Session:
                     check_workers(self.conn.client, remote)
                     preflight_memory(self.conn.client, int(store.task_memory().max(initial=0)))
                     executor = DaskExecutor(self.conn.client, window_factor=setting("window-factor"),
+                                            bundle_seconds=seconds("bundle-seconds"),
                                             retries=retries,
                                             lost_after=seconds("lost-after", where.lost_after))
                     if remote is not store:

@@ -246,11 +246,12 @@ class StoreIO:
         """
         buf = default_buffer_prototype().buffer.from_bytes(data)
 
-        def run() -> None:
+        def run() -> bool:
             store = self.zarr_store
             if self._local is not None:
-                self._local.set_if_not_exists(key, data)
-            elif isinstance(store, FsspecStore):
+                # link(2) says whether it was ours: nothing to read back then
+                return self._local.set_if_not_exists(key, data)
+            if isinstance(store, FsspecStore):
                 path = f"{store.path.rstrip('/')}/{key}"
                 try:
                     sync(store.fs._pipe_file(path, data, mode="create"))
@@ -260,8 +261,10 @@ class StoreIO:
                     sync(store.set_if_not_exists(key, buf))
             else:
                 sync(store.set_if_not_exists(key, buf))
+            return False
 
-        self.op(what, key, run, task=task)
+        if self.op(what, key, run, task=task):
+            return True
         # Whoever won, reading back tells us whether it was us: our bytes carry a unique
         # token or attempt id, or are identical to the winner's anyway.
         return self.get(key) == data

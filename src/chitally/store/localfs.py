@@ -43,6 +43,7 @@ SMALL_ARRAY_BYTES = 1 << 20
 
 _ZSTD = Zstd(level=1)
 _TEMPLATES: dict[tuple[str, int], dict[str, Any]] = {}
+_METADATA: dict[tuple[str, tuple[int, ...]], bytes] = {}
 
 
 class LocalKeys:
@@ -73,7 +74,8 @@ class LocalKeys:
     def exists(self, key: str) -> bool:
         return os.path.isfile(self.path(key))
 
-    def _write(self, key: str, data: bytes, exclusive: bool) -> None:
+    def _write(self, key: str, data: bytes, exclusive: bool) -> bool:
+        """Write `key`; False when `exclusive` and the key existed (left as it was)."""
         path = self.path(key)
         tmp = f"{path}.{uuid.uuid4().hex}.partial"
         try:
@@ -83,14 +85,16 @@ class LocalKeys:
                 # folders are made only when missing: a mkdir per write is costly
                 os.makedirs(os.path.dirname(path), exist_ok=True)
                 _write_file(tmp, data)
+            created = True
             if exclusive:
                 try:
                     os.link(tmp, path)
                 except FileExistsError:
-                    pass
+                    created = False
                 os.unlink(tmp)
             else:
                 os.replace(tmp, path)
+            return created
         except BaseException:
             try:
                 os.unlink(tmp)
@@ -102,9 +106,10 @@ class LocalKeys:
         """Write `key` whole (atomically replacing what it held)."""
         self._write(key, data, exclusive=False)
 
-    def set_if_not_exists(self, key: str, data: bytes) -> None:
-        """Write `key` only if no such key exists (an existing key is left as it is)."""
-        self._write(key, data, exclusive=True)
+    def set_if_not_exists(self, key: str, data: bytes) -> bool:
+        """Write `key` only if no such key exists (an existing key is left as it is);
+        True when this call created it."""
+        return self._write(key, data, exclusive=True)
 
     def delete_dir(self, prefix: str) -> None:
         shutil.rmtree(self.path(prefix), ignore_errors=True)
@@ -124,6 +129,8 @@ class LocalKeys:
         if old is None or not _same_json(old, meta):
             if old is not None or os.path.isdir(self.path(path)):
                 self.delete_dir(path)
+            # the folders of the metadata and of the chunk at once (a new array's usual case)
+            os.makedirs(os.path.dirname(self.path(f"{path}/{chunk_key(data.ndim)}")), exist_ok=True)
             self.set(key, meta)
         if data.size:
             self.set(f"{path}/{chunk_key(data.ndim)}", encode_chunk(data))
@@ -303,12 +310,21 @@ def _template(dtype: np.dtype, ndim: int) -> dict[str, Any]:
 
 
 def small_metadata(shape: tuple[int, ...], dtype: np.dtype) -> bytes:
-    """``zarr.json`` of a one-chunk array of this shape and dtype."""
-    doc = dict(_template(np.dtype(dtype), len(shape)))
-    doc["shape"] = [int(s) for s in shape]
-    doc["chunk_grid"] = {"name": "regular",
-                         "configuration": {"chunk_shape": [max(int(s), 1) for s in shape]}}
-    return json.dumps(doc, indent=2).encode()
+    """``zarr.json`` of a one-chunk array of this shape and dtype (made once per process
+    for each: a task's outputs have the same shapes task after task)."""
+    dtype = np.dtype(dtype)
+    shape = tuple(int(s) for s in shape)
+    key = (dtype.str, shape)
+    meta = _METADATA.get(key)
+    if meta is None:
+        doc = dict(_template(dtype, len(shape)))
+        doc["shape"] = list(shape)
+        doc["chunk_grid"] = {"name": "regular",
+                             "configuration": {"chunk_shape": [max(s, 1) for s in shape]}}
+        meta = json.dumps(doc, indent=2).encode()
+        if len(_METADATA) < 4096:
+            _METADATA[key] = meta
+    return meta
 
 
 def small_layout(doc: Any) -> tuple[tuple[int, ...] | None, np.dtype | None]:
