@@ -136,6 +136,7 @@ class TreePeaks:
         self.root = psutil.Process(pid)
         self.every = every
         self.peaks: dict[int, tuple[str, int]] = {}
+        self.cpu: dict[int, float] = {}
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._poll, daemon=True)
         self._thread.start()
@@ -154,12 +155,17 @@ class TreePeaks:
                     except Exception:
                         name = self.peaks.get(k.pid, ("?", 0))[0]
                     self.peaks[k.pid] = (name, max(peak, self.peaks.get(k.pid, ("", 0))[1]))
+                try:
+                    t = k.cpu_times()
+                    self.cpu[k.pid] = max(self.cpu.get(k.pid, 0.0), t.user + t.system)
+                except Exception:  # gone between the listing and the reading
+                    pass
             self._stop.wait(self.every)
 
-    def stop(self) -> dict[int, tuple[str, int]]:
+    def stop(self) -> tuple[dict[int, tuple[str, int]], dict[int, float]]:
         self._stop.set()
         self._thread.join()
-        return self.peaks
+        return self.peaks, self.cpu
 
 
 def load() -> str:
@@ -193,13 +199,15 @@ def child_cluster(npy: str, construction: str, store: str, out: str) -> dict:
         report = session.run(rs)
         t_all = time.perf_counter() - t0
         workers = sorted(session.conn.client.run(vm_hwm).values())
+        workers_cpu = sum(session.conn.client.run(cpu_seconds).values())
     records = [rs.commits.record(t) for t in range(rs.n_tasks)]
     curve = report.result
     curve.save(out)
     return {"seconds": t_all, "plan": t_plan, "after_start": t_all - (stamps["connected"] - t0),
             "tasks": rs.n_tasks, "block": rs.attrs["block"],
             "task_seconds": sum(float(r["seconds"]) for r in records),
-            "peak": vm_hwm(), "worker_peaks": workers, "digest": curve.digest(), "jumps": curve.n_jumps}
+            "peak": vm_hwm(), "worker_peaks": workers, "cpu": cpu_seconds(), "workers_cpu": workers_cpu,
+            "digest": curve.digest(), "jumps": curve.n_jumps}
 
 
 def child_gudhi(npy: str, construction: str, out: str) -> dict:
@@ -283,7 +291,8 @@ def part_a(args: argparse.Namespace, folder: Path) -> None:
                   f"peak RSS {ours['peak'] / GIB:.2f} GiB ({ours['before'] / GIB:.2f} with the volume loaded)")
             print(f"    chitally 2-worker LocalCluster:      {dist['seconds']:7.2f} s  ({dist['after_start']:.2f} s "
                   f"after the cluster started; {dist['tasks']} tasks of {dist['block']}, "
-                  f"{dist['task_seconds']:.2f} s task time); driver peak {dist['peak'] / GIB:.2f} GiB, "
+                  f"{dist['task_seconds']:.2f} s task time; cpu: driver {dist['cpu']:.2f} s, workers "
+                  f"{dist['workers_cpu']:.2f} s with their start); driver peak {dist['peak'] / GIB:.2f} GiB, "
                   f"workers {', '.join(f'{p / GIB:.2f}' for p in dist['worker_peaks'])} GiB")
             print(f"    gudhi CubicalComplex + persistence:  {theirs['seconds']:7.2f} s  cpu {theirs['cpu']:7.2f} s  "
                   f"(build {theirs['build']:.2f}, persistence {theirs['persistence']:.2f}, intervals out "
@@ -301,12 +310,14 @@ def part_a(args: argparse.Namespace, folder: Path) -> None:
 # ---------------------------------------------------------------------------- parts b and c
 
 LAUNCHER = (
-    "import atexit, json, sys\n"
+    "import atexit, os, sys\n"
     "def _peak():\n"
     "    with open('/proc/self/status') as f:\n"
     "        for line in f:\n"
     "            if line.startswith('VmHWM:'):\n"
     "                sys.stderr.write('DRIVER_PEAK ' + line.split()[1] + '\\n')\n"
+    "    t = os.times()\n"
+    "    sys.stderr.write('DRIVER_CPU ' + repr(t.user + t.system) + '\\n')\n"
     "atexit.register(_peak)\n"
     "from chitally.cli import main\n"
     "sys.argv[0] = 'chitally'\n"
@@ -324,15 +335,18 @@ def run_cli(cli_args: list[str]) -> dict:
     watch = TreePeaks(proc.pid)
     out, err = proc.communicate()
     seconds = time.perf_counter() - t0
-    kids = watch.stop()
+    kids, kid_cpu = watch.stop()
     if proc.returncode != 0:
         raise SystemExit(f"chitally {' '.join(cli_args)} failed ({proc.returncode}):\n{err[-4000:]}")
     peak = [int(line.split()[1]) * 1024 for line in err.splitlines() if line.startswith("DRIVER_PEAK")]
+    cpu = [float(line.split()[1]) for line in err.splitlines() if line.startswith("DRIVER_CPU")]
     # LocalCluster workers are spawned interpreters; the resource tracker is not one
     workers = sorted(p for name, p in kids.values() if "spawn_main" in name)
     return {"seconds": seconds, "driver_peak": peak[-1] if peak else 0, "children": kids,
+            "driver_cpu": cpu[-1] if cpu else float("nan"),
+            "workers_cpu": sum(c for pid, c in kid_cpu.items() if "spawn_main" in kids.get(pid, ("", 0))[0]),
             "worker_peaks": workers, "said": [line for line in (out + err).splitlines()
-                                              if line.strip() and not line.startswith("DRIVER_PEAK")]}
+                                              if line.strip() and not line.startswith("DRIVER_")]}
 
 
 def store_curve(url: str):
@@ -362,6 +376,8 @@ def part_b(args: argparse.Namespace, src: Path, folder: Path) -> str:
     print(f"  driver peak RSS {got['driver_peak'] / GIB:.2f} GiB (the CLI process, scheduler and nannies "
           f"included); worker peaks {', '.join(f'{p / GIB:.2f}' for p in got['worker_peaks'])} GiB; "
           f"run store {du(run) / 2**20:.1f} MiB; {load()}")
+    print(f"  cpu: driver {got['driver_cpu']:.1f} s, workers {got['workers_cpu']:.1f} s in all (read "
+          f"every 0.25 s until they exit)")
     for pid, (name, p) in sorted(got["children"].items()):
         print(f"    child {pid}: {p / GIB:.2f} GiB  {name}")
     print("  chitally said: " + " | ".join(line.strip() for line in got["said"][-4:])[:500])
@@ -378,12 +394,14 @@ def part_c(args: argparse.Namespace, src: Path, folder: Path, digest_b: str | No
                       host="127.0.0.1", dashboard_address="127.0.0.1:0") as cluster, Client(cluster) as client:
         pids_before = client.run(os.getpid)
         base = client.run(vm_hwm)
+        cpu_before = client.run(cpu_seconds)
         cli = ["field", str(src), "--construction", args.construction, "--run", str(run),
                "--scheduler", cluster.scheduler_address, "--no-progress"]
         print(f"(c) chitally {' '.join(cli)}   [2 workers, 1 thread, memory_limit={args.memory_limit}; {load()}]")
         got = run_cli(cli)
         pids_after = client.run(os.getpid)
         peaks = client.run(vm_hwm)
+        cpu_workers = sum(client.run(cpu_seconds).values()) - sum(cpu_before.values())
         limits = {w: info["memory_limit"] for w, info in client.scheduler_info()["workers"].items()}
     curve = store_curve(str(run))
     same = digest_b is None or curve.digest() == digest_b
@@ -394,6 +412,7 @@ def part_c(args: argparse.Namespace, src: Path, folder: Path, digest_b: str | No
           f"worker peaks {', '.join(f'{p / GIB:.2f}' for p in sorted(peaks.values()))} GiB "
           f"(idle {', '.join(f'{p / GIB:.2f}' for p in sorted(base.values()))}); limits "
           f"{sorted(v / GIB for v in limits.values())} GiB; workers restarted: {pids_before != pids_after}; {load()}")
+    print(f"  cpu: driver {got['driver_cpu']:.1f} s, workers {cpu_workers:.1f} s in all")
     if not same:
         raise SystemExit("part c's curve differs from part b's")
 
