@@ -102,6 +102,34 @@ def test_any_block_shape_gives_the_same_curve(tmp_path_factory, seed, constructi
     assert field_run(a, url, construction=construction, block=block).curve == field_curve(a, construction)
 
 
+@pytest.mark.parametrize("shape, side", [((1536, 1536), 512), ((192,) * 3, 64), ((48,) * 4, 16)])
+@pytest.mark.parametrize("dtype", ["float32", "float64"])
+def test_planned_task_memory_covers_a_block_of_distinct_values(shape, side, dtype):
+    """The memory preflight trusts the plan's estimate: it must cover what a task holds
+    (its halo) and allocates (traced by tracemalloc, which numpy reports to) in the worst
+    case, every entry distinct (one count bin per entry)."""
+    import tracemalloc
+
+    from chitally.cubical import block_jumps, halo_ranges
+    from chitally.jobs.field import job_spec
+
+    a = np.random.default_rng(9).random(shape).astype(dtype)
+    nd = len(shape)
+    for construction in ("vertices", "cells"):
+        spec = job_spec(a, FieldParams.checked(construction, block=(side,) * nd), None)
+        owned = [(side, 2 * side)] * nd  # an inner block: a full halo on every side
+        ext = halo_ranges(owned, shape)
+        halo = np.ascontiguousarray(a[tuple(slice(lo, hi) for lo, hi in ext)])
+        tracemalloc.start()
+        try:
+            block_jumps(None, construction, [slice(lo, hi) for lo, hi in owned], halo=halo,
+                        halo_offset=[lo for lo, _ in ext], shape=shape)
+            peak = tracemalloc.get_traced_memory()[1]
+        finally:
+            tracemalloc.stop()
+        assert peak + halo.nbytes <= spec.memory.max()
+
+
 @pytest.mark.cluster
 def test_two_process_cluster_gives_the_same_curve(tmp_path):
     a = _array(6, (16, 12, 10))
