@@ -73,6 +73,13 @@ def test_a_small_array_keeps_the_field_kind_and_old_parameters(tmp_path):
     assert report.curve == field_curve(a, "vertices")
     with pytest.raises(InputError, match="part_jumps"):
         FieldParams.checked(part_jumps=1)
+    # 400 entries, but a byte spells at most 256 values: one part of 300 holds them all
+    b = np.random.default_rng(2).integers(0, 256, (20, 20)).astype(np.uint8)
+    report = field_run(b, str(tmp_path / "b.zarr"), block=(8, 8), part_jumps=300)
+    assert open_run(str(tmp_path / "b.zarr")).kind == "field" and report.curve == field_curve(b, "vertices")
+    report = field_run(b, str(tmp_path / "c.zarr"), block=(8, 8), part_jumps=100)
+    assert open_run(str(tmp_path / "c.zarr")).kind == "field-parts"
+    _same(report.curve, field_curve(b, "vertices"), open_run(str(tmp_path / "c.zarr")))
 
 
 def test_a_masked_out_field_in_parts_is_the_zero_curve(tmp_path):

@@ -5,8 +5,9 @@ of that grid, reads it with a one-entry halo and commits the jump table of the c
 owns (`chitally.cubical.block_jumps`), with the range and number of its present entries;
 the fold sums jump tables exactly and takes the curve's domain from the ranges.
 
-An array with more entries than one part of a curve holds (`chitally.jobs.parts.PART_JUMPS`;
-a cubical curve has at most one jump per distinct value) runs as the ``field-parts``
+An array with more possible distinct values than one part of a curve holds
+(`chitally.jobs.parts.PART_JUMPS`; a cubical curve has at most one jump per distinct
+value, and an array has at most one per entry, 2^16 for a dtype of two bytes) runs as the ``field-parts``
 kind instead: tasks also commit where their tables cross part boundaries placed at
 quantiles of a sample of the values, the fold keeps only the range and the present
 entries, and the ``curve-merge`` kind reduces the tables part by part on the workers
@@ -106,12 +107,19 @@ class FieldParams:
             d["part_jumps"] = self.part_jumps
         return d
 
-    def kind(self, shape: tuple[int, ...]) -> Any:
-        """``field``, or ``field-parts`` when the array's entries (a bound on the curve's
-        jumps) exceed one part."""
+    def kind(self, shape: tuple[int, ...], dtype: Any) -> Any:
+        """``field``, or ``field-parts`` when the curve's jumps may exceed one part."""
         from .parts import PART_JUMPS
 
-        return FIELD_PARTS if math.prod(shape) + 1 > (self.part_jumps or PART_JUMPS) else FIELD
+        return FIELD_PARTS if distinct_bound(shape, dtype) > (self.part_jumps or PART_JUMPS) else FIELD
+
+
+def distinct_bound(shape: tuple[int, ...], dtype: Any) -> int:
+    """At most this many distinct values, hence jumps: one per entry, and no more than a
+    dtype of one or two bytes can spell."""
+    dt = np.dtype(dtype)
+    n = math.prod(shape)
+    return min(n, 1 << (8 * dt.itemsize)) if dt.itemsize <= 2 else n
 
 
 # ---------------------------------------------------------------------------- the input
@@ -320,16 +328,16 @@ def value_sample(arr: Any, params: FieldParams, block: tuple[int, ...], mask: Pr
     return -out if params.superlevel else out
 
 
-def part_plan(sample: np.ndarray, n_entries: int, n_parts: int) -> tuple[np.ndarray, np.ndarray]:
+def part_plan(sample: np.ndarray, n_jumps: int, n_parts: int) -> tuple[np.ndarray, np.ndarray]:
     """Part boundaries (quantiles of `sample`; part p holds the scales in (b_p, b_{p+1}])
-    and each part's estimated jumps (its share of the sample times the entries). Only
+    and each part's estimated jumps (its share of the sample times `n_jumps`). Only
     the balance of the parts depends on them, never the curve."""
     if sample.size == 0 or n_parts < 2:
-        return np.zeros(0), np.array([float(n_entries)])
+        return np.zeros(0), np.array([float(n_jumps)])
     bounds = np.unique(np.quantile(sample, np.arange(1, n_parts) / n_parts, method="inverted_cdf"))
     bounds = bounds[bounds < sample.max()]  # a bound at the top would leave its last part empty
     share = np.bincount(np.searchsorted(bounds, sample, side="left"), minlength=bounds.size + 1) / sample.size
-    return bounds.astype(np.float64), share * float(n_entries)
+    return bounds.astype(np.float64), share * float(n_jumps)
 
 
 def job_spec(arr: Any, params: FieldParams, location: Mapping[str, Any] | None,
@@ -356,14 +364,14 @@ def job_spec(arr: Any, params: FieldParams, location: Mapping[str, Any] | None,
         attrs["mask"] = {"location": None if m_location is None else dict(m_location)}
         if m_location is None:
             inputs["mask"] = np.asarray(m)
-    kind = params.kind(shape)
+    kind = params.kind(shape, arr.dtype)
     if kind is FIELD_PARTS:
         from .parts import PART_JUMPS
 
-        n_entries = math.prod(shape)
-        n_parts = -(-(n_entries + 1) // (params.part_jumps or PART_JUMPS))
+        n_jumps = distinct_bound(shape, arr.dtype)
+        n_parts = -(-n_jumps // (params.part_jumps or PART_JUMPS))
         inputs["part_bounds"], inputs["part_cost"] = part_plan(value_sample(arr, params, block, mask),
-                                                               n_entries, n_parts)
+                                                               n_jumps, n_parts)
     return JobSpec(kind=kind.name, params=params.as_dict(),
                    fingerprint=fp if fp is not None else fingerprint_of(arr, params, location, mask),
                    outputs=kind.outputs, cost=cost, memory=memory, inputs=inputs, attrs=attrs)
@@ -442,7 +450,7 @@ def create_or_open(url: str, source: Any, params: FieldParams, *, key: str | Non
     prepared_mask = prepare_mask(mask, tuple(int(s) for s in arr.shape), mask_key, storage_options,
                                  name=(names or {}).get("mask", "mask"))
     fp = fingerprint_of(arr, params, location, prepared_mask)
-    return open_or_create(url, params.kind(tuple(int(s) for s in arr.shape)).name, params.as_dict(), fp,
+    return open_or_create(url, params.kind(tuple(int(s) for s in arr.shape), arr.dtype).name, params.as_dict(), fp,
                           lambda: job_spec(arr, params, location, fp, prepared_mask),
                           storage_options=storage_options, discard=discard)
 
