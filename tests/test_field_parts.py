@@ -17,7 +17,6 @@ from chitally.jobs.parts import PartedCurve
 from chitally.runs import Where, open_run, read_result
 from chitally.validate import InputError
 
-HOST = "127.0.0.1"
 QUIET_HTTP = {"http_prefix": None}
 
 
@@ -102,6 +101,8 @@ def test_a_zarr_field_in_parts_on_dask(tmp_path):
         report = field_run(str(tmp_path / "a.zarr"), str(tmp_path / "f.zarr"),
                            Where(scheduler=lc.scheduler_address, wait_workers=2),
                            construction="cells", part_jumps=100)
+        # the blocks and the parts went through this cluster's scheduler
+        assert lc.scheduler.transition_counter > 0
     store = open_run(str(tmp_path / "f.zarr"))
     assert store.kind == "field-parts" and store.attrs["location"] is not None
     _same(report.curve, field_curve(a, "cells"), store)
@@ -135,12 +136,14 @@ def test_an_unfinished_field_merge_resumes(tmp_path, monkeypatch):
 
 def test_command_line_run_and_export_of_a_field_in_parts(tmp_path):
     a = _array(6, (14, 15))
+    mask = np.random.default_rng(7).random(a.shape) < 0.9
     np.save(tmp_path / "v.npy", a)
+    np.save(tmp_path / "m.npy", mask)  # stays where it is: the value sample reads it by block
     run = str(tmp_path / "f.zarr")
-    res = chitally("field", tmp_path / "v.npy", "--superlevel", "--run", run, "--serial", "--block", "5,5",
-                   "--part-jumps", "40", "--no-progress")
+    res = chitally("field", tmp_path / "v.npy", "--superlevel", "--mask", tmp_path / "m.npy", "--run", run,
+                   "--serial", "--block", "5,5", "--part-jumps", "40", "--no-progress")
     assert res.returncode == 0, explain(res)
-    ref = field_curve(a, "vertices", superlevel=True)
+    ref = field_curve(a, "vertices", superlevel=True, mask=mask)
     assert f"chi({ref.eps:g}) = {ref.final}" in res.stdout + res.stderr
     assert open_run(run).kind == "field-parts"
     for name in ("c.csv", "c.json"):

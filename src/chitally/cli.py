@@ -772,8 +772,8 @@ threshold_opt = click.option("--threshold", type=float, default=None,
 @click.option("--grid", default=None, help="START:STOP:COUNT scales to sample, within the values' range.")
 @click.option("--block", default=None, help="Entries each task owns along each axis, e.g. 64,64,64 (with --run).")
 @click.option("--part-jumps", type=int, default=None,
-              help="With --run: jumps one part of the curve holds (default 2^24); an array with more "
-                   "entries has its curve reduced in parts of the scale on the workers.")
+              help="With --run: jumps one part of the curve holds (default 2^24); an array that may "
+                   "have more distinct values has its curve reduced in parts of the scale on the workers.")
 @click.option("--out", "out", default=None, help="Write the curve here (.csv, .json, .npz), in process.")
 @click.option("--format", "fmt", type=click.Choice(CURVE_FORMATS), default=None,
               help="Output format (default: from --out's ending).")

@@ -117,5 +117,5 @@ def kind_of(name: str) -> JobKind:
         raise ValueError(f"unknown job kind {name!r}; this chitally runs {sorted(KINDS)}") from None
 
 
-__all__ = ["BANDS", "BATCH", "CLOUD", "CLOUD_PARTS", "CURVE_MERGE", "FIELD", "FIELD_PARTS", "GRAPH", "KINDS", "PLAN_COUNT", "PLAN_HALO",
-           "PLAN_REGION", "PLAN_SCATTER", "Fold", "JobKind", "TaskOutput", "kind_of"]
+__all__ = ["BANDS", "BATCH", "CLOUD", "CLOUD_PARTS", "CURVE_MERGE", "FIELD", "FIELD_PARTS", "GRAPH", "KINDS",
+           "PLAN_COUNT", "PLAN_HALO", "PLAN_REGION", "PLAN_SCATTER", "Fold", "JobKind", "TaskOutput", "kind_of"]

@@ -5,10 +5,10 @@ of that grid, reads it with a one-entry halo and commits the jump table of the c
 owns (`chitally.cubical.block_jumps`), with the range and number of its present entries;
 the fold sums jump tables exactly and takes the curve's domain from the ranges.
 
-An array with more possible distinct values than one part of a curve holds
+An array that may have more distinct values than one part of a curve holds jumps
 (`chitally.jobs.parts.PART_JUMPS`; a cubical curve has at most one jump per distinct
-value, and an array has at most one per entry, 2^16 for a dtype of two bytes) runs as the ``field-parts``
-kind instead: tasks also commit where their tables cross part boundaries placed at
+value, and an array at most one distinct value per entry, 2^16 with a dtype of two
+bytes) runs as the ``field-parts`` kind instead: tasks also commit where their tables cross part boundaries placed at
 quantiles of a sample of the values, the fold keeps only the range and the present
 entries, and the ``curve-merge`` kind reduces the tables part by part on the workers
 (`chitally.jobs.parts`), so the driver's memory does not grow with the distinct values.
@@ -620,7 +620,7 @@ def field_run(array_or_url: Any, store: str, where: Any = None, *, key: str | No
         about 4 million entries).
     part_jumps : int, optional
         Jumps one part of the curve holds (default `chitally.jobs.parts.PART_JUMPS`): an
-        array with more entries runs as ``field-parts``, its curve reduced in parts of
+        array that may have more distinct values (`distinct_bound`) runs as ``field-parts``, its curve reduced in parts of
         the scale on the workers.
 
     Returns
@@ -638,4 +638,4 @@ def field_run(array_or_url: Any, store: str, where: Any = None, *, key: str | No
 
 
 __all__ = ["CONSTRUCTIONS", "FieldExtent", "FieldParams", "FieldSum", "Hdf5Field", "compute_task", "create_or_open",
-           "field_run", "job_spec", "open_field", "owned_slices", "prepare_mask", "read_curve"]
+           "distinct_bound", "field_run", "job_spec", "open_field", "owned_slices", "prepare_mask", "read_curve"]

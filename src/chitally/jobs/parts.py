@@ -1,12 +1,12 @@
 """Curves larger than the driver: the run's jump tables reduced in parts of the scale.
 
 Two kinds reduce their curve in parts: a cloud planned on the cluster with more edges
-than one part holds (``cloud-parts``) and a field with more entries than that
-(``field-parts``, `chitally.jobs.field`). Each task commits its jump table with the
+than one part holds jumps (``cloud-parts``) and a field that may have more distinct
+values than that (``field-parts``, `chitally.jobs.field`). Each task commits its jump table with the
 offsets where it crosses the part boundaries fixed at planning, the run's input
 ``part_bounds`` (quantiles of the edge lengths the region stage counted; of a sample of
-a field's values), and the input ``part_cost`` estimates each part's jumps
-(``part_edges`` in cloud stores). The driver folds the offsets only (a field's fold also
+a field's values), and the input ``part_cost`` estimates each part's jumps (edges of a
+cloud; named ``part_edges`` in cloud stores made before fields had parts). The driver folds the offsets only (a field's fold also
 keeps its values' range: the curve's domain). The ``curve-merge`` kind then merges part
 p of every task's table on a worker (a slice of rows each) and commits the part; its fold
 keeps each part's total. The curve is the parts in order, each offset by the totals
