@@ -289,6 +289,23 @@ def test_an_unfinished_merge_resumes(tmp_path, monkeypatch):
     assert merged[n_first:] == [1]  # only the failed part is merged again
 
 
+def test_a_store_naming_its_part_costs_part_edges_still_merges(tmp_path, monkeypatch):
+    # cloud stores made before fields had parts name the merge's cost input part_edges
+    from chitally import staged
+
+    original = staged._parts_of
+
+    def old_names(*args):
+        kind, inputs = original(*args)
+        return kind, {("part_edges" if k == "part_cost" else k): v for k, v in inputs.items()}
+
+    monkeypatch.setattr(staged, "_parts_of", old_names)
+    pts = clustered(600, 14)
+    store, report = plan(tmp_path, pts, 0.08, None, StageParams(region_rows=200, block_rows=300, part_jumps=300))
+    assert store.kind == "cloud-parts" and "part_edges" in store.input_names and "part_cost" not in store.input_names
+    assert report.complete and report.curve == euler_curve(pts, 0.08)
+
+
 @pytest.mark.parametrize("metric", ["manhattan", "chebyshev"])
 def test_other_metrics_plan_on_the_cluster_too(tmp_path, metric):
     # a coordinate difference is at most the distance in these metrics too, so the cells

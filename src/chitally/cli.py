@@ -32,7 +32,7 @@ EXIT_SIGTERM = 143
 
 GRID_HELP = "Also sample on START:STOP:COUNT evenly spaced scales."
 CURVE_FORMATS = ("csv", "json", "npz")
-_CURVE_KINDS = ("cloud", "cloud-parts", "graph", "field")  # job kinds whose result is one curve
+_CURVE_KINDS = ("cloud", "cloud-parts", "graph", "field", "field-parts")  # job kinds whose result is one curve
 
 
 def fail(message: str, code: int) -> NoReturn:
@@ -771,6 +771,9 @@ threshold_opt = click.option("--threshold", type=float, default=None,
 @click.option("--mask-nan", is_flag=True, help="NaN entries are missing (default: refused).")
 @click.option("--grid", default=None, help="START:STOP:COUNT scales to sample, within the values' range.")
 @click.option("--block", default=None, help="Entries each task owns along each axis, e.g. 64,64,64 (with --run).")
+@click.option("--part-jumps", type=int, default=None,
+              help="With --run: jumps one part of the curve holds (default 2^24); an array that may "
+                   "have more distinct values has its curve reduced in parts of the scale on the workers.")
 @click.option("--out", "out", default=None, help="Write the curve here (.csv, .json, .npz), in process.")
 @click.option("--format", "fmt", type=click.Choice(CURVE_FORMATS), default=None,
               help="Output format (default: from --out's ending).")
@@ -781,7 +784,8 @@ threshold_opt = click.option("--threshold", type=float, default=None,
 @storage_opts
 @guarded
 def field_cmd(input: str, key: str | None, construction: str, superlevel: bool, mask_path: str | None,
-              mask_key: str | None, mask_nan: bool, grid: str | None, block: str | None, out: str | None, fmt: str | None,
+              mask_key: str | None, mask_nan: bool, grid: str | None, block: str | None, part_jumps: int | None,
+              out: str | None, fmt: str | None,
               run_url: str | None, discard: bool, progress: bool,
               store_options: dict[str, Any] | None, **how: Any) -> None:
     """The exact curve of an array's cubical filtration (image, volume, any n-D array)."""
@@ -795,11 +799,14 @@ def field_cmd(input: str, key: str | None, construction: str, superlevel: bool, 
             block_shape = tuple(int(x) for x in block.split(","))
         except ValueError:
             fail(f"--block must be comma-separated integers, got {block!r}", EXIT_USAGE)
-    params = FieldParams.checked(construction, superlevel, mask_nan, block_shape,
-                                 names={"construction": "--construction", "block": "--block"})
+    params = FieldParams.checked(construction, superlevel, mask_nan, block_shape, part_jumps,
+                                 names={"construction": "--construction", "block": "--block",
+                                        "part_jumps": "--part-jumps"})
     if run_url is None:
         if out is not None and block is not None:
             say("warning: --block applies to --run only")
+        if part_jumps is not None:
+            say("warning: --part-jumps applies to --run only")
         fmt = check_output(out, fmt)
         from .cubical import check_mask, field_curve
 

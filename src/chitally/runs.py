@@ -54,7 +54,7 @@ DRIVER_BASELINE = 400 << 20
 MAX_ROUNDS = 3
 
 #: Job kinds whose result is one curve.
-CURVE_KINDS = ("cloud", "cloud-parts", "graph", "field")  # executor passes per run: a damaged output found on reduce gets another
+CURVE_KINDS = ("cloud", "cloud-parts", "graph", "field", "field-parts")  # executor passes per run: a damaged output found on reduce gets another
 
 
 class Interrupted(Exception):

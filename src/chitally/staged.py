@@ -198,7 +198,7 @@ def _parts_of(n_edges: int, hist: np.ndarray, params: Params, stage: StageParams
         return CLOUD, {}
     which = np.searchsorted(bounds, (np.arange(hist.size) + 0.5) * params.eps / hist.size)
     return CLOUD_PARTS, {"part_bounds": bounds,
-                         "part_edges": np.bincount(which, weights=hist, minlength=bounds.size + 1)}
+                         "part_cost": np.bincount(which, weights=hist, minlength=bounds.size + 1)}
 
 
 class StageIncomplete(Exception):

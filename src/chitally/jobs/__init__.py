@@ -53,6 +53,19 @@ FIELD = JobKind(
     unit="blocks",
 )
 
+# a field whose curve may be larger than one part: as `cloud-parts`, the fold keeping
+# only the values' range and the present entries (the curve's domain)
+FIELD_PARTS = JobKind(
+    name="field-parts",
+    task="chitally.jobs.field:compute_task",
+    fold="chitally.jobs.field:FieldExtent",
+    outputs=(*FIELD.outputs, ("parts", "<i8")),
+    read="chitally.jobs.parts:read_parted",
+    unit="blocks",
+    fold_reads=("range", "present", "parts"),
+    then="chitally.jobs.parts:merge_store",
+)
+
 # planning a cloud on the cluster (`chitally.jobs.stages`): four stages, each a kind
 _STAGES = "chitally.jobs.stages"
 PLAN_COUNT = JobKind(
@@ -91,7 +104,7 @@ CURVE_MERGE = JobKind(
     read="chitally.jobs.parts:read_totals", unit="parts", fold_reads=("total",),
 )
 
-KINDS: dict[str, JobKind] = {k.name: k for k in (CLOUD, BATCH, BANDS, GRAPH, FIELD, PLAN_COUNT,
+KINDS: dict[str, JobKind] = {k.name: k for k in (CLOUD, BATCH, BANDS, GRAPH, FIELD, FIELD_PARTS, PLAN_COUNT,
                                                  PLAN_SCATTER, PLAN_REGION, PLAN_HALO, CLOUD_PARTS,
                                                  CURVE_MERGE)}
 
@@ -104,5 +117,5 @@ def kind_of(name: str) -> JobKind:
         raise ValueError(f"unknown job kind {name!r}; this chitally runs {sorted(KINDS)}") from None
 
 
-__all__ = ["BANDS", "BATCH", "CLOUD", "CLOUD_PARTS", "CURVE_MERGE", "FIELD", "GRAPH", "KINDS", "PLAN_COUNT", "PLAN_HALO",
-           "PLAN_REGION", "PLAN_SCATTER", "Fold", "JobKind", "TaskOutput", "kind_of"]
+__all__ = ["BANDS", "BATCH", "CLOUD", "CLOUD_PARTS", "CURVE_MERGE", "FIELD", "FIELD_PARTS", "GRAPH", "KINDS",
+           "PLAN_COUNT", "PLAN_HALO", "PLAN_REGION", "PLAN_SCATTER", "Fold", "JobKind", "TaskOutput", "kind_of"]

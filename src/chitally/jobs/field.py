@@ -5,6 +5,14 @@ of that grid, reads it with a one-entry halo and commits the jump table of the c
 owns (`chitally.cubical.block_jumps`), with the range and number of its present entries;
 the fold sums jump tables exactly and takes the curve's domain from the ranges.
 
+An array that may have more distinct values than one part of a curve holds jumps
+(`chitally.jobs.parts.PART_JUMPS`; a cubical curve has at most one jump per distinct
+value, and an array at most one distinct value per entry, 2^16 with a dtype of two
+bytes) runs as the ``field-parts`` kind instead: tasks also commit where their tables cross part boundaries placed at
+quantiles of a sample of the values, the fold keeps only the range and the present
+entries, and the ``curve-merge`` kind reduces the tables part by part on the workers
+(`chitally.jobs.parts`), so the driver's memory does not grow with the distinct values.
+
 Where the input lives:
 
 - a Zarr array reachable by URL (local path or fsspec URL), an HDF5 dataset (``.h5``,
@@ -42,13 +50,16 @@ from ..cubical import CONSTRUCTIONS, block_jumps, check_construction, check_fiel
 from ..curve import Curve
 from ..store import JobSpec, ResultDamaged, RunStore, fingerprint
 from ..validate import InputError
-from . import FIELD
+from . import FIELD, FIELD_PARTS
 from .cloud import JumpSum
 
 #: Entries per block when the input has no chunks to follow (and the floor for chunks).
 DEFAULT_BLOCK_ENTRIES = 1 << 22
-#: Blocks hashed into the fingerprint of an input that stays where it is.
+#: Blocks hashed into the fingerprint of an input that stays where it is (and read for
+#: the part boundaries of a curve reduced in parts).
 SAMPLE_BLOCKS = 16
+#: Values at most kept from the sample that places part boundaries.
+SAMPLE_VALUES = 1 << 20
 #: A task's memory per halo entry beyond two copies of its values (the halo, the
 #: distinct values): ranks and padded ranks, a copied slice (int32), bincount's int64
 #: input and count bins (one bin per distinct value: up to one per entry), plus
@@ -67,11 +78,13 @@ class FieldParams:
     superlevel: bool = False
     mask_nan: bool = False
     block: tuple[int, ...] | None = None
+    part_jumps: int | None = None  # default: chitally.jobs.parts.PART_JUMPS
 
     @staticmethod
     def checked(construction: Any = "vertices", superlevel: Any = False, mask_nan: Any = False,
-                block: Any = None, *, names: Mapping[str, str] | None = None) -> FieldParams:
-        n = {"construction": "construction", "block": "block", **(names or {})}
+                block: Any = None, part_jumps: Any = None, *,
+                names: Mapping[str, str] | None = None) -> FieldParams:
+        n = {"construction": "construction", "block": "block", "part_jumps": "part_jumps", **(names or {})}
         construction = check_construction(construction, name=n["construction"])
         if block is not None:
             try:
@@ -80,11 +93,33 @@ class FieldParams:
                 raise InputError(f"{n['block']} must be a sequence of positive integers, got {block!r}") from None
             if not block or min(block) < 1:
                 raise InputError(f"{n['block']} must be a sequence of positive integers, got {block!r}")
-        return FieldParams(construction, bool(superlevel), bool(mask_nan), block)
+        if part_jumps is not None:
+            if isinstance(part_jumps, bool) or not isinstance(part_jumps, (int, np.integer)) or part_jumps < 2:
+                raise InputError(f"{n['part_jumps']} must be an integer >= 2, got {part_jumps!r}")
+            part_jumps = int(part_jumps)
+        return FieldParams(construction, bool(superlevel), bool(mask_nan), block, part_jumps)
 
     def as_dict(self) -> dict[str, Any]:
-        return {"construction": self.construction, "superlevel": self.superlevel,
-                "mask_nan": self.mask_nan, "block": None if self.block is None else list(self.block)}
+        # part_jumps only when given: stores made before it existed keep their parameters
+        d = {"construction": self.construction, "superlevel": self.superlevel,
+             "mask_nan": self.mask_nan, "block": None if self.block is None else list(self.block)}
+        if self.part_jumps is not None:
+            d["part_jumps"] = self.part_jumps
+        return d
+
+    def kind(self, shape: tuple[int, ...], dtype: Any) -> Any:
+        """``field``, or ``field-parts`` when the curve's jumps may exceed one part."""
+        from .parts import PART_JUMPS
+
+        return FIELD_PARTS if distinct_bound(shape, dtype) > (self.part_jumps or PART_JUMPS) else FIELD
+
+
+def distinct_bound(shape: tuple[int, ...], dtype: Any) -> int:
+    """At most this many distinct values, hence jumps: one per entry, and no more than a
+    dtype of one or two bytes can spell."""
+    dt = np.dtype(dtype)
+    n = math.prod(shape)
+    return min(n, 1 << (8 * dt.itemsize)) if dt.itemsize <= 2 else n
 
 
 # ---------------------------------------------------------------------------- the input
@@ -272,10 +307,43 @@ def sample_fingerprint(arr: Any, block: tuple[int, ...], location: Mapping[str, 
 Prepared = tuple[Any, dict[str, Any] | None]
 
 
+def value_sample(arr: Any, params: FieldParams, block: tuple[int, ...], mask: Prepared | None = None) -> np.ndarray:
+    """Present values (negated for superlevel: the curve's scales) of up to
+    `SAMPLE_BLOCKS` blocks spread over the grid, each read whole and thinned by a stride
+    to keep at most `SAMPLE_VALUES` in all; one block in memory at a time."""
+    shape = tuple(int(s) for s in arr.shape)
+    n = math.prod(grid_of(shape, block))
+    picks = sorted({int(round(k * (n - 1) / max(SAMPLE_BLOCKS - 1, 1))) for k in range(min(n, SAMPLE_BLOCKS))})
+    per_block = max(1, SAMPLE_VALUES // len(picks))
+    got = []
+    for i in picks:
+        sel = owned_slices(i, shape, block)
+        vals = np.asarray(arr[sel]).reshape(-1)
+        keep = np.ones(vals.size, bool) if mask is None else np.asarray(mask[0][sel], bool).reshape(-1)
+        if vals.dtype.kind == "f":
+            keep &= ~np.isnan(vals)
+        vals = vals[keep]
+        got.append(vals[:: max(1, -(-vals.size // per_block))].astype(np.float64))
+    out = np.concatenate(got) if got else np.zeros(0)
+    return -out if params.superlevel else out
+
+
+def part_plan(sample: np.ndarray, n_jumps: int, n_parts: int) -> tuple[np.ndarray, np.ndarray]:
+    """Part boundaries (quantiles of `sample`; part p holds the scales in (b_p, b_{p+1}])
+    and each part's estimated jumps (its share of the sample times `n_jumps`). Only
+    the balance of the parts depends on them, never the curve."""
+    if sample.size == 0 or n_parts < 2:
+        return np.zeros(0), np.array([float(n_jumps)])
+    bounds = np.unique(np.quantile(sample, np.arange(1, n_parts) / n_parts, method="inverted_cdf"))
+    bounds = bounds[bounds < sample.max()]  # a bound at the top would leave its last part empty
+    share = np.bincount(np.searchsorted(bounds, sample, side="left"), minlength=bounds.size + 1) / sample.size
+    return bounds.astype(np.float64), share * float(n_jumps)
+
+
 def job_spec(arr: Any, params: FieldParams, location: Mapping[str, Any] | None,
              fp: Mapping[str, Any] | None = None, mask: Prepared | None = None) -> JobSpec:
     """The run store contents for a field (pure apart from reading the fingerprint
-    sample of a located input)."""
+    sample of a located input, and the value sample of one reduced in parts)."""
     shape = tuple(int(s) for s in arr.shape)
     block = block_shape(shape, _chunks(arr) if location else None, params.block)
     n_tasks = math.prod(grid_of(shape, block))
@@ -296,9 +364,17 @@ def job_spec(arr: Any, params: FieldParams, location: Mapping[str, Any] | None,
         attrs["mask"] = {"location": None if m_location is None else dict(m_location)}
         if m_location is None:
             inputs["mask"] = np.asarray(m)
-    return JobSpec(kind=FIELD.name, params=params.as_dict(),
+    kind = params.kind(shape, arr.dtype)
+    if kind is FIELD_PARTS:
+        from .parts import PART_JUMPS
+
+        n_jumps = distinct_bound(shape, arr.dtype)
+        n_parts = -(-n_jumps // (params.part_jumps or PART_JUMPS))
+        inputs["part_bounds"], inputs["part_cost"] = part_plan(value_sample(arr, params, block, mask),
+                                                               n_jumps, n_parts)
+    return JobSpec(kind=kind.name, params=params.as_dict(),
                    fingerprint=fp if fp is not None else fingerprint_of(arr, params, location, mask),
-                   outputs=FIELD.outputs, cost=cost, memory=memory, inputs=inputs, attrs=attrs)
+                   outputs=kind.outputs, cost=cost, memory=memory, inputs=inputs, attrs=attrs)
 
 
 def _content_fingerprint(arr: Any, params: FieldParams, location: Mapping[str, Any] | None,
@@ -374,7 +450,7 @@ def create_or_open(url: str, source: Any, params: FieldParams, *, key: str | Non
     prepared_mask = prepare_mask(mask, tuple(int(s) for s in arr.shape), mask_key, storage_options,
                                  name=(names or {}).get("mask", "mask"))
     fp = fingerprint_of(arr, params, location, prepared_mask)
-    return open_or_create(url, FIELD.name, params.as_dict(), fp,
+    return open_or_create(url, params.kind(tuple(int(s) for s in arr.shape), arr.dtype).name, params.as_dict(), fp,
                           lambda: job_spec(arr, params, location, fp, prepared_mask),
                           storage_options=storage_options, discard=discard)
 
@@ -417,33 +493,72 @@ def compute_task(store: RunStore, i: int, *, threads: int = 1) -> tuple[dict[str
     else:
         rng = np.array([np.inf, -np.inf])
     out = {"values": values, "jumps": jumps, "range": rng, "present": np.array([n_present], np.int64)}
+    if "part_bounds" in store.input_names:
+        from .parts import offsets_at
+
+        out["parts"] = offsets_at(values, store.read_input("part_bounds"))
     return out, {"entries": int(own.size), "halo": int(halo.size), "jumps": int(values.size)}
 
 
 # ---------------------------------------------------------------------------- the fold
 
-class FieldSum(JumpSum):
-    """The field fold: jump tables summed as in the cloud fold, with the domain taken
-    from the blocks' ranges and the present entries counted."""
+class FieldExtent:
+    """The fold of ``field-parts``: the curve's domain (the blocks' ranges) and its
+    present entries, nothing that grows with the curve (its parts are merged apart)."""
 
     def __init__(self, store: RunStore) -> None:
-        super().__init__(store)
         self.range = np.array([np.inf, -np.inf])
         self.present = np.zeros(1, np.int64)
 
     def restore(self, state: Mapping[str, np.ndarray]) -> None:
-        super().restore(state)
         self.range = np.asarray(state["range"], np.float64).copy()
         self.present = np.asarray(state["present"], np.int64).copy()
 
     def add(self, tasks: list[int], outputs: list[Mapping[str, np.ndarray]]) -> None:
-        super().add(tasks, outputs)
         for o in outputs:
             self.range = np.array([min(self.range[0], o["range"][0]), max(self.range[1], o["range"][1])])
             self.present = self.present + np.asarray(o["present"], np.int64)
 
     def state(self) -> dict[str, np.ndarray]:
-        return {**super().state(), "range": self.range, "present": self.present}
+        return {"range": self.range, "present": self.present}
+
+    def domain(self) -> dict[str, Any]:
+        """The curve's ``start``, ``eps`` and ``n_points`` as `FieldSum.curve` sets them."""
+        n = int(self.present[0])
+        if n == 0:
+            return {"start": 0.0, "eps": 0.0, "n_points": 0}
+        return {"start": float(self.range[0]), "eps": float(self.range[1]), "n_points": n}
+
+    def result(self) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+        return self.state(), {**self.domain(), "max_dim": None}
+
+
+class FieldSum(JumpSum):
+    """The field fold: jump tables summed as in the cloud fold, with the domain taken
+    from the blocks' ranges and the present entries counted (`FieldExtent`)."""
+
+    def __init__(self, store: RunStore) -> None:
+        super().__init__(store)
+        self.extent = FieldExtent(store)
+
+    @property
+    def range(self) -> np.ndarray:
+        return self.extent.range
+
+    @property
+    def present(self) -> np.ndarray:
+        return self.extent.present
+
+    def restore(self, state: Mapping[str, np.ndarray]) -> None:
+        super().restore(state)
+        self.extent.restore(state)
+
+    def add(self, tasks: list[int], outputs: list[Mapping[str, np.ndarray]]) -> None:
+        super().add(tasks, outputs)
+        self.extent.add(tasks, outputs)
+
+    def state(self) -> dict[str, np.ndarray]:
+        return {**super().state(), **self.extent.state()}
 
     def curve(self) -> Curve:
         n = int(self.present[0])
@@ -478,7 +593,8 @@ def read_curve(store: RunStore) -> Curve | None:
 def field_run(array_or_url: Any, store: str, where: Any = None, *, key: str | None = None,
               construction: str = "vertices", superlevel: bool = False, mask: Any = None,
               mask_key: str | None = None, mask_nan: bool = False,
-              block: Any = None, storage_options: Mapping[str, Any] | None = None,
+              block: Any = None, part_jumps: int | None = None,
+              storage_options: Mapping[str, Any] | None = None,
               discard: bool = False, events: Any = None) -> Any:
     """Compute a field's exact curve as a resumable run on the run store `store`.
 
@@ -502,19 +618,24 @@ def field_run(array_or_url: Any, store: str, where: Any = None, *, key: str | No
     block : sequence of int, optional
         The entries each task owns along each axis (default: whole chunks of the input,
         about 4 million entries).
+    part_jumps : int, optional
+        Jumps one part of the curve holds (default `chitally.jobs.parts.PART_JUMPS`): an
+        array that may have more distinct values (`distinct_bound`) runs as ``field-parts``, its curve reduced in parts of
+        the scale on the workers.
 
     Returns
     -------
     chitally.runs.RunReport
-        Its ``result`` is the `Curve` when the run is complete.
+        Its ``result`` is the `Curve` when the run is complete (a
+        `chitally.jobs.parts.PartedCurve` when the curve is larger than one part).
     """
     from ..runs import Where, run
 
-    params = FieldParams.checked(construction, superlevel, mask_nan, block)
+    params = FieldParams.checked(construction, superlevel, mask_nan, block, part_jumps)
     rs = create_or_open(store, array_or_url, params, key=key, mask=mask, mask_key=mask_key,
                         storage_options=storage_options, discard=discard)
     return run(rs, where if where is not None else Where(serial=True), events=events)
 
 
-__all__ = ["CONSTRUCTIONS", "FieldParams", "FieldSum", "Hdf5Field", "compute_task", "create_or_open",
-           "field_run", "job_spec", "open_field", "owned_slices", "prepare_mask", "read_curve"]
+__all__ = ["CONSTRUCTIONS", "FieldExtent", "FieldParams", "FieldSum", "Hdf5Field", "compute_task", "create_or_open",
+           "distinct_bound", "field_run", "job_spec", "open_field", "owned_slices", "prepare_mask", "read_curve"]

@@ -1,9 +1,13 @@
 """Curves larger than the driver: the run's jump tables reduced in parts of the scale.
 
-A cloud planned on the cluster with more edges than one part holds runs as the
-``cloud-parts`` kind: each task commits its jump table with the offsets where it crosses
-the part boundaries fixed at planning (quantiles of the edge lengths the region stage
-counted). The driver folds those offsets only. The ``curve-merge`` kind then merges part
+Two kinds reduce their curve in parts: a cloud planned on the cluster with more edges
+than one part holds jumps (``cloud-parts``) and a field that may have more distinct
+values than that (``field-parts``, `chitally.jobs.field`). Each task commits its jump table with the
+offsets where it crosses the part boundaries fixed at planning, the run's input
+``part_bounds`` (quantiles of the edge lengths the region stage counted; of a sample of
+a field's values), and the input ``part_cost`` estimates each part's jumps (edges of a
+cloud; named ``part_edges`` in cloud stores made before fields had parts). The driver folds the offsets only (a field's fold also
+keeps its values' range: the curve's domain). The ``curve-merge`` kind then merges part
 p of every task's table on a worker (a slice of rows each) and commits the part; its fold
 keeps each part's total. The curve is the parts in order, each offset by the totals
 before it: `PartedCurve`, read part by part, never whole unless asked.
@@ -117,14 +121,15 @@ def read_totals(store: RunStore) -> dict[str, np.ndarray] | None:
 
 
 def merge_store(run: RunStore) -> RunStore:
-    """The ``curve-merge`` store of a ``cloud-parts`` run (created on first use)."""
+    """The ``curve-merge`` store of a run reduced in parts (created on first use)."""
     from ..runs import open_or_create
     from . import CURVE_MERGE
 
     bounds = run.read_input("part_bounds")
     n_parts = int(bounds.size) + 1
     params = {"run": run.plan_digest}
-    cost = np.asarray(run.read_input("part_edges"), np.float64)
+    cost = np.asarray(run.read_input("part_cost" if "part_cost" in run.input_names else "part_edges"),
+                      np.float64)
     memory = (cost * 48).astype(np.int64)  # the tables read, merged and written
 
     def spec() -> JobSpec:
@@ -136,12 +141,31 @@ def merge_store(run: RunStore) -> RunStore:
                           storage_options=run.io.storage_options)
 
 
+def curve_domain(run: RunStore) -> dict[str, Any] | None:
+    """The curve's ``start``, ``eps``, ``max_dim`` and ``n_points``: a cloud's from its
+    attrs, a field's from its fold's result (None before it is written)."""
+    if run.kind == "field-parts":
+        got = run.read_result()
+        if got is None:
+            return None
+        rec = got[1]
+        return {"start": float(rec["start"]), "eps": float(rec["eps"]), "max_dim": None,
+                "n_points": int(rec["n_points"])}
+    a = run.attrs
+    return {"start": float(a.get("start", 0.0)), "eps": float(a["eps"]), "max_dim": run.params["max_dim"],
+            "n_points": int(a["n_points"])}
+
+
 def read_parted(run: RunStore) -> Any:
-    """The curve of a complete ``cloud-parts`` run (None until its parts are merged): a
+    """The curve of a complete run reduced in parts (None until its parts are merged): a
     `Curve` when it is small, else a `PartedCurve` read part by part."""
     from ..store import NotAStore
-    from .stages import open_stage
 
+    domain = curve_domain(run)
+    if domain is None:
+        return None
+    if domain["n_points"] == 0:  # nothing present (a field masked out): no parts to merge
+        return Curve.zero(eps=domain["eps"], max_dim=domain["max_dim"], start=domain["start"])
     try:
         merge = RunStore.open(merge_url(run.url), storage_options=run.io.storage_options)
     except NotAStore:
@@ -149,7 +173,7 @@ def read_parted(run: RunStore) -> Any:
     got = merge.read_result()
     if got is None:
         return None
-    curve = PartedCurve(merge, run, np.asarray(got[0]["totals"], np.int64))
+    curve = PartedCurve(merge, run, np.asarray(got[0]["totals"], np.int64), domain)
     limit = int(run.params.get("part_jumps") or PART_JUMPS)
     return curve.to_curve() if curve.n_stored <= limit else curve
 
@@ -159,13 +183,14 @@ class PartedCurve:
     `at`, `sample`, `final`, `n_jumps`, `digest`, `save` and `save_samples`, reading one
     part at a time. `to_curve()` loads it whole."""
 
-    def __init__(self, merge: RunStore, run: RunStore, totals: np.ndarray) -> None:
-        a = run.attrs
+    def __init__(self, merge: RunStore, run: RunStore, totals: np.ndarray,
+                 domain: Mapping[str, Any] | None = None) -> None:
+        d = domain if domain is not None else curve_domain(run)
         self.merge = merge
-        self.eps = float(a["eps"])
-        self.start = float(a.get("start", 0.0))
-        self.max_dim = run.params["max_dim"]
-        self.n_points = int(a["n_points"])
+        self.eps = float(d["eps"]) + 0.0  # -0.0 -> 0.0 as in `Curve` (a negated field's top)
+        self.start = float(d["start"]) + 0.0
+        self.max_dim = d["max_dim"]
+        self.n_points = int(d["n_points"])
         self.bounds = np.asarray(run.read_input("part_bounds"), np.float64)
         self.totals = totals
         self.offsets = np.concatenate(([0], np.cumsum(totals))).astype(np.int64)
