@@ -55,17 +55,6 @@ def vm_hwm() -> int:
     return 0
 
 
-def reset_vm_hwm() -> bool:
-    """Start this process's VmHWM afresh (Linux: "5" to /proc/self/clear_refs), so that a
-    later reading is the peak of what follows alone."""
-    try:
-        with open("/proc/self/clear_refs", "w") as f:
-            f.write("5")
-        return True
-    except OSError:
-        return False
-
-
 def child_driver(src: str, eps: float, max_dim) -> dict:
     from chitally.jobs.cloud import Params, plan_points
     from chitally.sources import read_points
@@ -99,7 +88,9 @@ def child_cluster(src: str, eps: float, max_dim, out: str, run: bool, workers: i
                   "planner_worker_peaks": sorted(client.run(vm_hwm).values())}
         if run:
             # the run's own peaks, apart from the planner's
-            run_peaks = reset_vm_hwm() and all(client.run(reset_vm_hwm).values())
+            from chitally.engine import reset_peak_memory
+
+            run_peaks = reset_peak_memory() and all(client.run(reset_peak_memory).values())
             rep = session.run(store)
             result["run"] = time.perf_counter() - t1
             result["jumps"] = rep.result.n_jumps
