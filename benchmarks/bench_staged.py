@@ -81,15 +81,24 @@ def child_cluster(src: str, eps: float, max_dim, out: str, run: bool, workers: i
     with Session(Where(workers=workers, threads=1)) as session:
         store = plan_run(out, inp, Params.checked(eps, max_dim), StageParams(), session, report=report)
         t1 = time.perf_counter()
+        client = session.conn.client
         result = {"stages": report.seconds, "plan": t1 - t0, "tasks": store.n_tasks,
-                  "edges": int(store.attrs["n_edges"]), "planner_driver_peak": report.driver_peak}
+                  "edges": int(store.attrs["n_edges"]), "planner_driver_peak": report.driver_peak,
+                  "driver_peak_by_stage_end": report.peaks,
+                  "planner_worker_peaks": sorted(client.run(vm_hwm).values())}
         if run:
-            client = session.conn.client
+            # the run's own peaks, apart from the planner's
+            from chitally.engine import reset_peak_memory
+
+            run_peaks = reset_peak_memory() and all(client.run(reset_peak_memory).values())
             rep = session.run(store)
             result["run"] = time.perf_counter() - t1
             result["jumps"] = rep.result.n_jumps
             result["chi_eps"] = int(rep.result.final)
-            result["worker_peaks"] = sorted(client.run(vm_hwm).values())
+            result["digest"] = rep.result.digest()
+            if run_peaks:
+                result["run_driver_peak"] = vm_hwm()
+                result["run_worker_peaks"] = sorted(client.run(vm_hwm).values())
             result["heaviest_task_memory_estimate"] = int(store.task_memory().max())
     result["driver_peak"] = vm_hwm()
     result["total"] = time.perf_counter() - t0

@@ -30,6 +30,7 @@ processes).
 from __future__ import annotations
 
 import functools
+import logging
 import hashlib
 import os
 import threading
@@ -1052,6 +1053,43 @@ def test_scheduler_lost_when_no_worker_joins(tmp_path):
             DaskExecutor(c, lost_after=1.0).run(store, [0, 1], Callbacks())
         assert time.monotonic() - t0 < 30
     assert not store.commits.committed().any()
+
+
+def test_an_interruption_inside_a_gather_leaves_no_scheduler_error(tmp_path, monkeypatch):
+    """Ctrl-C (or SIGTERM, which the CLI turns into the same interruption) can land while
+    the driver gathers finished results: the scheduler, in this process under the
+    embedded cluster, then finds the keys we cancel gone and logs an ERROR line on the
+    user's terminal. The interruption must leave the terminal to our one-line message."""
+    from distributed import Client, LocalCluster
+
+    store = tiny_store(tmp_path)
+    gathered: list[Any] = []
+
+    def interrupted(self, finished):
+        gathered.extend(f.key for f in finished)
+        raise KeyboardInterrupt
+
+    records: list[logging.LogRecord] = []
+    catch = logging.Handler(logging.ERROR)
+    catch.emit = records.append  # type: ignore[method-assign]
+    scheduler_log = logging.getLogger("distributed.scheduler")
+    scheduler_log.addHandler(catch)
+    try:
+        with LocalCluster(n_workers=1, threads_per_worker=1, processes=False,
+                          dashboard_address=None, scheduler_kwargs=QUIET_HTTP) as lc, Client(lc) as c:
+            # the scheduler's own complaint, before any interruption: the handler sees it
+            c.sync(lc.scheduler.gather, ["chitally-no-such-key"])
+            assert [r.getMessage().startswith("Couldn't gather keys") for r in records] == [True]
+            records.clear()
+
+            monkeypatch.setattr(DaskExecutor, "_gather", interrupted)
+            with pytest.raises(KeyboardInterrupt):
+                DaskExecutor(c).run(store, [0, 1], Callbacks())
+            assert gathered
+            c.sync(lc.scheduler.gather, gathered)  # what the interrupted gather goes on to do
+    finally:
+        scheduler_log.removeHandler(catch)
+    assert records == []
 
 
 def test_dask_keys_name_the_run_the_task_and_the_retry(client, tmp_path, monkeypatch):

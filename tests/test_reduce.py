@@ -351,3 +351,70 @@ def test_finish_refuses_an_incomplete_fold(tmp_path):
     with pytest.raises(RuntimeError, match=f"{store.n_tasks - 3} tasks are not reduced yet"):
         reducer.finish()
     assert final_curve(store) is None and not store.is_complete()
+
+
+# ------------------------------------------------------------ bounded driver memory
+
+
+class Batches:
+    """Records the task batches a fold is given."""
+
+    def __init__(self, fold) -> None:
+        self.fold, self.batches = fold, []
+
+    def __getattr__(self, name):
+        return getattr(self.fold, name)
+
+    def add(self, tasks, outputs):
+        self.batches.append(list(tasks))
+        self.fold.add(tasks, outputs)
+
+
+def output_bytes(store: RunStore, task: int) -> int:
+    return sum(a.nbytes for a in store.commits.read(task, kind_of(store.kind).fold_reads).values())
+
+
+def test_outputs_are_folded_once_they_hold_fold_bytes_between_checkpoints(tmp_path):
+    """Outputs waiting for a checkpoint are folded when they reach `fold_bytes`, so the
+    driver never holds many tasks' outputs at once; the checkpoints and the curve are
+    those of folding everything at each checkpoint."""
+    store = new_store(tmp_path)
+    n = store.n_tasks
+    run_some(store, range(n))
+    budget = max(output_bytes(store, t) for t in range(n)) + 1  # two outputs pass it
+    reducer = Reducer(store, every_tasks=6, every_seconds=1e9, fold_bytes=budget)
+    reducer.fold = spy = Batches(reducer.fold)
+    for task in range(n):
+        assert reducer.add(task)
+        assert reducer.n_covered == task + 1
+        # folded or not, only a checkpoint covers a task
+        assert covered(reducer) == list(range((task + 1) // 6 * 6))
+    # a batch is folded as soon as its outputs reach the budget: all but its last task's
+    # stay under it; and more batches than checkpoints
+    assert all(sum(output_bytes(store, t) for t in b[:-1]) < budget for b in spy.batches)
+    assert len(spy.batches) > n // 6 + 1
+    assert store.checkpoints.latest().generation == n // 6
+    reducer.finish()
+    final = store.checkpoints.latest()
+    assert final.task_ids.tolist() == list(range(n))
+    for name, array in folded(store, range(n)).items():
+        assert final.state[name].tobytes() == array.tobytes(), name
+    assert final_curve(store) == expected()
+
+
+def test_a_crash_after_folding_before_the_checkpoint_loses_nothing_and_adds_nothing_twice(tmp_path):
+    store = new_store(tmp_path)
+    n = store.n_tasks
+    first = Reducer(store, every_tasks=5, every_seconds=1e9, fold_bytes=1)  # folds every task
+    run_some(store, range(8), first)
+    assert first.generation == 1 and first.n_covered == 8  # 5 checkpointed, 3 folded
+    del first  # the driver dies: tasks 5 to 7 are in no checkpoint
+
+    second = Reducer(store, every_tasks=5, every_seconds=1e9, fold_bytes=1)
+    assert covered(second) == list(range(5)) and second.n_covered == 5
+    assert second.add_committed() == []  # 5, 6, 7 again, from their committed outputs
+    assert second.n_covered == 8
+    run_some(store, range(8, n), second)
+    second.finish()
+    assert store.checkpoints.latest().task_ids.tolist() == list(range(n))
+    assert final_curve(store) == expected()

@@ -19,7 +19,7 @@ from references import brute_force_curve, gudhi_curve
 from chitally import euler_curve, runs
 from chitally.cells import cell_codes, cut_regions, halo_regions, neighbour_codes
 from chitally.jobs.cloud import Params
-from chitally.jobs.stages import StageParams, stage_url
+from chitally.jobs.stages import CellCounts, StageParams, stage_url
 from chitally.staged import PlanInput, StageIncomplete, plan_run
 
 HOST = "127.0.0.1"
@@ -69,6 +69,31 @@ def test_regions_cover_cells_in_order_and_know_their_neighbours():
     got = {int(c): list(regions[offsets[k]:offsets[k + 1]]) for k, c in enumerate(np.sort(codes))}
     by_cell = dict(zip(codes.tolist(), range(6)))
     assert {by_cell[c]: r for c, r in got.items()} == {0: [], 1: [], 2: [1], 3: [0], 4: [], 5: []}
+
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_cell_counts_merge_like_a_global_unique(seed):
+    """The count stage's fold merges block tables into its state by binary search; the
+    reference is numpy's unique over every table at once, weights summed by bincount.
+    Tables overlap, some are empty, codes span the int64 range."""
+    rng = np.random.default_rng(seed)
+    fold = CellCounts(None)
+    everything, weights = [], []
+    for _ in range(6):
+        batch = []
+        for _ in range(int(rng.integers(1, 4))):
+            pool = rng.choice([50, 2000, 2**62], p=[0.4, 0.4, 0.2])
+            codes = np.unique(rng.integers(-pool, pool, int(rng.integers(0, 300)), dtype=np.int64))
+            counts = rng.integers(1, 40, codes.size).astype(np.int64)
+            batch.append({"codes": codes, "counts": counts})
+            everything.append(codes)
+            weights.append(counts)
+        fold.add(list(range(len(batch))), batch)
+        want, inverse = np.unique(np.concatenate(everything), return_inverse=True)
+        want_counts = np.bincount(inverse, weights=np.concatenate(weights)).astype(np.int64)
+        assert fold.codes.tolist() == want.tolist() and fold.counts.tolist() == want_counts.tolist()
+        assert fold.codes.dtype == np.int64 and fold.counts.dtype == np.int64
 
 
 # ------------------------------------------------------------------------- exact curves

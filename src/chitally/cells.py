@@ -135,9 +135,11 @@ def cut_regions(counts: np.ndarray, region_rows: int) -> np.ndarray:
 
 
 def halo_regions(codes: np.ndarray, region_of_cell: np.ndarray, k: int,
-                 chunk: int = 1 << 18) -> tuple[np.ndarray, np.ndarray]:
+                 chunk: int = 1 << 16) -> tuple[np.ndarray, np.ndarray]:
     """For each cell, the regions other than its own that hold a cell next to it, as
-    CSR (offsets, regions): those regions need the cell's rows in their halo."""
+    CSR (offsets, regions): those regions need the cell's rows in their halo. Cells are
+    looked at `chunk` at a time: the temporaries hold 3**k neighbours of each, about
+    (3**k * 8 * 5) bytes per cell, so the chunk bounds the driver's peak here."""
     codes = np.asarray(codes, dtype=np.int64)
     n = codes.shape[0]
     lengths = np.zeros(n, dtype=np.int64)

@@ -106,7 +106,7 @@ class Connection:
             # our workers may be in the middle of a task (a run interrupted or stopped by
             # an error): the nanny kills them after a grace period, and says so; we
             # meant it
-            _drop_messages("distributed.nanny", "Worker process still alive after")
+            drop_messages("distributed.nanny", "Worker process still alive after")
             try:
                 self.cluster.close()
             except (TimeoutError, asyncio.TimeoutError):
@@ -171,14 +171,17 @@ class _DropMessages(logging.Filter):
         return not (self.cancelled and isinstance(exc, asyncio.CancelledError))
 
 
-def _drop_messages(logger: str, *prefixes: str, cancelled: bool = False) -> None:
+def drop_messages(logger: str, *prefixes: str, cancelled: bool = False) -> None:
+    """From now on, drop `logger`'s records that start with one of `prefixes` (and, with
+    `cancelled`, those carrying a CancelledError): for messages distributed logs about
+    something we did on purpose."""
     log = logging.getLogger(logger)
     if not any(isinstance(f, _DropMessages) and f.prefixes == prefixes for f in log.filters):
         log.addFilter(_DropMessages(prefixes, cancelled))
 
 
 def _quiet_abandoned_reconnects() -> None:
-    _drop_messages("distributed.client", "Failed to reconnect to scheduler", cancelled=True)
+    drop_messages("distributed.client", "Failed to reconnect to scheduler", cancelled=True)
 
 
 def _dashboard_of(client: Any) -> str | None:

@@ -363,6 +363,12 @@ class DaskExecutor:
                 results.clear()
                 refill()
         except BaseException as exc:
+            if isinstance(exc, KeyboardInterrupt):
+                # an interruption can land inside a gather: the scheduler in this process
+                # then finds the keys we cancel gone, and logs that as an error
+                from .cluster import drop_messages
+
+                drop_messages("distributed.scheduler", "Couldn't gather keys")
             self._cancel(list(in_flight))
             # A closed client fails whatever touches it next (waiting raises
             # FuturesCancelledError, submitting raises too): that is a lost scheduler.

@@ -31,18 +31,30 @@ class Reducer:
     every_tasks, every_seconds : int, float
         A checkpoint is written after this many newly added tasks or this many seconds,
         whichever comes first (and always at the end).
+    fold_bytes : int
+        Outputs waiting for the next checkpoint are folded into the state once they hold
+        this many bytes: the driver's memory stays bounded by the state, not by the
+        outputs of every task finished since the last checkpoint (a hundred blocks'
+        cell tables of a large cloud hold gigabytes).
     """
 
-    def __init__(self, store: RunStore, *, every_tasks: int = 256, every_seconds: float = 30.0) -> None:
+    def __init__(self, store: RunStore, *, every_tasks: int = 256, every_seconds: float = 30.0,
+                 fold_bytes: int = 64 << 20) -> None:
         self.store = store
         kind = kind_of(store.kind)
         self.fold: Fold = kind.make_fold(store)
         self._reads = kind.fold_reads
         self.every_tasks = every_tasks
         self.every_seconds = every_seconds
+        self.fold_bytes = int(fold_bytes)
         self.covered = np.zeros(store.n_tasks, dtype=bool)
+        # folded into the state, not yet in a checkpoint: a crash loses them from the
+        # state, and resuming adds them again from their committed outputs
+        self._folded = np.zeros(store.n_tasks, dtype=bool)
+        self._n_folded = 0
         self.generation = 0
         self._pending: dict[int, Mapping[str, np.ndarray]] = {}
+        self._pending_bytes = 0
         self._last_checkpoint = time.monotonic()
         self._highest_seen = 0
         self.skipped_generations: tuple[int, ...] = ()
@@ -57,10 +69,10 @@ class Reducer:
 
     @property
     def n_covered(self) -> int:
-        return int(self.covered.sum()) + len(self._pending)
+        return int(self.covered.sum()) + self._n_folded + len(self._pending)
 
     def is_covered(self, task: int) -> bool:
-        return bool(self.covered[task]) or task in self._pending
+        return bool(self.covered[task]) or bool(self._folded[task]) or task in self._pending
 
     def add(self, task: int) -> bool:
         """Add a committed task's outputs; False (and the task set aside) if damaged."""
@@ -73,25 +85,38 @@ class Reducer:
             self.store.commits.set_aside(task)
             return False
         self._pending[int(task)] = outputs
-        if (len(self._pending) >= self.every_tasks
+        self._pending_bytes += sum(np.asarray(a).nbytes for a in outputs.values())
+        if (len(self._pending) + self._n_folded >= self.every_tasks
                 or time.monotonic() - self._last_checkpoint >= self.every_seconds):
             self.checkpoint()
+        elif self._pending_bytes >= self.fold_bytes:
+            self._fold_pending()
         return True
 
     def add_committed(self, tasks: Iterable[int] | None = None) -> list[int]:
         """Add every committed task not yet covered; returns the tasks set aside."""
         if tasks is None:
-            tasks = np.flatnonzero(self.store.commits.committed() & ~self.covered)
+            tasks = np.flatnonzero(self.store.commits.committed() & ~self.covered & ~self._folded)
         return [int(t) for t in tasks if not self.add(int(t))]
 
-    def checkpoint(self) -> None:
-        """Fold the added outputs into the state and write a new generation."""
+    def _fold_pending(self) -> None:
         if not self._pending:
             return
         tasks = sorted(self._pending)
         self.fold.add(tasks, [self._pending[t] for t in tasks])
-        self.covered[np.asarray(tasks, dtype=np.int64)] = True
+        self._folded[np.asarray(tasks, dtype=np.int64)] = True
+        self._n_folded += len(tasks)
         self._pending.clear()
+        self._pending_bytes = 0
+
+    def checkpoint(self) -> None:
+        """Fold the added outputs into the state and write a new generation."""
+        self._fold_pending()
+        if not self._n_folded:
+            return
+        self.covered |= self._folded
+        self._folded[:] = False
+        self._n_folded = 0
         self.generation = max(self.generation, self._highest_seen) + 1
         self.store.checkpoints.write(self.generation, np.flatnonzero(self.covered), self.fold.state())
         self._last_checkpoint = time.monotonic()

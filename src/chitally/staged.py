@@ -25,11 +25,21 @@ from .store import JobSpec, RunStore
 
 @dataclass
 class StageReport:
-    """How long each stage took, in order, and the driver's peak memory."""
+    """How long each stage took, in order, and the driver's peak memory: over all
+    stages, and by the end of each (`peaks`, a running maximum: the stage where it
+    grows is the one that needed it)."""
 
     seconds: dict[str, float] = field(default_factory=dict)
     tasks: dict[str, int] = field(default_factory=dict)
     driver_peak: int = 0
+    peaks: dict[str, int] = field(default_factory=dict)
+
+    def measured(self, stage: str, seconds: float) -> None:
+        from .engine import peak_memory
+
+        self.seconds[stage] = self.seconds.get(stage, 0.0) + seconds
+        self.peaks[stage] = peak_memory()
+        self.driver_peak = max(self.driver_peak, self.peaks[stage])
 
 
 def _block_memory(rows: int, dim: int) -> int:
@@ -55,8 +65,6 @@ def plan_on_cluster(url: str, points: np.ndarray | None, params: Params, stage: 
     with `chitally.lazy.open_points`. `events(stage)` returns the `Events` of a stage's
     run (progress), or None.
     """
-    from .engine import peak_memory
-
     report = report if report is not None else StageReport()
     so = storage_options
     block_rows = int(stage.block_rows)
@@ -77,9 +85,8 @@ def plan_on_cluster(url: str, points: np.ndarray | None, params: Params, stage: 
         finally:
             if hasattr(ev, "close"):
                 ev.close()
-        report.seconds[name] = report.seconds.get(name, 0.0) + time.perf_counter() - t0
+        report.measured(name, time.perf_counter() - t0)
         report.tasks[name] = store.n_tasks
-        report.driver_peak = max(report.driver_peak, peak_memory())
         if rep.result is None:
             raise StageIncomplete(name, store.url, rep)
         return rep.result
@@ -99,7 +106,7 @@ def plan_on_cluster(url: str, points: np.ndarray | None, params: Params, stage: 
     t0 = time.perf_counter()
     regions = make_regions(cells["codes"], cells["counts"], dim, stage.region_rows)
     del cells
-    report.seconds["regions"] = time.perf_counter() - t0
+    report.measured("regions", time.perf_counter() - t0)
     n_regions = regions.n_regions
 
     # 3. scatter
@@ -154,8 +161,7 @@ def plan_on_cluster(url: str, points: np.ndarray | None, params: Params, stage: 
                            lambda: _cloud_spec(table, params, stage, n_rows, dim, n_regions, fp, n_edges,
                                                kind, extra),
                            storage_options=so)
-    report.seconds["create"] = time.perf_counter() - t0
-    report.driver_peak = max(report.driver_peak, peak_memory())
+    report.measured("create", time.perf_counter() - t0)
     return store
 
 

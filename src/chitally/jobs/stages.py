@@ -166,9 +166,27 @@ def count_task(store: RunStore, i: int, *, threads: int = 1) -> tuple[dict[str, 
 
 
 def _merge_counts(codes: list[np.ndarray], counts: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
-    allc = np.concatenate(codes)
-    u, inv = np.unique(allc, return_inverse=True)
-    return u, np.bincount(inv, weights=np.concatenate(counts), minlength=u.size).astype(np.int64)
+    """Rows per cell of several tables of distinct sorted codes. The first is the fold's
+    state, which can hold far more cells than the rest together: the others are merged
+    by a sort of their own, then into the first by binary search, so the state is
+    copied once and never sorted again."""
+    state, state_counts = codes[0], np.asarray(counts[0], np.int64)
+    if len(codes) == 1:
+        return state, state_counts
+    new = np.concatenate(codes[1:])
+    order = np.argsort(new, kind="stable")
+    new, new_counts = new[order], np.concatenate(counts[1:]).astype(np.int64)[order]
+    del order
+    if new.size:
+        starts = np.flatnonzero(np.r_[True, new[1:] != new[:-1]])
+        new, new_counts = new[starts], np.add.reduceat(new_counts, starts)
+    at = np.searchsorted(state, new)
+    known = at < state.size
+    known[known] = state[at[known]] == new[known]
+    merged_counts = state_counts.copy()
+    merged_counts[at[known]] += new_counts[known]  # distinct positions: new codes are distinct
+    fresh = ~known
+    return np.insert(state, at[fresh], new[fresh]), np.insert(merged_counts, at[fresh], new_counts[fresh])
 
 
 class CellCounts:
